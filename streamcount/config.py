@@ -1,0 +1,207 @@
+"""Typed, frozen configuration.
+
+Every section of the YAML file maps to one frozen dataclass below; the field names are the
+config keys, the command-line options (``--min-support`` is ``min_support``) and the names
+used in JSON output and metrics. ``config/default.yaml`` documents every key.
+
+Loading and validation (``load_config``, ``config_from_mapping``) live at the bottom of this
+module: a YAML mapping is validated once into a :class:`Config`; an unknown key or a bad value
+raises :class:`~streamcount.errors.ConfigError` naming the dotted key, the value and the rule.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+__all__ = [
+    "AlertsConfig",
+    "CheckpointConfig",
+    "Config",
+    "CsvConfig",
+    "EngineConfig",
+    "InputConfig",
+    "JsonlConfig",
+    "LoggingConfig",
+    "MetricsConfig",
+    "RulesConfig",
+    "ServerConfig",
+    "SinksConfig",
+    "WebhookConfig",
+]
+
+
+@dataclass(frozen=True, slots=True)
+class JsonlConfig:
+    """Field names of a JSON lines record; dotted paths reach into nested objects."""
+
+    id_field: str = "id"
+    ts_field: str = "ts"
+    items_field: str = "items"
+    #: inside each element of the items list, the key holding the item name (``null``: the
+    #: elements are the names themselves), e.g. ``sku`` for ``"items": [{"sku": "tea"}]``.
+    item_name_field: str | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class CsvConfig:
+    """CSV order lines: one row per line item, rows of one order grouped into a transaction."""
+
+    order_field: str = "order_id"
+    item_field: str = "item"
+    ts_field: str = "ts"
+    quantity_field: str | None = None
+    delimiter: str = ","
+    header: bool = True
+    #: an order still open this long (event time) after its last row is closed
+    order_close_seconds: float = 30.0
+
+
+@dataclass(frozen=True, slots=True)
+class InputConfig:
+    """Where transactions come from and how they are read."""
+
+    #: a file to follow, ``-`` for standard input, or ``null`` for HTTP ingest only
+    path: str | None = None
+    format: str = "basket"  # basket | jsonl | csv
+    #: keep reading appended lines (``false``: stop at end of file)
+    follow: bool = True
+    #: where to start a followed file when no checkpoint exists: beginning | end
+    start_at: str = "beginning"
+    poll_interval_seconds: float = 0.2
+    max_record_bytes: int = 65536
+    encoding: str = "utf-8"
+    #: accept transactions over HTTP at POST /v1/transactions
+    http_ingest: bool = False
+    max_body_bytes: int = 1048576
+    dead_letter_path: str | None = "dead-letter.jsonl"
+    jsonl: JsonlConfig = field(default_factory=JsonlConfig)
+    csv: CsvConfig = field(default_factory=CsvConfig)
+
+
+@dataclass(frozen=True, slots=True)
+class EngineConfig:
+    """Counting: Lossy Counting per pane, panes making up a sliding window."""
+
+    #: Lossy Counting error as a fraction of the window's transactions; 0 counts exactly
+    epsilon: float = 0.001
+    max_itemset_size: int = 3
+    #: baskets with more distinct items are set aside (reason too_many_items), never truncated
+    max_basket_items: int = 200
+    #: count-based window (transactions); used when window_seconds is null
+    window_size: int = 50000
+    pane_size: int = 5000
+    #: time-based window on the transactions' own timestamps (seconds); overrides window_size
+    window_seconds: float | None = None
+    pane_seconds: float | None = None
+    allowed_lateness_seconds: float = 0.0
+    #: transactions buffered before counting (rounded to whole buckets of ceil(1/epsilon))
+    batch_size: int = 5000
+
+
+@dataclass(frozen=True, slots=True)
+class RulesConfig:
+    """Association rules from the window's frequent itemsets, and when they are active."""
+
+    min_support: float = 0.01
+    min_confidence: float = 0.5
+    min_lift: float = 1.5
+    #: absolute joint count below which no rule is formed; null: 10 x the window's max_error
+    min_count: int | None = None
+    max_consequent_size: int = 1
+    #: significance test (fisher | chi2) at the least favourable corner of the intervals;
+    #: null max_p_value switches the test off
+    significance: str = "fisher"
+    max_p_value: float | None = 0.001
+    #: judge thresholds on the intervals' conservative ends (low bounds to enter)
+    conservative: bool = True
+    #: exit thresholds are the entry thresholds times this factor (hysteresis), in (0, 1]
+    exit_ratio: float = 0.8
+    #: consecutive evaluations (pane closes) before a change of state takes effect
+    confirm_evaluations: int = 2
+    #: evaluations after a rule fades before it may emerge again
+    cooldown_evaluations: int = 10
+    #: cap on rules kept per evaluation (highest lift first)
+    max_rules: int = 1000
+
+
+@dataclass(frozen=True, slots=True)
+class AlertsConfig:
+    """Surge detection (growth of an itemset's support in a recent window over a baseline)."""
+
+    surge: bool = True
+    #: Dong & Li growth rate the recent window must reach over the baseline (judged on bounds)
+    growth_rate: float = 3.0
+    #: panes making up the recent window; the baseline is the rest of the window
+    recent_panes: int = 1
+    #: one-sided p-value the surge's significance test must reach
+    surge_max_p_value: float = 0.001
+    #: minimum lower-bound count in the recent window
+    surge_min_count: int = 20
+    #: alerts kept in memory for GET /v1/alerts
+    history: int = 1000
+
+
+@dataclass(frozen=True, slots=True)
+class WebhookConfig:
+    url: str | None = None
+    timeout_seconds: float = 5.0
+    max_retries: int = 5
+    backoff_seconds: float = 0.5
+    max_backoff_seconds: float = 30.0
+    queue_size: int = 1000
+
+
+@dataclass(frozen=True, slots=True)
+class SinksConfig:
+    """Where alert records go. Each sink runs on its own; a slow one never blocks the rest."""
+
+    stdout: bool = False
+    file: str | None = None
+    log: bool = True
+    webhook: WebhookConfig = field(default_factory=WebhookConfig)
+
+
+@dataclass(frozen=True, slots=True)
+class ServerConfig:
+    """HTTP listener for /metrics and the JSON API."""
+
+    #: host:port; null disables the listener
+    listen: str | None = "127.0.0.1:9464"
+    #: name of the environment variable holding the bearer token (the token never goes here)
+    token_env: str | None = None
+    max_request_bytes: int = 1048576
+    request_timeout_seconds: float = 10.0
+
+
+@dataclass(frozen=True, slots=True)
+class MetricsConfig:
+    #: per-rule gauges for the top N rules by lift (0: off) so label cardinality stays bounded
+    top_rules: int = 0
+
+
+@dataclass(frozen=True, slots=True)
+class CheckpointConfig:
+    #: directory for checkpoints; null disables them
+    checkpoint_dir: str | None = None
+    checkpoint_interval_seconds: float = 60.0
+
+
+@dataclass(frozen=True, slots=True)
+class LoggingConfig:
+    level: str = "INFO"
+    format: str = "text"  # text | json
+
+
+@dataclass(frozen=True, slots=True)
+class Config:
+    """The whole validated configuration."""
+
+    input: InputConfig = field(default_factory=InputConfig)
+    engine: EngineConfig = field(default_factory=EngineConfig)
+    rules: RulesConfig = field(default_factory=RulesConfig)
+    alerts: AlertsConfig = field(default_factory=AlertsConfig)
+    sinks: SinksConfig = field(default_factory=SinksConfig)
+    server: ServerConfig = field(default_factory=ServerConfig)
+    metrics: MetricsConfig = field(default_factory=MetricsConfig)
+    checkpoint: CheckpointConfig = field(default_factory=CheckpointConfig)
+    logging: LoggingConfig = field(default_factory=LoggingConfig)

@@ -1,0 +1,192 @@
+"""Immutable views of the window's counts, handed to rules, alerts, the HTTP API and reports.
+
+A :class:`WindowSnapshot` is built by the engine after each batch or pane close and never
+changes afterwards, so readers on other threads need no lock: the engine swaps a reference.
+
+Bounds (Manku & Motwani 2002, summed over panes as in the pane scheme): for every itemset X of
+size ``1..max_itemset_size``, with ``true`` its exact count over transactions
+``first_seq..last_seq``::
+
+    count(X) <= true(X) <= upper(X),    upper(X) - count(X) <= max_error
+
+An itemset not listed in a level has ``count = 0`` and ``upper = max_error``.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Iterator, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+from streamcount.keys import lookup, pack
+
+__all__ = ["FrequentItemset", "LevelCounts", "WindowSnapshot"]
+
+
+@dataclass(frozen=True, slots=True)
+class LevelCounts:
+    """Tracked itemsets of one size with their window bounds.
+
+    Attributes
+    ----------
+    size:
+        Items per itemset.
+    items:
+        ``(n, size)`` int32 item ids; each row ascending, rows in lexicographic order.
+    count:
+        ``(n,)`` int64 lower bounds (never above the true count).
+    upper:
+        ``(n,)`` int64 upper bounds (never below the true count).
+    """
+
+    size: int
+    items: np.ndarray
+    count: np.ndarray
+    upper: np.ndarray
+
+    def __len__(self) -> int:
+        return int(self.count.shape[0])
+
+    @classmethod
+    def empty(cls, size: int) -> LevelCounts:
+        return cls(
+            size,
+            np.zeros((0, size), dtype=np.int32),
+            np.zeros(0, dtype=np.int64),
+            np.zeros(0, dtype=np.int64),
+        )
+
+
+@dataclass(frozen=True, slots=True)
+class FrequentItemset:
+    """One reported itemset: names sorted, lower and upper bound of its count, and support."""
+
+    items: tuple[str, ...]
+    count: int
+    upper: int
+    support: float
+
+    def as_dict(self) -> dict[str, object]:
+        return {
+            "items": list(self.items),
+            "count": self.count,
+            "upper": self.upper,
+            "support": self.support,
+        }
+
+
+@dataclass(frozen=True, slots=True)
+class WindowSnapshot:
+    """Counts of every tracked itemset over a span of panes, frozen.
+
+    Attributes
+    ----------
+    first_seq, last_seq:
+        Sequence numbers (accepted transactions, from 1) of the span's ends; for a time-based
+        window with out-of-order events, the smallest and largest in it. 0 when empty.
+    transactions:
+        Transactions counted in the span (``N``).
+    max_error:
+        Largest possible undercount, ``sum over panes of ceil(n_j / w)``; at most
+        ``ceil(epsilon * N)`` plus one per pane whose length is not a multiple of ``w``.
+    epsilon:
+        The Lossy Counting error parameter (0: exact counts).
+    pane_size:
+        Transactions per pane (count-based window) or ``None`` (time-based).
+    panes:
+        Panes in the span.
+    levels:
+        ``levels[k - 1]`` holds the itemsets of size ``k``.
+    item_names:
+        Vocabulary at snapshot time: ``item_names[i]`` is the name of item id ``i``.
+    first_ts, last_ts:
+        Smallest and largest event timestamp in the span (``None`` without timestamps).
+    """
+
+    first_seq: int
+    last_seq: int
+    transactions: int
+    max_error: int
+    epsilon: float
+    pane_size: int | None
+    panes: int
+    levels: tuple[LevelCounts, ...]
+    item_names: Sequence[str]
+    first_ts: float | None = None
+    last_ts: float | None = None
+
+    @property
+    def max_itemset_size(self) -> int:
+        return len(self.levels)
+
+    def window_dict(self) -> dict[str, object]:
+        """The ``window`` object of reports and the HTTP API."""
+        return {
+            "first_seq": self.first_seq,
+            "last_seq": self.last_seq,
+            "transactions": self.transactions,
+            "max_error": self.max_error,
+            "epsilon": self.epsilon,
+            "pane_size": self.pane_size,
+        }
+
+    def bounds(self, item_ids: Iterable[int]) -> tuple[int, int]:
+        """``(count, upper)`` of one itemset given by item ids (any order).
+
+        An itemset that is not tracked has ``(0, max_error)``; the empty itemset has
+        ``(N, N)``.
+        """
+        ids = sorted(set(int(i) for i in item_ids))
+        if not ids:
+            return self.transactions, self.transactions
+        if len(ids) > len(self.levels):
+            raise ValueError(
+                f"itemset of size {len(ids)} is larger than max_itemset_size={len(self.levels)}"
+            )
+        count, upper = self.bounds_many(np.array([ids], dtype=np.int32))
+        return int(count[0]), int(upper[0])
+
+    def bounds_many(self, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Vectorised :meth:`bounds` for an ``(n, k)`` array of ascending item-id rows."""
+        rows = np.asarray(rows, dtype=np.int32)
+        n, k = rows.shape
+        if k == 0:
+            full = np.full(n, self.transactions, dtype=np.int64)
+            return full, full.copy()
+        level = self.levels[k - 1]
+        count = np.zeros(n, dtype=np.int64)
+        upper = np.full(n, self.max_error, dtype=np.int64)
+        if len(level) and n:
+            radix = int(max(level.items.max(), rows.max())) + 1
+            pos, found = lookup(pack(level.items, radix), pack(rows, radix))
+            count[found] = level.count[pos[found]]
+            upper[found] = level.upper[pos[found]]
+        return count, upper
+
+    def frequent(
+        self, min_support: float, *, sizes: Iterable[int] | None = None
+    ) -> Iterator[FrequentItemset]:
+        """Itemsets reported at ``min_support`` (a fraction of the window's transactions).
+
+        Reported iff ``count >= min_support * N - max_error``: every itemset whose true count
+        is at least ``min_support * N`` is reported (no false negatives) and none whose true
+        count is below ``min_support * N - max_error``. Sizes ascending; within a size, by
+        count descending then by item names.
+        """
+        n = self.transactions
+        cut = min_support * n - self.max_error
+        wanted = set(sizes) if sizes is not None else None
+        for level in self.levels:
+            if wanted is not None and level.size not in wanted:
+                continue
+            if n == 0 or not len(level):
+                continue
+            idx = np.flatnonzero((level.count >= cut) & (level.count > 0))
+            rows = []
+            for i in idx.tolist():
+                names = tuple(sorted(self.item_names[j] for j in level.items[i].tolist()))
+                rows.append((-int(level.count[i]), names, i))
+            rows.sort()
+            for negc, names, i in rows:
+                yield FrequentItemset(names, -negc, int(level.upper[i]), -negc / n)
