@@ -21,7 +21,7 @@ import numpy as np
 
 from streamcount.keys import lookup, pack
 
-__all__ = ["FrequentItemset", "LevelCounts", "WindowSnapshot"]
+__all__ = ["EngineStatistics", "FrequentItemset", "LevelCounts", "WindowSnapshot"]
 
 
 @dataclass(frozen=True, slots=True)
@@ -190,3 +190,29 @@ class WindowSnapshot:
             rows.sort()
             for negc, names, i in rows:
                 yield FrequentItemset(names, -negc, int(level.upper[i]), -negc / n)
+
+
+@dataclass(frozen=True, slots=True)
+class EngineStatistics:
+    """A frozen snapshot of the engine's counters, read by metrics and the status endpoint."""
+
+    #: transactions accepted since start (or since the state was first created, across restores)
+    transactions_seen: int
+    #: transactions set aside by the engine, by reason (``too_many_items``, ``too_late``, ...)
+    rejected: dict[str, int]
+    #: transactions in the current window (counted, i.e. excluding the not yet counted buffer)
+    window_transactions: int
+    #: the window's largest possible undercount
+    window_max_error: int
+    #: tracked entries summed over live panes, per itemset size (index 0 is size 1)
+    tracked_entries: tuple[int, ...]
+    #: bytes held by the panes' numpy arrays and the batch buffers
+    bytes_held: int
+    #: live panes (closed and open)
+    panes: int
+    #: transactions received but not yet counted (waiting for a whole batch)
+    buffered_transactions: int
+    #: largest event timestamp seen (``None`` without timestamps)
+    max_event_ts: float | None
+    #: distinct item names interned
+    vocabulary_size: int
