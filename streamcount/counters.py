@@ -1,0 +1,422 @@
+"""Lossy Counting of itemsets over one pane, batch by batch, on integer-encoded itemsets.
+
+This is the itemset version of Lossy Counting (Manku & Motwani, "Approximate Frequency Counts
+over Data Streams", VLDB 2002), with the paper's Apriori-style pruning inside a batch.
+
+Rules (``w = ceil(1/epsilon)`` transactions per bucket; a batch covers transactions
+``N0+1 .. N1``, ``b0 = ceil(N0/w)``, ``b1 = ceil(N1/w)``, ``beta = b1 - b0``):
+
+* every tracked itemset gains its batch count: ``f += c``; it is deleted when ``f + delta <= b1``;
+* an untracked itemset with batch count ``c >= max(beta, 1)`` is inserted as ``(c, b0)``;
+* level by level (size 1, 2, ... K): an itemset is counted only when every subset one item
+  smaller is tracked after this batch; a tracked itemset with an untracked subset is deleted
+  (its true count is at most the subset's, ``<= b1``), so the summary is downward closed.
+
+Invariants after every batch (checked by :meth:`LossySummary.check_invariants` against nothing
+but itself, and by the tests against exact recounts)::
+
+    tracked X:    f <= true(X) <= f + delta,   delta <= b_current
+    untracked X:  true(X) <= b_current = ceil(N / w)   (<= epsilon * N at bucket boundaries)
+
+``epsilon = 0`` counts exactly: nothing is ever deleted and ``delta = 0``.
+
+Hot path: a batch is a CSR pair (``indptr``, ``items``) of ascending, distinct item ids per
+transaction. Each level enumerates the k-combinations of each transaction's surviving items
+with one fancy-index per basket length (a precomputed combination table), packs them into
+int64 keys in a batch-local dense radix, and counts them with one sort (``np.unique``). No
+Python object is created per itemset.
+
+Memory: per tracked itemset ``4k`` bytes of ids plus 16 bytes of ``(f, delta)``; a batch holds
+its enumerated combinations in chunks of at most ``_CHUNK_COMBOS`` rows.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from streamcount.keys import combination_table, lookup, pack, unpack
+
+__all__ = ["Level", "LossySummary", "bucket_width"]
+
+# Rows of combinations materialised at once while enumerating a batch (bounds peak memory:
+# about 8 bytes x k per row plus the packed key).
+_CHUNK_COMBOS = 1 << 21
+# Dense membership matrices for (k-1)-subsets are used up to this many cells.
+_DENSE_CELLS = 1 << 24
+
+
+def bucket_width(epsilon: float) -> int:
+    """Transactions per bucket, ``ceil(1/epsilon)``; 0 for exact counting (``epsilon == 0``).
+
+    >>> bucket_width(0.001), bucket_width(0.3), bucket_width(0.0)
+    (1000, 4, 0)
+    """
+    if epsilon < 0 or epsilon >= 1:
+        raise ValueError(f"epsilon = {epsilon!r}: must be in [0, 1) (0 counts exactly)")
+    if epsilon == 0:
+        return 0
+    return math.ceil(1.0 / epsilon - 1e-12)
+
+
+@dataclass(frozen=True, slots=True)
+class Level:
+    """Tracked itemsets of one size: ``items`` rows (ascending ids, rows in lexicographic order),
+    ``f`` counts since insertion and ``delta`` the bound on what was missed before."""
+
+    items: np.ndarray  # (n, k) int32
+    f: np.ndarray  # (n,) int64
+    delta: np.ndarray  # (n,) int64
+
+    @classmethod
+    def empty(cls, size: int) -> Level:
+        return cls(
+            np.zeros((0, size), dtype=np.int32),
+            np.zeros(0, dtype=np.int64),
+            np.zeros(0, dtype=np.int64),
+        )
+
+    def __len__(self) -> int:
+        return int(self.f.shape[0])
+
+    @property
+    def nbytes(self) -> int:
+        return int(self.items.nbytes + self.f.nbytes + self.delta.nbytes)
+
+
+class LossySummary:
+    """Lossy Counting summary of the itemsets of size ``1..max_itemset_size`` in one pane.
+
+    Parameters
+    ----------
+    epsilon:
+        Error parameter in ``[0, 1)``; every count is at most ``ceil(epsilon * n)`` below the
+        true count of this summary's ``n`` transactions (exactly: ``<= ceil(n / w)``).
+    max_itemset_size:
+        Largest itemset size counted (K).
+
+    Examples
+    --------
+    Exact mode against a plain recount (Han, Kamber & Pei, 3rd ed., Table 6.1):
+
+    >>> s = LossySummary(0.0, 2)
+    >>> baskets = [[0, 1, 4], [1, 3], [1, 2], [0, 1, 3], [0, 2], [1, 2], [0, 2], [0, 1, 2, 4],
+    ...            [0, 1, 2]]
+    >>> s.add_baskets(baskets)
+    >>> s.bounds([0, 1]), s.bounds([1]), s.n
+    ((4, 4), (7, 7), 9)
+
+    References
+    ----------
+    Manku, G. S. & Motwani, R. (2002). Approximate Frequency Counts over Data Streams. VLDB.
+    """
+
+    __slots__ = ("epsilon", "levels", "max_itemset_size", "n", "width")
+
+    def __init__(self, epsilon: float, max_itemset_size: int) -> None:
+        if max_itemset_size < 1:
+            raise ValueError(f"max_itemset_size = {max_itemset_size!r}: must be >= 1")
+        self.epsilon = float(epsilon)
+        self.width = bucket_width(epsilon)
+        self.max_itemset_size = int(max_itemset_size)
+        self.n = 0
+        self.levels: list[Level] = [Level.empty(k) for k in range(1, max_itemset_size + 1)]
+
+    # -- bounds ----------------------------------------------------------------------------
+
+    @property
+    def b_current(self) -> int:
+        """``ceil(n / w)``: the bound on the count of any untracked itemset (0 when exact)."""
+        return -(-self.n // self.width) if self.width else 0
+
+    @property
+    def tracked(self) -> tuple[int, ...]:
+        return tuple(len(level) for level in self.levels)
+
+    @property
+    def nbytes(self) -> int:
+        return sum(level.nbytes for level in self.levels)
+
+    def bounds(self, items: list[int]) -> tuple[int, int]:
+        """``(f, f + delta)`` of one itemset, or ``(0, b_current)`` when untracked. O(log n)."""
+        row = np.array([sorted(set(items))], dtype=np.int32)
+        level = self.levels[row.shape[1] - 1]
+        if len(level):
+            radix = int(max(level.items.max(), row.max())) + 1
+            pos, found = lookup(pack(level.items, radix), pack(row, radix))
+            if found[0]:
+                i = int(pos[0])
+                return int(level.f[i]), int(level.f[i] + level.delta[i])
+        return 0, self.b_current
+
+    # -- updates ---------------------------------------------------------------------------
+
+    def add_baskets(self, baskets: list[list[int]]) -> None:
+        """Convenience: count a batch given as lists of item ids (duplicates merged)."""
+        rows = [sorted(set(b)) for b in baskets]
+        indptr = np.zeros(len(rows) + 1, dtype=np.int64)
+        np.cumsum([len(r) for r in rows], out=indptr[1:])
+        flat = np.fromiter((i for r in rows for i in r), dtype=np.int32, count=int(indptr[-1]))
+        self.add_batch(indptr, flat)
+
+    def add_batch(self, indptr: np.ndarray, items: np.ndarray) -> None:
+        """Count one batch of transactions and apply the deletion and insertion rules.
+
+        ``indptr`` (int64, length ``t + 1``) and ``items`` (int32) are a CSR encoding of ``t``
+        transactions whose ids are ascending and distinct within each transaction. A batch of
+        whole buckets (``n`` and ``n + t`` multiples of ``w``) gives the tightest summary; any
+        other batch is handled by the partial-batch rule (``beta`` may be 0).
+
+        Cost: O(total combinations of surviving items x log) per level, vectorised.
+        """
+        t = int(indptr.shape[0] - 1)
+        if t <= 0:
+            return
+        n0, n1 = self.n, self.n + t
+        if self.width:
+            b0 = -(-n0 // self.width)
+            b1 = -(-n1 // self.width)
+        else:
+            b0 = b1 = 0
+        beta = b1 - b0
+        min_new = max(beta, 1)
+        exact = self.width == 0
+        self.n = n1
+        items = np.asarray(items, dtype=np.int32)
+        indptr = np.asarray(indptr, dtype=np.int64)
+
+        # ---- level 1 -------------------------------------------------------------------
+        lengths = np.diff(indptr)
+        top = int(items.max()) + 1 if items.size else 0
+        old = self.levels[0]
+        if len(old):
+            top = max(top, int(old.items[:, 0].max()) + 1)
+        counts = np.bincount(items, minlength=top).astype(np.int64)
+        old_ids = old.items[:, 0]
+        f_old = old.f + counts[old_ids]
+        keep_old = np.ones(len(old), dtype=bool) if exact else (f_old + old.delta > b1)
+        is_old = np.zeros(top, dtype=bool)
+        is_old[old_ids] = True
+        new_ids = np.flatnonzero((counts >= min_new) & ~is_old).astype(np.int32)
+        ids = np.concatenate((old_ids[keep_old], new_ids))
+        f = np.concatenate((f_old[keep_old], counts[new_ids]))
+        d = np.concatenate((old.delta[keep_old], np.full(new_ids.shape[0], b0, dtype=np.int64)))
+        order = np.argsort(ids, kind="stable")
+        self.levels[0] = Level(ids[order].reshape(-1, 1), f[order], d[order])
+        if self.max_itemset_size == 1:
+            return
+
+        # ---- batch-local dense ids of the surviving items (order preserving) ----------------
+        survivors = self.levels[0].items[:, 0]
+        m = int(survivors.shape[0])
+        local = np.full(top, -1, dtype=np.int64)
+        local[survivors] = np.arange(m, dtype=np.int64)
+        txn_of = np.repeat(np.arange(t, dtype=np.int64), lengths)
+        loc_items = local[items]
+        keep = loc_items >= 0
+        cur_items = loc_items[keep]
+        cur_txn = txn_of[keep]
+        prev_keys = np.arange(m, dtype=np.int64)  # level-1 survivors in local radix
+
+        for k in range(2, self.max_itemset_size + 1):
+            old = self.levels[k - 1]
+            if m == 0:
+                self.levels[k - 1] = Level.empty(k)
+                continue
+            # Items that belong to some tracked (k-1)-set are the only ones a k-set can use.
+            if k >= 3:
+                allowed = np.zeros(m, dtype=bool)
+                allowed[_unpack_local(prev_keys, m, k - 1).ravel()] = True
+                sel = allowed[cur_items]
+                cur_items = cur_items[sel]
+                cur_txn = cur_txn[sel]
+            membership = _Membership(prev_keys, m, k - 1)
+            batch_keys, batch_counts = _count_combinations(cur_items, cur_txn, t, k, m, membership)
+
+            # tracked entries: to local ids; drop those with a pruned item or subset
+            if len(old):
+                loc_rows = local[old.items] if old.items.size else old.items.astype(np.int64)
+                ok = (loc_rows >= 0).all(axis=1)
+                loc_rows = np.where(ok[:, None], loc_rows, 0)
+                ok &= membership.all_subsets_present(loc_rows)
+                old_keys = _pack_local(loc_rows[ok], m)
+                old_f = old.f[ok]
+                old_d = old.delta[ok]
+            else:
+                old_keys = _pack_local(np.zeros((0, k), dtype=np.int64), m)
+                old_f = old_d = np.zeros(0, dtype=np.int64)
+            pos, found = lookup(batch_keys, old_keys)
+            add = np.where(found, batch_counts[pos] if batch_counts.size else 0, 0)
+            f_old = old_f + add
+            keep_old = np.ones(f_old.shape[0], dtype=bool) if exact else (f_old + old_d > b1)
+            in_old = np.zeros(batch_keys.shape[0], dtype=bool)
+            in_old[pos[found]] = True
+            new_sel = (batch_counts >= min_new) & ~in_old
+            keys = np.concatenate((old_keys[keep_old], batch_keys[new_sel]))
+            f = np.concatenate((f_old[keep_old], batch_counts[new_sel]))
+            d = np.concatenate((old_d[keep_old], np.full(int(new_sel.sum()), b0, dtype=np.int64)))
+            order = np.argsort(keys, kind="stable")
+            keys = keys[order]
+            rows_local = _unpack_local(keys, m, k)
+            self.levels[k - 1] = Level(survivors[rows_local].astype(np.int32), f[order], d[order])
+            prev_keys = keys
+            if keys.shape[0] == 0:  # nothing of size k is tracked, so nothing larger can be
+                for j in range(k + 1, self.max_itemset_size + 1):
+                    self.levels[j - 1] = Level.empty(j)
+                return
+
+    # -- merging, persistence, checks -----------------------------------------------------
+
+    def to_arrays(self, prefix: str) -> dict[str, np.ndarray]:
+        out: dict[str, np.ndarray] = {}
+        for k, level in enumerate(self.levels, start=1):
+            out[f"{prefix}L{k}.items"] = level.items
+            out[f"{prefix}L{k}.f"] = level.f
+            out[f"{prefix}L{k}.delta"] = level.delta
+        return out
+
+    @classmethod
+    def from_arrays(
+        cls,
+        epsilon: float,
+        max_itemset_size: int,
+        n: int,
+        arrays: dict[str, np.ndarray],
+        prefix: str,
+    ) -> LossySummary:
+        s = cls(epsilon, max_itemset_size)
+        s.n = int(n)
+        for k in range(1, max_itemset_size + 1):
+            s.levels[k - 1] = Level(
+                np.asarray(arrays[f"{prefix}L{k}.items"], dtype=np.int32).reshape(-1, k),
+                np.asarray(arrays[f"{prefix}L{k}.f"], dtype=np.int64),
+                np.asarray(arrays[f"{prefix}L{k}.delta"], dtype=np.int64),
+            )
+        return s
+
+    def check_invariants(self) -> None:
+        """Assert every structural invariant; raises AssertionError naming the broken one."""
+        assert self.n >= 0, f"n = {self.n} < 0"
+        bc = self.b_current
+        for k, level in enumerate(self.levels, start=1):
+            assert level.items.dtype == np.int32, f"L{k} items dtype {level.items.dtype}"
+            assert level.f.dtype == np.int64 and level.delta.dtype == np.int64, f"L{k} dtypes"
+            assert level.items.ndim == 2 and level.items.shape[1] == k, f"L{k} shape"
+            assert level.items.shape[0] == level.f.shape[0] == level.delta.shape[0], f"L{k} len"
+            if not len(level):
+                continue
+            assert (level.f >= 1).all(), f"L{k}: an entry with f < 1"
+            assert (level.delta >= 0).all() and (level.delta <= bc).all(), (
+                f"L{k}: delta outside [0, b_current={bc}]"
+            )
+            assert int(level.f.max()) <= self.n, f"L{k}: f above n"
+            if k > 1:
+                assert (np.diff(level.items, axis=1) > 0).all(), f"L{k}: row not ascending"
+            radix = int(level.items.max()) + 1
+            keys = pack(level.items, radix)
+            order = np.lexsort(level.items.T[::-1])
+            assert (order == np.arange(len(level))).all(), f"L{k}: rows not in order"
+            assert (keys[1:] != keys[:-1]).all(), f"L{k}: duplicate rows"
+            if k > 1:
+                prev = self.levels[k - 2]
+                prev_keys = pack(prev.items, radix) if len(prev) else prev.f[:0]
+                for drop in range(k):
+                    sub = np.delete(level.items, drop, axis=1)
+                    if len(prev):
+                        _, found = lookup(prev_keys, pack(sub, radix))
+                        ok = bool(found.all())
+                    else:
+                        ok = False
+                    assert ok, f"L{k}: an itemset has an untracked subset (not downward closed)"
+
+
+# ---- private helpers ------------------------------------------------------------------------
+
+
+def _pack_local(rows: np.ndarray, m: int) -> np.ndarray:
+    return pack(rows, max(m, 1))
+
+
+def _unpack_local(keys: np.ndarray, m: int, size: int) -> np.ndarray:
+    return unpack(keys, max(m, 1), size).astype(np.int64)
+
+
+class _Membership:
+    """Is every (k-1)-subset of a k-row tracked?  Dense matrix for pairs, sorted keys beyond.
+
+    For k = 2 every pair of surviving items qualifies (their 1-subsets are the survivors).
+    """
+
+    __slots__ = ("dense", "keys", "m", "size")
+
+    def __init__(self, keys: np.ndarray, m: int, size: int) -> None:
+        self.keys = keys
+        self.m = m
+        self.size = size
+        self.dense: np.ndarray | None = None
+        if size == 2 and m * m <= _DENSE_CELLS:
+            rows = _unpack_local(keys, m, 2)
+            dense = np.zeros((m, m), dtype=bool)
+            dense[rows[:, 0], rows[:, 1]] = True
+            self.dense = dense
+
+    def all_subsets_present(self, rows: np.ndarray) -> np.ndarray:
+        n, k = rows.shape
+        if self.size == 1 or n == 0:
+            return np.ones(n, dtype=bool)
+        ok = np.ones(n, dtype=bool)
+        for drop in range(k):
+            sub = np.delete(rows, drop, axis=1) if k > 2 else rows[:, [1 - drop]]
+            if self.dense is not None:
+                ok &= self.dense[sub[:, 0], sub[:, 1]]
+            else:
+                _, found = lookup(self.keys, _pack_local(sub, self.m))
+                ok &= found
+        return ok
+
+
+def _count_combinations(
+    items: np.ndarray, txn: np.ndarray, t: int, k: int, m: int, membership: _Membership
+) -> tuple[np.ndarray, np.ndarray]:
+    """Sorted unique keys (local radix ``m``) of the k-combinations present, with counts.
+
+    ``items``/``txn`` list each transaction's surviving local ids (ascending within a
+    transaction, transactions in order). Transactions are grouped by their surviving length
+    ``L``; each group is an ``(g, L)`` matrix indexed once with the ``C(L, k) x k`` combination
+    table, so the work is a few large numpy operations per distinct length.
+    """
+    if items.size == 0:
+        return _pack_local(np.zeros((0, k), dtype=np.int64), m), np.zeros(0, dtype=np.int64)
+    lengths = np.bincount(txn, minlength=t)
+    starts = np.zeros(t + 1, dtype=np.int64)
+    np.cumsum(lengths, out=starts[1:])
+    key_parts: list[np.ndarray] = []
+    count_parts: list[np.ndarray] = []
+    for length in np.unique(lengths[lengths >= k]).tolist():
+        table = combination_table(length, k)
+        group = np.flatnonzero(lengths == length)
+        per_txn = table.shape[0]
+        step = max(1, _CHUNK_COMBOS // per_txn)
+        for lo in range(0, group.shape[0], step):
+            g = group[lo : lo + step]
+            mat = items[starts[g][:, None] + np.arange(length)]
+            combos = mat[:, table].reshape(-1, k)
+            if k >= 3:
+                combos = combos[membership.all_subsets_present(combos)]
+            if combos.shape[0] == 0:
+                continue
+            keys, counts = np.unique(_pack_local(combos, m), return_counts=True)
+            key_parts.append(keys)
+            count_parts.append(counts.astype(np.int64))
+    if not key_parts:
+        return _pack_local(np.zeros((0, k), dtype=np.int64), m), np.zeros(0, dtype=np.int64)
+    if len(key_parts) == 1:
+        return key_parts[0], count_parts[0]
+    all_keys = np.concatenate(key_parts)
+    all_counts = np.concatenate(count_parts)
+    order = np.argsort(all_keys, kind="stable")
+    sk = all_keys[order]
+    starts_u = np.flatnonzero(np.concatenate(([True], sk[1:] != sk[:-1])))
+    return sk[starts_u], np.add.reduceat(all_counts[order], starts_u)
