@@ -462,7 +462,7 @@ def load_config(path: str | Path) -> Config:
     except (OSError, UnicodeDecodeError) as exc:
         raise ConfigError(str(path), str(path), f"cannot be read as a UTF-8 file: {exc}") from exc
     try:
-        data = yaml.load(text, Loader=_UniqueKeyLoader)  # noqa: S506 - a SafeLoader subclass
+        data = yaml.load(text, Loader=_UniqueKeyLoader)  # a SafeLoader subclass
     except yaml.MarkedYAMLError as exc:
         mark = exc.problem_mark or exc.context_mark
         lines = text.splitlines()

@@ -272,7 +272,7 @@ def test_apply_overrides_reads_strings_as_yaml_scalars() -> None:
 
 
 def test_apply_overrides_unknown_key_suggests() -> None:
-    with pytest.raises(ConfigError, match="did you mean 'engine.epsilon'"):
+    with pytest.raises(ConfigError, match=r"did you mean 'engine\.epsilon'"):
         apply_overrides(Config(), {"engine.epsilom": 0.1})
 
 
@@ -312,7 +312,7 @@ def test_parse_listen() -> None:
     assert parse_listen("0.0.0.0:0") == ("0.0.0.0", 0)
     assert parse_listen("[::1]:9464") == ("::1", 9464)
     for bad in ("9464", ":9464", "host:", "::1:80", "h:99999"):
-        with pytest.raises(ValueError, match="host:port|IPv6"):
+        with pytest.raises(ValueError, match=r"host:port|IPv6"):
             parse_listen(bad)
 
 
