@@ -34,10 +34,11 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 
-from streamcount.keys import combination_table, lookup, pack, unpack
+from streamcount.keys import combination_table, fits_int64, lookup, pack, unpack
 
 __all__ = ["Level", "LossySummary", "bucket_width"]
 
@@ -46,6 +47,8 @@ __all__ = ["Level", "LossySummary", "bucket_width"]
 _CHUNK_COMBOS = 1 << 21
 # Dense membership matrices for (k-1)-subsets are used up to this many cells.
 _DENSE_CELLS = 1 << 24
+# Counting by bincount (O(n), no sort) when the key space has at most this many cells.
+_BINCOUNT_CELLS = 1 << 22
 
 
 def bucket_width(epsilon: float) -> int:
@@ -367,14 +370,33 @@ class _Membership:
         if self.size == 1 or n == 0:
             return np.ones(n, dtype=bool)
         ok = np.ones(n, dtype=bool)
-        for drop in range(k):
-            sub = np.delete(rows, drop, axis=1) if k > 2 else rows[:, [1 - drop]]
+        for cols in _drop_one(k):
             if self.dense is not None:
-                ok &= self.dense[sub[:, 0], sub[:, 1]]
+                ok &= self.dense[rows[:, cols[0]], rows[:, cols[1]]]
             else:
-                _, found = lookup(self.keys, _pack_local(sub, self.m))
+                _, found = lookup(self.keys, _pack_local(rows[:, cols], self.m))
                 ok &= found
         return ok
+
+
+@lru_cache(maxsize=16)
+def _drop_one(k: int) -> tuple[list[int], ...]:
+    """Column lists of the k subsets one item smaller: ``(1..k-1), (0, 2..k-1), ...``."""
+    return tuple([c for c in range(k) if c != drop] for drop in range(k))
+
+
+@lru_cache(maxsize=512)
+def _triple_pair_index(length: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """For baskets of ``length`` items: the pair table, and for each triple of the triple
+    table the positions of its pairs (ab, ac, bc) in the pair table."""
+    pairs = combination_table(length, 2)
+    triples = combination_table(length, 3)
+    where = np.full((length, length), -1, dtype=np.int64)
+    where[pairs[:, 0], pairs[:, 1]] = np.arange(pairs.shape[0])
+    ab = where[triples[:, 0], triples[:, 1]]
+    ac = where[triples[:, 0], triples[:, 2]]
+    bc = where[triples[:, 1], triples[:, 2]]
+    return pairs, ab, ac, bc
 
 
 def _count_combinations(
@@ -384,39 +406,57 @@ def _count_combinations(
 
     ``items``/``txn`` list each transaction's surviving local ids (ascending within a
     transaction, transactions in order). Transactions are grouped by their surviving length
-    ``L``; each group is an ``(g, L)`` matrix indexed once with the ``C(L, k) x k`` combination
-    table, so the work is a few large numpy operations per distinct length.
+    ``L``; each group is a ``(g, L)`` matrix indexed once with the ``C(L, k) x k`` combination
+    table, so the work is a few large numpy operations per distinct length. For triples the
+    pair test runs on the ``C(L, 2)`` pairs of each basket and is combined per triple through
+    index tables, so a triple is materialised only when its three pairs are tracked.
+    Counting is one ``bincount`` when ``m**k`` is small, else one sort.
     """
+    empty = (_pack_local(np.zeros((0, k), dtype=np.int64), m), np.zeros(0, dtype=np.int64))
     if items.size == 0:
-        return _pack_local(np.zeros((0, k), dtype=np.int64), m), np.zeros(0, dtype=np.int64)
+        return empty
     lengths = np.bincount(txn, minlength=t)
     starts = np.zeros(t + 1, dtype=np.int64)
     np.cumsum(lengths, out=starts[1:])
+    radix = max(m, 1)
+    packs_int = fits_int64(radix, k)
     key_parts: list[np.ndarray] = []
-    count_parts: list[np.ndarray] = []
+    triple_dense = k == 3 and membership.dense is not None
     for length in np.unique(lengths[lengths >= k]).tolist():
         table = combination_table(length, k)
         group = np.flatnonzero(lengths == length)
-        per_txn = table.shape[0]
-        step = max(1, _CHUNK_COMBOS // per_txn)
+        step = max(1, _CHUNK_COMBOS // table.shape[0])
         for lo in range(0, group.shape[0], step):
             g = group[lo : lo + step]
             mat = items[starts[g][:, None] + np.arange(length)]
-            combos = mat[:, table].reshape(-1, k)
-            if k >= 3:
-                combos = combos[membership.all_subsets_present(combos)]
-            if combos.shape[0] == 0:
+            if k == 2:
+                key = mat[:, table[:, 0]] * radix + mat[:, table[:, 1]]
+                key_parts.append(key.ravel())
                 continue
-            keys, counts = np.unique(_pack_local(combos, m), return_counts=True)
-            key_parts.append(keys)
-            count_parts.append(counts.astype(np.int64))
+            if triple_dense:
+                assert membership.dense is not None
+                pairs, ab, ac, bc = _triple_pair_index(length)
+                pair_ok = membership.dense[mat[:, pairs[:, 0]], mat[:, pairs[:, 1]]]
+                valid = pair_ok[:, ab] & pair_ok[:, ac] & pair_ok[:, bc]
+                row, combo = np.nonzero(valid)
+                if row.size == 0:
+                    continue
+                sel = table[combo]
+                a = mat[row, sel[:, 0]]
+                b = mat[row, sel[:, 1]]
+                c = mat[row, sel[:, 2]]
+                key_parts.append((a * radix + b) * radix + c)
+                continue
+            combos = mat[:, table].reshape(-1, k)
+            combos = combos[membership.all_subsets_present(combos)]
+            if combos.shape[0]:
+                key_parts.append(_pack_local(combos, m))
     if not key_parts:
-        return _pack_local(np.zeros((0, k), dtype=np.int64), m), np.zeros(0, dtype=np.int64)
-    if len(key_parts) == 1:
-        return key_parts[0], count_parts[0]
-    all_keys = np.concatenate(key_parts)
-    all_counts = np.concatenate(count_parts)
-    order = np.argsort(all_keys, kind="stable")
-    sk = all_keys[order]
-    starts_u = np.flatnonzero(np.concatenate(([True], sk[1:] != sk[:-1])))
-    return sk[starts_u], np.add.reduceat(all_counts[order], starts_u)
+        return empty
+    keys = np.concatenate(key_parts) if len(key_parts) > 1 else key_parts[0]
+    if packs_int and radix**k <= _BINCOUNT_CELLS and keys.shape[0] * 4 >= radix**k:
+        counts = np.bincount(keys, minlength=radix**k)
+        present = np.flatnonzero(counts)
+        return present.astype(np.int64), counts[present].astype(np.int64)
+    uniq, counts = np.unique(keys, return_counts=True)
+    return uniq, counts.astype(np.int64)
