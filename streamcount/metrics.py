@@ -1,0 +1,345 @@
+"""Every Prometheus metric streamcount exposes, registered on an injected registry.
+
+Two kinds of metric live here:
+
+* counters and a histogram that the counting loop updates once per *batch* (never per record)
+  through :meth:`Metrics.observe_batch`, :meth:`Metrics.observe_alerts`,
+  :meth:`Metrics.observe_checkpoint` and :meth:`Metrics.observe_sinks`;
+* gauges of engine state produced at scrape time by a custom collector that calls a function
+  returning the latest immutable :class:`~streamcount.snapshot.EngineStatistics` (and a
+  :class:`ServiceState`), so a scrape never touches the counting loop's mutable state.
+
+The registry is always passed in; nothing here touches the process-wide default registry.
+
+Examples
+--------
+>>> from prometheus_client import CollectorRegistry
+>>> registry = CollectorRegistry()
+>>> metrics = Metrics(registry, statistics=lambda: None)
+>>> metrics.observe_batch(accepted=120, rejected={"malformed": 3}, seconds=0.02)
+>>> registry.get_sample_value("streamcount_transactions_total")
+120.0
+>>> registry.get_sample_value("streamcount_records_rejected_total", {"reason": "too_late"})
+0.0
+"""
+
+from __future__ import annotations
+
+import threading
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+from prometheus_client import CollectorRegistry, Counter, Histogram
+from prometheus_client.core import GaugeMetricFamily, Metric
+from prometheus_client.registry import Collector
+
+from streamcount.snapshot import EngineStatistics
+
+__all__ = [
+    "ALERT_KINDS",
+    "CHECKPOINT_RESULTS",
+    "METRIC_NAMES",
+    "REJECT_REASONS",
+    "SINK_NAMES",
+    "Metrics",
+    "RuleSample",
+    "ServiceState",
+]
+
+#: ``reason`` label values pre-created so they render as 0 before the first rejection
+REJECT_REASONS: tuple[str, ...] = (
+    "bad_encoding",
+    "empty",
+    "malformed",
+    "missing_field",
+    "too_late",
+    "too_long",
+    "too_many_items",
+    "wrong_type",
+)
+#: ``kind`` label values of ``streamcount_alerts_total``
+ALERT_KINDS: tuple[str, ...] = ("emerged", "faded", "surged")
+#: ``sink`` label values of the sink counters
+SINK_NAMES: tuple[str, ...] = ("file", "log", "stdout", "webhook")
+#: ``result`` label values of ``streamcount_checkpoints_total``
+CHECKPOINT_RESULTS: tuple[str, ...] = ("failed", "ok")
+
+#: Seconds to count one batch: from a millisecond (tiny batches) to tens of seconds.
+_BATCH_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1, 2.5, 5, 10, 30)
+
+_GAUGES: dict[str, str] = {
+    "streamcount_window_transactions": "Transactions counted in the current window.",
+    "streamcount_window_max_error": (
+        "Largest possible undercount of any itemset in the window (sum over panes of "
+        "ceil(pane transactions / bucket width)); 0 when counting exactly."
+    ),
+    "streamcount_tracked_itemsets": "Tracked itemset entries summed over live panes, by size.",
+    "streamcount_active_rules": "Association rules currently active (after hysteresis).",
+    "streamcount_last_checkpoint_timestamp_seconds": (
+        "Unix time of the last checkpoint written or restored; 0 when there is none."
+    ),
+    "streamcount_event_lag_seconds": (
+        "Wall-clock time minus the largest event timestamp seen (absent without timestamps)."
+    ),
+    "streamcount_summary_bytes": "Bytes held by the panes' count arrays and batch buffers.",
+    "streamcount_window_panes": "Live panes (closed and open).",
+    "streamcount_buffered_transactions": "Transactions received but not yet counted.",
+    "streamcount_vocabulary_items": "Distinct item names interned.",
+}
+_RULE_GAUGES: dict[str, str] = {
+    "streamcount_rule_lift": "Lift of one of the top rules by lift (point value).",
+    "streamcount_rule_confidence": "Confidence of one of the top rules by lift (point value).",
+    "streamcount_rule_support": "Support of one of the top rules by lift (point value).",
+}
+
+#: Every metric family name streamcount exposes (counters with their ``_total`` suffix).
+METRIC_NAMES: tuple[str, ...] = (
+    "streamcount_transactions_total",
+    "streamcount_records_rejected_total",
+    "streamcount_alerts_total",
+    "streamcount_sink_failures_total",
+    "streamcount_sink_dropped_total",
+    "streamcount_checkpoints_total",
+    "streamcount_batch_seconds",
+    *_GAUGES,
+    *_RULE_GAUGES,
+)
+
+
+@dataclass(frozen=True, slots=True)
+class RuleSample:
+    """Point values of one rule for the per-rule gauges (labels: items joined with ``,``)."""
+
+    antecedent: tuple[str, ...]
+    consequent: tuple[str, ...]
+    support: float
+    confidence: float
+    lift: float
+
+    @classmethod
+    def from_rule(cls, rule: Any) -> RuleSample:
+        """From a :class:`streamcount.rules.Rule` (its measures' point values)."""
+        return cls(
+            tuple(rule.antecedent),
+            tuple(rule.consequent),
+            float(rule.support.value),
+            float(rule.confidence.value),
+            float(rule.lift.value),
+        )
+
+
+@dataclass(frozen=True, slots=True)
+class ServiceState:
+    """Service-level facts read at scrape time next to the engine's statistics."""
+
+    #: rules currently active
+    active_rules: int = 0
+    #: unix time of the last checkpoint written or restored (``None``: none yet)
+    last_checkpoint_unix: float | None = None
+    #: wall-clock time minus the largest event timestamp (``None``: no timestamps)
+    event_lag_seconds: float | None = None
+    #: rules for the per-rule gauges, strongest first; only the first ``top_rules`` are shown
+    top_rules: tuple[RuleSample, ...] = ()
+
+
+class _StateCollector(Collector):
+    """Builds the state gauges from the latest statistics when Prometheus scrapes."""
+
+    def __init__(self, owner: Metrics) -> None:
+        self._owner = owner
+
+    def describe(self) -> Iterable[Metric]:
+        # names only, so the registry can refuse a clash at registration time
+        yield from self._families(None, ServiceState(), describe=True)
+
+    def collect(self) -> Iterable[Metric]:
+        stats = self._owner._statistics()
+        state = self._owner._state() if self._owner._state is not None else ServiceState()
+        yield from self._families(stats, state, describe=False)
+
+    def _families(
+        self, stats: EngineStatistics | None, state: ServiceState, *, describe: bool
+    ) -> Iterator[Metric]:
+        def gauge(name: str, labels: Sequence[str] = ()) -> GaugeMetricFamily:
+            return GaugeMetricFamily(name, _GAUGES.get(name) or _RULE_GAUGES[name], labels=labels)
+
+        if stats is not None or describe:
+            simple = {
+                "streamcount_window_transactions": "window_transactions",
+                "streamcount_window_max_error": "window_max_error",
+                "streamcount_summary_bytes": "bytes_held",
+                "streamcount_window_panes": "panes",
+                "streamcount_buffered_transactions": "buffered_transactions",
+                "streamcount_vocabulary_items": "vocabulary_size",
+            }
+            for name, attr in simple.items():
+                family = gauge(name)
+                if stats is not None:
+                    family.add_metric([], float(getattr(stats, attr)))
+                yield family
+            tracked = gauge("streamcount_tracked_itemsets", ["size"])
+            if stats is not None:
+                for size, entries in enumerate(stats.tracked_entries, start=1):
+                    tracked.add_metric([str(size)], float(entries))
+            yield tracked
+
+        active = gauge("streamcount_active_rules")
+        active.add_metric([], float(state.active_rules))
+        yield active
+
+        last = gauge("streamcount_last_checkpoint_timestamp_seconds")
+        last.add_metric([], max(state.last_checkpoint_unix or 0.0, self._owner._last_checkpoint))
+        yield last
+
+        lag = gauge("streamcount_event_lag_seconds")
+        if state.event_lag_seconds is not None:
+            lag.add_metric([], float(state.event_lag_seconds))
+        yield lag
+
+        top = self._owner.top_rules
+        if top > 0:
+            families = {name: gauge(name, ["antecedent", "consequent"]) for name in _RULE_GAUGES}
+            for rule in state.top_rules[:top]:
+                labels = [",".join(rule.antecedent), ",".join(rule.consequent)]
+                families["streamcount_rule_lift"].add_metric(labels, rule.lift)
+                families["streamcount_rule_confidence"].add_metric(labels, rule.confidence)
+                families["streamcount_rule_support"].add_metric(labels, rule.support)
+            yield from families.values()
+
+
+class Metrics:
+    """All of streamcount's metrics on one registry.
+
+    Parameters
+    ----------
+    registry:
+        Where to register; each test builds a fresh one. Never the global default registry.
+    statistics:
+        Returns the latest :class:`EngineStatistics` (or ``None`` before the engine exists);
+        called at scrape time, from the HTTP thread, so it must only hand over a reference to
+        an immutable object.
+    state:
+        Returns the latest :class:`ServiceState`; ``None``: no rules, checkpoints or lag yet.
+    top_rules:
+        Per-rule gauges for at most this many rules (``metrics.top_rules``); 0 turns them off,
+        so the number of series stays bounded whatever the data does.
+    sink_names, alert_kinds:
+        Label values created up front so they render as 0.
+    """
+
+    def __init__(
+        self,
+        registry: CollectorRegistry,
+        *,
+        statistics: Callable[[], EngineStatistics | None],
+        state: Callable[[], ServiceState] | None = None,
+        top_rules: int = 0,
+        sink_names: Iterable[str] = SINK_NAMES,
+        alert_kinds: Iterable[str] = ALERT_KINDS,
+    ) -> None:
+        if top_rules < 0:
+            raise ValueError(f"top_rules={top_rules!r} must be >= 0")
+        self.registry = registry
+        self.top_rules = top_rules
+        self._statistics = statistics
+        self._state = state
+        self._lock = threading.Lock()
+        self._last_checkpoint = 0.0
+        self._sink_seen: dict[tuple[str, str], int] = {}
+
+        self.transactions = Counter(
+            "streamcount_transactions",
+            "Transactions accepted for counting.",
+            registry=registry,
+        )
+        self.records_rejected = Counter(
+            "streamcount_records_rejected",
+            "Records or transactions set aside, by reason (see the dead-letter file).",
+            ["reason"],
+            registry=registry,
+        )
+        self.alerts = Counter(
+            "streamcount_alerts",
+            "Alerts raised, by kind; signals for a person to review, not decisions.",
+            ["kind"],
+            registry=registry,
+        )
+        self.sink_failures = Counter(
+            "streamcount_sink_failures",
+            "Failed delivery attempts of alert records, by sink.",
+            ["sink"],
+            registry=registry,
+        )
+        self.sink_dropped = Counter(
+            "streamcount_sink_dropped",
+            "Alert records given up on (queue full or retries exhausted), by sink.",
+            ["sink"],
+            registry=registry,
+        )
+        self.checkpoints = Counter(
+            "streamcount_checkpoints",
+            "Checkpoint writes, by result (ok or failed).",
+            ["result"],
+            registry=registry,
+        )
+        self.batch_seconds = Histogram(
+            "streamcount_batch_seconds",
+            "Seconds spent counting one batch of transactions.",
+            buckets=_BATCH_BUCKETS,
+            registry=registry,
+        )
+        for reason in REJECT_REASONS:
+            self.records_rejected.labels(reason=reason)
+        for kind in alert_kinds:
+            self.alerts.labels(kind=kind)
+        for sink in sink_names:
+            self.sink_failures.labels(sink=sink)
+            self.sink_dropped.labels(sink=sink)
+        for result in CHECKPOINT_RESULTS:
+            self.checkpoints.labels(result=result)
+        registry.register(_StateCollector(self))
+
+    def observe_batch(self, accepted: int, rejected: Mapping[str, int], seconds: float) -> None:
+        """Count one batch: accepted transactions, rejections by reason, time spent."""
+        if accepted:
+            self.transactions.inc(accepted)
+        for reason, n in rejected.items():
+            if n:
+                self.records_rejected.labels(reason=reason).inc(n)
+        self.batch_seconds.observe(seconds)
+
+    def observe_alerts(self, counts: Mapping[str, int]) -> None:
+        """Count alerts raised in one evaluation, by kind."""
+        for kind, n in counts.items():
+            if n:
+                self.alerts.labels(kind=kind).inc(n)
+
+    def observe_checkpoint(self, ok: bool, unix_time: float) -> None:
+        """Count a checkpoint attempt; a successful one also sets the last-checkpoint gauge."""
+        self.checkpoints.labels(result="ok" if ok else "failed").inc()
+        if ok:
+            with self._lock:
+                self._last_checkpoint = max(self._last_checkpoint, float(unix_time))
+
+    def observe_sinks(self, failures: Mapping[str, int], dropped: Mapping[str, int]) -> None:
+        """Bring the sink counters up to the sinks' own running totals.
+
+        Parameters
+        ----------
+        failures, dropped:
+            Cumulative totals per sink name as the sinks report them. The counters grow by the
+            difference since the previous call; a total that went down (a sink was rebuilt and
+            started from 0) counts in full, as Prometheus treats a counter reset.
+        """
+        for counter, kind, totals in (
+            (self.sink_failures, "failures", failures),
+            (self.sink_dropped, "dropped", dropped),
+        ):
+            for sink, total in totals.items():
+                with self._lock:
+                    before = self._sink_seen.get((kind, sink), 0)
+                    self._sink_seen[(kind, sink)] = total
+                delta = total - before if total >= before else total
+                if delta:
+                    counter.labels(sink=sink).inc(delta)
