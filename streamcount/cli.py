@@ -1,0 +1,186 @@
+"""The ``streamcount`` command: replay, run, demo, generate, check-config.
+
+Every option that changes a setting is also a config key with the same name in snake_case
+(``--min-support`` is ``rules.min_support``); options override the file given with
+``--config``. Exit codes: 0 success, 2 a usage, config or input error (one line on stderr).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from collections.abc import Sequence
+from typing import Any
+
+from streamcount import __version__
+from streamcount.errors import StreamcountError
+
+__all__ = ["main"]
+
+#: (section, key, type) of every setting that has a command-line option
+SETTING_OPTIONS: tuple[tuple[str, str, type], ...] = (
+    ("input", "format", str),
+    ("engine", "epsilon", float),
+    ("engine", "window_size", int),
+    ("engine", "pane_size", int),
+    ("engine", "window_seconds", float),
+    ("engine", "pane_seconds", float),
+    ("engine", "allowed_lateness_seconds", float),
+    ("engine", "max_itemset_size", int),
+    ("engine", "max_basket_items", int),
+    ("engine", "batch_size", int),
+    ("rules", "min_support", float),
+    ("rules", "min_confidence", float),
+    ("rules", "min_lift", float),
+    ("rules", "min_count", int),
+    ("rules", "max_consequent_size", int),
+    ("rules", "max_p_value", float),
+    ("rules", "significance", str),
+    ("rules", "confirm_evaluations", int),
+    ("rules", "cooldown_evaluations", int),
+    ("alerts", "growth_rate", float),
+    ("alerts", "recent_panes", int),
+)
+#: JSON lines field names (input.jsonl.*)
+JSONL_OPTIONS = ("id_field", "ts_field", "items_field", "item_name_field")
+
+
+def _add_setting_options(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--config", metavar="FILE", help="YAML config; options override it")
+    group = parser.add_argument_group("settings (each is also a config key, snake_case)")
+    for section, key, typ in SETTING_OPTIONS:
+        group.add_argument(
+            "--" + key.replace("_", "-"),
+            dest=f"set__{section}__{key}",
+            type=typ,
+            default=None,
+            metavar=key.upper(),
+            help=f"config key {section}.{key}",
+        )
+    for key in JSONL_OPTIONS:
+        group.add_argument(
+            "--" + key.replace("_", "-"),
+            dest=f"set__input.jsonl__{key}",
+            default=None,
+            metavar="FIELD",
+            help=f"config key input.jsonl.{key} (dotted paths reach nested objects)",
+        )
+
+
+def _config_from_args(args: argparse.Namespace, extra: dict[str, object] | None = None) -> Any:
+    from streamcount.config import Config
+    from streamcount.configload import apply_overrides, load_config
+
+    config = load_config(args.config) if getattr(args, "config", None) else Config()
+    overrides: dict[str, object] = {}
+    for name, value in vars(args).items():
+        if name.startswith("set__") and value is not None:
+            _, section, key = name.split("__")
+            overrides[f"{section}.{key}"] = value
+    overrides.update(extra or {})
+    return apply_overrides(config, overrides) if overrides else config
+
+
+def _cmd_replay(args: argparse.Namespace) -> int:
+    from streamcount.replay import replay_file
+
+    config = _config_from_args(args)
+    parts = [p.strip() for p in args.report.split(",") if p.strip()]
+    result = replay_file(args.path, config, report=parts, progress=sys.stderr)
+    text = json.dumps(result.report, separators=(",", ":"), allow_nan=False)
+    if args.output:
+        with open(args.output, "w", encoding="utf-8") as fh:
+            fh.write(text + "\n")
+    else:
+        sys.stdout.write(text + "\n")
+    return 0
+
+
+def _cmd_check_config(args: argparse.Namespace) -> int:
+    from streamcount.configload import check_config_main
+
+    return check_config_main(args.file)
+
+
+def _cmd_run(args: argparse.Namespace) -> int:
+    from streamcount.app import run_main
+
+    return run_main(args)
+
+
+def _cmd_demo(args: argparse.Namespace) -> int:
+    from streamcount.demo import demo_main
+
+    return demo_main(args)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="streamcount",
+        description="Live co-purchase counts, association rules and alerts over a sliding "
+        "window with a guaranteed error bound.",
+    )
+    parser.add_argument("--version", action="version", version=f"streamcount {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    rp = sub.add_parser("replay", help="count a whole file as fast as possible; JSON report")
+    rp.add_argument("path", help="basket lines or JSON lines file (.gz read transparently; - stdin)")
+    rp.add_argument("--output", metavar="FILE", help="write the report here instead of stdout")
+    rp.add_argument(
+        "--report",
+        default="itemsets",
+        help="comma-separated parts: itemsets, rules, alerts (default: itemsets)",
+    )
+    _add_setting_options(rp)
+    rp.set_defaults(func=_cmd_replay)
+
+    run = sub.add_parser("run", help="the long-running service")
+    run.add_argument("--input", metavar="PATH", help="file to follow, or - for stdin (input.path)")
+    run.add_argument("--listen", metavar="HOST:PORT", help="HTTP listener (server.listen)")
+    run.add_argument("--checkpoint-dir", metavar="DIR", help="checkpoint.checkpoint_dir")
+    run.add_argument(
+        "--fresh", action="store_true", help="ignore existing checkpoints and start over"
+    )
+    run.add_argument(
+        "--no-follow", action="store_true", help="stop at the end of the input (input.follow)"
+    )
+    _add_setting_options(run)
+    run.set_defaults(func=_cmd_run)
+
+    demo = sub.add_parser("demo", help="an invented shop's live feed, with alerts as they fire")
+    demo.add_argument("--duration", type=float, default=45.0, help="seconds (default 45)")
+    demo.add_argument("--forever", action="store_true", help="keep running until Ctrl-C")
+    demo.add_argument("--json", action="store_true", help="print alert records as JSON lines")
+    demo.add_argument("--listen", default="127.0.0.1:0", help="HTTP listener (default a free port)")
+    demo.add_argument("--seed", type=int, default=7)
+    demo.add_argument(
+        "--rate", type=float, default=0.0, help="transactions per second (0: as fast as it can)"
+    )
+    demo.set_defaults(func=_cmd_demo)
+
+    cc = sub.add_parser("check-config", help="validate a YAML config file")
+    cc.add_argument("file")
+    cc.set_defaults(func=_cmd_check_config)
+
+    from streamcount.generator import register_cli
+
+    register_cli(sub)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return int(args.func(args))
+    except (StreamcountError, OSError, ValueError) as exc:
+        message = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        print(f"streamcount {args.command}: error: {message}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
