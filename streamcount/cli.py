@@ -68,7 +68,7 @@ def _add_setting_options(parser: argparse.ArgumentParser) -> None:
         )
 
 
-def _config_from_args(args: argparse.Namespace, extra: dict[str, object] | None = None) -> Any:
+def config_from_args(args: argparse.Namespace, extra: dict[str, object] | None = None) -> Any:
     from streamcount.config import Config
     from streamcount.configload import apply_overrides, load_config
 
@@ -85,7 +85,7 @@ def _config_from_args(args: argparse.Namespace, extra: dict[str, object] | None 
 def _cmd_replay(args: argparse.Namespace) -> int:
     from streamcount.replay import replay_file
 
-    config = _config_from_args(args)
+    config = config_from_args(args)
     parts = [p.strip() for p in args.report.split(",") if p.strip()]
     result = replay_file(args.path, config, report=parts, progress=sys.stderr)
     text = json.dumps(result.report, separators=(",", ":"), allow_nan=False)
