@@ -80,6 +80,7 @@ import bisect
 import csv
 import json
 import math
+import os
 import re
 import sys
 import time
@@ -681,7 +682,10 @@ def generate_main(args: argparse.Namespace) -> int:
             write(records, sys.stdout, flush=args.pace)
             sys.stdout.flush()
         except BrokenPipeError:  # the reader went away (e.g. `| head`): not an error
-            sys.stdout = None  # type: ignore[assignment]  # silence the flush at exit
+            # Point stdout at devnull so the interpreter's final flush does not fail again
+            # (the recipe in the Python docs, "Note on SIGPIPE").
+            devnull = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(devnull, sys.stdout.fileno())
         return 0
     try:
         with open(args.output, "w", encoding="utf-8", newline="") as out:

@@ -17,6 +17,7 @@ import itertools
 import json
 import math
 from collections import Counter, defaultdict
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -611,3 +612,22 @@ def test_catalogue_is_an_invented_shop() -> None:
 def test_docstring_examples_run(module) -> None:
     result = doctest.testmod(module, optionflags=doctest.ELLIPSIS | doctest.NORMALIZE_WHITESPACE)
     assert result.attempted > 0 and result.failed == 0
+
+
+def test_sample_feed_matches_its_documented_command(tmp_path) -> None:
+    # examples/README-sample-feed.md gives the command; the committed file must be its output.
+    root = Path(__file__).resolve().parents[1]
+    sample = root / "examples" / "sample-feed.jsonl"
+    out = tmp_path / "sample-feed.jsonl"
+    argv = "--transactions 2000 --items 120 --patterns 60 --avg-transaction-size 6"
+    argv += " --avg-pattern-size 3 --seed 7 --rate 0.5 --format jsonl"
+    planted = ("sourdough-loaf", "farmhouse-butter", "wildflower-honey-jar")
+    drift = ",".join(planted) + "@1200~0.1"
+    assert _run_cli([*argv.split(), "--drift", drift, "--output", str(out)]) == 0
+    assert out.read_bytes() == sample.read_bytes()
+    readme = (root / "examples" / "README-sample-feed.md").read_text(encoding="utf-8")
+    assert " ".join(readme.split()).count(drift) == 1
+    # what the README states about the planted pattern, recounted by brute force
+    rows = [json.loads(line) for line in sample.read_text(encoding="utf-8").splitlines()]
+    hits = [set(planted) <= set(row["items"]) for row in rows]
+    assert len(rows) == 2000 and not any(hits[:1200]) and sum(hits[1200:]) == 94
