@@ -230,10 +230,8 @@ class Drift:
             raise ConfigError("drift.items", self.items, "must be a non-empty tuple of names")
         for name in self.items:
             if not isinstance(name, str) or not name or _NAME_FORBIDDEN.search(name):
-                raise ConfigError(
-                    "drift.items", self.items, f"{name!r} must be a non-empty name without "
-                    "whitespace, ',' or '@'"
-                )  # fmt: skip
+                rule = f"{name!r}: each name must be non-empty, without whitespace, ',' or '@'"
+                raise ConfigError("drift.items", self.items, rule)
         if len(set(self.items)) != len(self.items):
             raise ConfigError("drift.items", self.items, "must not repeat an item")
         if not _is_int(self.start) or self.start < 0:
