@@ -1,0 +1,297 @@
+"""``streamcount demo``: an invented shop's live order feed, watched by the real service.
+
+The shop is :data:`streamcount.catalog.SHOP_NAME`. Its feed comes from the Agrawal & Srikant
+generator (:mod:`streamcount.generator`) with two planted changes the demo then catches:
+
+* from the start, a bundle (``chai-spice-mix`` with ``stoneware-mug``) sells together; at
+  transaction 9,000 the mugs go out of stock and the pattern stops: a ``faded`` alert;
+* at transaction 6,000 a promotion on ``sourdough-starter-jar`` starts pulling an unplanned
+  companion, ``bread-scoring-blade``: ``surged`` and ``emerged`` alerts.
+
+Everything else is the real thing: the engine, rules, alerts, sinks, the HTTP listener with
+``/metrics`` and the JSON API. The feed is paced to finish in ``--duration`` seconds (45 by
+default); ``--forever`` keeps the feed going for a monitoring demo.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import threading
+import time
+from collections import Counter
+from collections.abc import Iterator
+from dataclasses import replace
+from typing import Any, TextIO
+
+from streamcount.catalog import SHOP_NAME
+from streamcount.config import (
+    AlertsConfig,
+    CheckpointConfig,
+    Config,
+    EngineConfig,
+    InputConfig,
+    RulesConfig,
+    ServerConfig,
+    SinksConfig,
+)
+from streamcount.generator import Drift, GeneratorParams, SyntheticFeed
+from streamcount.sinks import SinkStats
+from streamcount.sources import RawRecord
+
+__all__ = ["BUNDLE", "DEMO_TRANSACTIONS", "PROMOTION", "demo_config", "demo_main"]
+
+#: planted patterns: (items, first transaction, first transaction without it)
+BUNDLE = ("chai-spice-mix", "stoneware-mug")
+PROMOTION = ("sourdough-starter-jar", "bread-scoring-blade")
+BUNDLE_STOP = 9000
+PROMOTION_START = 6000
+DEMO_TRANSACTIONS = 15000
+_DRIFT_RATE = 0.06
+
+
+def demo_feed(seed: int, transactions: int | None) -> SyntheticFeed:
+    """The demo shop's feed: ordinary baskets plus the two planted changes."""
+    params = GeneratorParams(
+        transactions=transactions if transactions is not None else 10**12,
+        avg_transaction_size=5.0,
+        avg_pattern_size=2.0,
+        patterns=300,
+        items=120,
+        seed=seed,
+    )
+    drifts = (
+        Drift(BUNDLE, start=0, stop=BUNDLE_STOP, rate=_DRIFT_RATE),
+        Drift(PROMOTION, start=PROMOTION_START, rate=_DRIFT_RATE),
+    )
+    return SyntheticFeed(params, drifts)
+
+
+def demo_config(listen: str | None) -> Config:
+    """Settings sized for the demo: a 3,000-order window in panes of 500."""
+    return Config(
+        input=InputConfig(path=None, format="jsonl", dead_letter_path=None),
+        engine=EngineConfig(
+            epsilon=0.002, max_itemset_size=3, window_size=3000, pane_size=500, batch_size=500
+        ),
+        rules=RulesConfig(
+            min_support=0.02,
+            min_confidence=0.3,
+            min_lift=3.0,
+            max_p_value=0.001,
+            confirm_evaluations=2,
+            cooldown_evaluations=6,
+        ),
+        alerts=AlertsConfig(growth_rate=3.0, recent_panes=1, surge_min_count=20),
+        sinks=SinksConfig(log=False),
+        server=ServerConfig(listen=listen),
+        checkpoint=CheckpointConfig(checkpoint_dir=None),
+    )
+
+
+class PacedFeedSource:
+    """A source that releases the feed's orders as JSON lines at ``rate`` per second.
+
+    Event timestamps are the release times, so the service's event lag stays near zero.
+    """
+
+    def __init__(self, feed: SyntheticFeed, rate: float, *, clock: Any = time.monotonic) -> None:
+        self._it: Iterator[tuple[str, ...]] = feed.transactions()
+        self.rate = rate
+        self.clock = clock
+        self.started = clock()
+        self.wall_start = time.time()
+        self.released = 0
+        self.offset = 0
+        self.exhausted = False
+
+    def read(self, max_records: int = 10000, timeout: float = 0.0) -> list[RawRecord]:
+        if self.exhausted:
+            return []
+        due = max_records
+        if self.rate > 0:
+            due = min(max_records, int((self.clock() - self.started) * self.rate) - self.released)
+            if due <= 0:
+                time.sleep(min(timeout, 1.0 / self.rate))
+                return []
+        out: list[RawRecord] = []
+        for _ in range(due):
+            try:
+                items = next(self._it)
+            except StopIteration:
+                self.exhausted = True
+                break
+            self.released += 1
+            ts = self.wall_start + (self.released / self.rate if self.rate > 0 else 0.0)
+            line = json.dumps(
+                {"id": f"q-{self.released:07d}", "ts": round(ts, 3), "items": list(items)}
+            ).encode()
+            end = self.offset + len(line) + 1
+            out.append(RawRecord(line, self.offset, end))
+            self.offset = end
+        return out
+
+    def position(self) -> dict[str, Any]:
+        return {"offset": self.offset}
+
+    def close(self) -> None:
+        self.exhausted = True
+
+
+def format_alert(record: dict[str, Any]) -> str:
+    """One readable line (two for rules) for an alert record."""
+    m = record["measures"]
+    seq = f"order {record['seq']:,}"
+
+    def iv(name: str, pct: bool = False) -> str:
+        x = m.get(name)
+        if not x or x.get("value") is None:
+            return "n/a"
+        fmt = (lambda v: f"{100 * v:.1f}%") if pct else (lambda v: f"{v:.2f}")
+        lo = "?" if x.get("low") is None else fmt(x["low"])
+        hi = "inf" if x.get("high") is None else fmt(x["high"])
+        return f"{fmt(x['value'])} [{lo}..{hi}]"
+
+    kind = record["kind"].upper()
+    if record["kind"] == "surged":
+        gr = record.get("growth_rate") or {}
+        low = gr.get("low")
+        growth = f"at least {low:.1f}x" if low is not None else "unbounded"
+        return (
+            f"[{seq}] {kind:8} {' + '.join(record['items'])}: bought together {growth} as often "
+            f"in the last pane as before; support {iv('support', True)}"
+        )
+    rule = f"{' + '.join(record['antecedent'])} => {' + '.join(record['consequent'])}"
+    return (
+        f"[{seq}] {kind:8} {rule}\n"
+        f"{'':>12}support {iv('support', True)}  confidence {iv('confidence', True)}  "
+        f"lift {iv('lift')}"
+    )
+
+
+class ConsoleSink:
+    """Prints each alert as it fires (readable lines, or JSON lines with ``--json``)."""
+
+    name = "console"
+
+    def __init__(self, out: TextIO, *, as_json: bool, status_line: bool) -> None:
+        self.out = out
+        self.as_json = as_json
+        self.status_line = status_line
+        self.sent = 0
+        self.records: list[dict[str, Any]] = []
+        self._lock = threading.Lock()
+
+    def emit(self, record: dict[str, Any]) -> None:
+        text = json.dumps(record, sort_keys=True) if self.as_json else format_alert(record)
+        with self._lock:
+            if self.status_line:
+                self.out.write("\r\033[K")
+            self.out.write(text + "\n")
+            self.out.flush()
+            self.sent += 1
+            self.records.append(record)
+
+    def close(self, timeout: float | None = None) -> None:
+        pass
+
+    def stats(self) -> SinkStats:
+        return SinkStats(self.sent, 0, 0, 0)
+
+
+def demo_main(args: argparse.Namespace) -> int:
+    """Run the demo; returns 0. ``args``: duration, forever, json, listen, seed, rate."""
+    from streamcount.app import Service
+
+    out = sys.stdout
+    tty = out.isatty() and not args.json
+    total = None if args.forever else DEMO_TRANSACTIONS
+    rate = args.rate if args.rate > 0 else DEMO_TRANSACTIONS / max(args.duration, 0.5)
+    config = demo_config(args.listen)
+    source = PacedFeedSource(demo_feed(args.seed, total), rate)
+    console = ConsoleSink(out, as_json=args.json, status_line=tty)
+    service = Service(config, source=source, extra_sinks=(console,))
+    bound = service.start_server()
+    say = (lambda text: print(text, file=sys.stderr)) if args.json else print
+    say(f"{SHOP_NAME}: live order feed, {rate:,.0f} orders/s (invented shop, generated data)")
+    say(
+        f"Planted: {' + '.join(BUNDLE)} sold together until order {BUNDLE_STOP:,}; a promotion "
+        f"pulls {' + '.join(PROMOTION)} from order {PROMOTION_START:,}."
+    )
+    if bound:
+        say(f"Metrics: http://{bound[0]}:{bound[1]}/metrics   API: http://{bound[0]}:{bound[1]}/v1/status")
+    say("Warm-up: no alerts until the first window (3,000 orders) is full.")
+    started = time.monotonic()
+    last_status = 0.0
+    try:
+        import signal
+
+        signal.signal(signal.SIGTERM, service.request_stop)
+        signal.signal(signal.SIGINT, service.request_stop)
+        service._ready = True
+        while not service._stop.is_set():
+            service.turn(timeout=0.05)
+            now = time.monotonic()
+            if source.exhausted:
+                break
+            if not args.forever and now - started > args.duration + 30:
+                break  # a slow machine: stop anyway, the summary says how far it got
+            if now - last_status >= (0.25 if tty else 5.0):
+                last_status = now
+                line = _status_line(service, now - started)
+                if tty:
+                    out.write("\r\033[K" + line)
+                    out.flush()
+                elif not args.json:
+                    print(line)
+    finally:
+        service.shutdown()
+    if tty:
+        out.write("\r\033[K")
+    _summary(service, console, time.monotonic() - started, say)
+    return 0
+
+
+def _status_line(service: Any, elapsed: float) -> str:
+    st = service.status()
+    window = st["window"]
+    fill = window["transactions"] / service.config.engine.window_size
+    rate = st["transactions_seen"] / max(elapsed, 1e-9)
+    return (
+        f"{st['transactions_seen']:>7,} orders | window {100 * min(fill, 1):3.0f}% full | "
+        f"{st['active_rules']:>3} active rules | {rate:,.0f}/s"
+    )
+
+
+def _summary(service: Any, console: ConsoleSink, elapsed: float, say: Any) -> None:
+    service._publish()
+    st = service.status()
+    w = st["window"]
+    kinds = Counter(r["kind"] for r in console.records)
+    say(
+        f"Done: {st['transactions_seen']:,} orders in {elapsed:.1f} s. Window: orders "
+        f"{w['first_seq']:,}..{w['last_seq']:,} ({w['transactions']:,}), counts exact to within "
+        f"{w['max_error']} orders."
+    )
+    say(
+        "Alerts: "
+        + ", ".join(f"{kinds.get(k, 0)} {k}" for k in ("emerged", "surged", "faded"))
+    )
+    rules = service.rules("lift", 5, None, None, None)["rules"]
+    if rules:
+        say("Active rules now (top 5 by lift):")
+        for r in rules:
+            lift = r["measures"]["lift"] if "measures" in r else r["lift"]
+            conf = r["measures"]["confidence"] if "measures" in r else r["confidence"]
+            say(
+                f"  {' + '.join(r['antecedent'])} => {' + '.join(r['consequent'])}: "
+                f"lift {lift['value']:.2f}, confidence {100 * conf['value']:.0f}%"
+            )
+    say(
+        "Alerts are signals for a person to review, not decisions on prices, stock or fraud "
+        "holds."
+    )
+
+
+_ = replace  # dataclasses.replace is re-exported for callers tweaking demo_config
