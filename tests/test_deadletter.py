@@ -1,0 +1,113 @@
+"""Dead-letter file: real bad records from the decoders, written and read back as JSON."""
+
+from __future__ import annotations
+
+import json
+import logging
+
+import pytest
+
+from streamcount.deadletter import RAW_CHARS, DeadLetterFile
+from streamcount.errors import ParseError
+from streamcount.formats import BasketDecoder, JsonlDecoder
+
+FIELDS = {"time", "source", "offset", "reason", "detail", "raw", "raw_truncated"}
+
+
+def rejected(decoder, record: bytes, offset: int = 0) -> ParseError:
+    with pytest.raises(ParseError) as info:
+        decoder.feed(record, offset, offset + len(record) + 1)
+    return info.value
+
+
+def read_lines(path) -> list[dict]:
+    return [json.loads(line) for line in path.read_text(encoding="utf-8").splitlines()]
+
+
+def test_lines_parse_as_json_with_every_field(tmp_path):
+    path = tmp_path / "nested" / "dir" / "dead.jsonl"  # parent directories are created
+    clock = iter([1000.5, 1001.0, 1002.25])
+    dl = DeadLetterFile(path, clock=lambda: next(clock))
+    dl.write(rejected(JsonlDecoder(), b'{"items": ["a"', 17), source="orders.jsonl")
+    dl.write(rejected(JsonlDecoder(), b'{"id": 4}', 40), source="orders.jsonl")
+    dl.write(rejected(BasketDecoder(), b"tea \xff\xfe jam", 3), source="-")
+    dl.flush()
+    rows = read_lines(path)
+    assert [set(r) for r in rows] == [FIELDS] * 3
+    assert [(r["time"], r["source"], r["offset"], r["reason"]) for r in rows] == [
+        (1000.5, "orders.jsonl", 17, "malformed"),
+        (1001.0, "orders.jsonl", 40, "missing_field"),
+        (1002.25, "-", 3, "bad_encoding"),
+    ]
+    assert rows[1]["raw"] == '{"id": 4}'
+    assert "'items'" in rows[1]["detail"]
+    # invalid bytes are shown as backslash escapes, the rest as text
+    assert rows[2]["raw"] == "tea \\xff\\xfe jam"
+    assert rows[2]["raw_truncated"] is False
+    assert dl.counts() == {"malformed": 1, "missing_field": 1, "bad_encoding": 1}
+    dl.close()
+
+
+def test_raw_is_cut_to_4096_characters(tmp_path):
+    path = tmp_path / "dead.jsonl"
+    record = b"{" + b"x" * 10_000
+    with DeadLetterFile(path) as dl:
+        dl.write(rejected(JsonlDecoder(max_record_bytes=100_000), record), source="s")
+        dl.write(rejected(JsonlDecoder(), b"[" + b"y" * (RAW_CHARS - 1)), source="s")
+    long_row, exact_row = read_lines(path)
+    assert len(long_row["raw"]) == RAW_CHARS
+    assert long_row["raw"] == record[:RAW_CHARS].decode()
+    assert long_row["raw_truncated"] is True
+    assert len(exact_row["raw"]) == RAW_CHARS
+    assert exact_row["raw_truncated"] is False
+
+
+def test_non_ascii_text_survives_the_round_trip(tmp_path):
+    path = tmp_path / "dead.jsonl"
+    with DeadLetterFile(path) as dl:
+        dl.write(rejected(JsonlDecoder(), '{"items": []}  # thé'.encode()), source="s")
+    (row,) = read_lines(path)
+    assert row["raw"] == '{"items": []}  # thé'
+
+
+def test_without_a_path_it_only_counts(tmp_path):
+    dl = DeadLetterFile(None)
+    for record in (b"a b c d", b"a b c d e", b"\xff"):
+        try:
+            BasketDecoder(max_basket_items=3).feed(record, 0, 1)
+        except ParseError as exc:
+            dl.write(exc, source="-")
+    dl.flush()
+    dl.close()
+    assert dl.counts() == {"too_many_items": 2, "bad_encoding": 1}
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_buffered_until_flush_and_appends_after_reopen(tmp_path):
+    path = tmp_path / "dead.jsonl"
+    path.write_text('{"earlier": true}\n')
+    dl = DeadLetterFile(path)
+    dl.write(ParseError("empty", "no items", offset=1, raw=b"{}"), source="a")
+    dl.flush()
+    assert len(path.read_text().splitlines()) == 2
+    dl.close()
+    dl.write(ParseError("empty", "no items", offset=2, raw="{}"), source="a")
+    dl.close()
+    rows = read_lines(path)
+    assert rows[0] == {"earlier": True}
+    assert [r["offset"] for r in rows[1:]] == [1, 2]
+    assert dl.counts() == {"empty": 2}
+
+
+def test_unwritable_path_warns_and_keeps_counting_even_as_root(tmp_path, caplog):
+    target = tmp_path / "is-a-directory"
+    target.mkdir()  # opening a directory for append fails for every user
+    caplog.set_level(logging.WARNING, logger="streamcount.deadletter")
+    dl = DeadLetterFile(target)
+    dl.write(ParseError("malformed", "x", offset=0, raw=b"{"), source="s")
+    dl.write(ParseError("malformed", "x", offset=1, raw=b"{"), source="s")
+    dl.flush()
+    dl.close()
+    assert dl.counts() == {"malformed": 2}
+    assert dl.failed_writes == 2
+    assert sum("cannot be written" in r.getMessage() for r in caplog.records) == 1
