@@ -79,7 +79,13 @@ from streamcount.config import AlertsConfig, RulesConfig
 from streamcount.errors import CheckpointError, ConfigError
 from streamcount.keys import pack
 from streamcount.measures import CountBounds, Measure, fisher_greater
-from streamcount.rules import Rule, derive_rules, joint_count_threshold, measure_rules
+from streamcount.rules import (
+    Rule,
+    at_least,
+    derive_rules,
+    joint_count_threshold,
+    measure_rules,
+)
 from streamcount.snapshot import WindowSnapshot
 
 __all__ = ["ALERT_KINDS", "Alert", "RuleMonitor", "Surge", "alert_id"]
@@ -440,11 +446,11 @@ class RuleMonitor:
         else:
             count, sup = rule.joint_count.low, rule.support.value
             conf, lift = rule.confidence.value, rule.lift.value
-        return (
-            count >= min_count * ratio
-            and sup >= cfg.min_support * ratio
-            and conf >= cfg.min_confidence * ratio
-            and lift >= cfg.min_lift * ratio
+        return bool(
+            at_least(count, min_count * ratio)
+            and at_least(sup, cfg.min_support * ratio)
+            and at_least(conf, cfg.min_confidence * ratio)
+            and at_least(lift, cfg.min_lift * ratio)
         )
 
     def _rule_thresholds(self, window: WindowSnapshot, kind: str) -> dict[str, object]:
@@ -520,7 +526,7 @@ class RuleMonitor:
                 self._rules[key] = state
 
         out: list[Alert] = []
-        for key in faded:
+        for key in sorted(faded):
             state = self._rules[key]
             if warm and state.announced:
                 out.append(self._rule_alert("faded", state.latest, window, seq, event_time))  # type: ignore[arg-type]
@@ -579,8 +585,10 @@ class RuleMonitor:
             gr_lo = (lr / n_r) / (np.maximum(ub, 1) / n_b)
             gr_hi = (ur / n_r) / (np.maximum(lb, 1) / n_b)
             gr_val = (lr / n_r) / (np.maximum(lb, 1) / n_b)
-            candidate = (gr_lo >= cfg.growth_rate) & (lr >= cfg.surge_min_count)
-            holds = (gr_hi >= cfg.growth_rate * ratio) & (ur >= cfg.surge_min_count * ratio)
+            candidate = at_least(gr_lo, cfg.growth_rate) & (lr >= cfg.surge_min_count)
+            holds = at_least(gr_hi, cfg.growth_rate * ratio) & at_least(
+                ur, cfg.surge_min_count * ratio
+            )
             # Python work only for growth candidates and followed itemsets
             for i in np.flatnonzero(candidate | is_followed).tolist():
                 items = tuple(sorted(names[j] for j in rows[i].tolist()))

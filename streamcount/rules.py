@@ -48,9 +48,26 @@ from streamcount.measures import (
 )
 from streamcount.snapshot import WindowSnapshot
 
-__all__ = ["Rule", "derive_rules", "joint_count_threshold", "measure_rules", "rule_p_value"]
+__all__ = [
+    "THRESHOLD_RTOL",
+    "Rule",
+    "at_least",
+    "derive_rules",
+    "joint_count_threshold",
+    "measure_rules",
+    "rule_p_value",
+]
 
 _SIGNIFICANCE = ("fisher", "chi2")
+
+#: thresholds are relaxed by this relative amount before comparing, so that float rounding in
+#: products such as ``0.07 * 100 = 7.000000000000001`` does not reject an exact match
+THRESHOLD_RTOL = 1e-9
+
+
+def at_least(value: np.ndarray | float, threshold: float) -> np.ndarray | bool:
+    """``value >= threshold`` up to :data:`THRESHOLD_RTOL` (relative)."""
+    return value >= threshold - THRESHOLD_RTOL * abs(threshold)  # type: ignore[no-any-return]
 
 
 @dataclass(frozen=True, slots=True)
@@ -258,7 +275,7 @@ def derive_rules(
         k = level.size
         if not len(level):
             continue
-        keep = (level.count >= threshold) & (level.count >= config.min_support * n)
+        keep = (level.count >= threshold) & at_least(level.count, config.min_support * n)
         if not keep.any():
             continue
         rows = level.items[keep]
@@ -281,7 +298,7 @@ def derive_rules(
 
     conf = m.confidence.low if config.conservative else m.confidence.value
     lift = m.lift.low if config.conservative else m.lift.value
-    passed = (conf >= config.min_confidence) & (lift >= config.min_lift)
+    passed = at_least(conf, config.min_confidence) & at_least(lift, config.min_lift)
     idx = np.flatnonzero(passed)
     if idx.size == 0:
         return []
@@ -298,7 +315,7 @@ def derive_rules(
         p: float | None = None
         if config.max_p_value is not None:
             p = rule_p_value(config, n, int(m.a_low[i]), int(m.r_high[i]), int(m.q_high[i]))
-            if not p <= config.max_p_value:
+            if not p <= config.max_p_value * (1.0 + THRESHOLD_RTOL):
                 continue
         chosen.append(i)
         p_values.append(p)

@@ -162,15 +162,25 @@ def test_conservative_intervals_with_slack():
     baskets += [{"p0", "p1"}] * 60
     exact_snap = make_snapshot(baskets)
     loose = make_snapshot(baskets, slack=3, rng=random.Random(5))
-    cfg = RulesConfig(**{**OPEN, "min_lift": 1.2}, min_count=1)
     exact_rules = by_key(derive_rules(exact_snap, RulesConfig(**OPEN, min_count=1)))
-    for rule in derive_rules(loose, cfg):
+    loose_rules = derive_rules(loose, RulesConfig(**OPEN, min_count=1))
+    assert len(loose_rules) > 20
+    for rule in loose_rules:
         true = exact_rules[rule.key]
         # every interval holds the exact value
         for name in ("support", "confidence", "lift", "leverage", "conviction"):
             assert rule.measure(name).interval.contains(true.measure(name).value), name
-        # conservative: the lift filter is on the low end, so the exact lift passes too
-        assert true.lift.value >= 1.2
+    # conservative: the lift filter is on the low end, so the exact lift passes too
+    strict = derive_rules(loose, RulesConfig(**{**OPEN, "min_lift": 1.1}, min_count=1))
+    assert {r.key for r in strict} == {(("p0",), ("p1",)), (("p1",), ("p0",))}
+    for rule in strict:
+        assert rule.lift.low >= 1.1 and exact_rules[rule.key].lift.value >= 1.1
+    # non-conservative: judged on the point value, which may pass where the low end does not
+    point = derive_rules(
+        loose, RulesConfig(**{**OPEN, "min_lift": 1.02, "conservative": False}, min_count=1)
+    )
+    assert all(r.lift.value >= 1.02 for r in point)
+    assert any(r.lift.low < 1.02 for r in point)
     # default joint count threshold: 10 x max_error
     assert joint_count_threshold(loose, RulesConfig()) == 10 * loose.max_error
     assert all(r.joint_count.low >= 60 for r in derive_rules(loose, RulesConfig(**OPEN)))
