@@ -355,9 +355,10 @@ def check_alert_dict(d: dict, schema: dict) -> None:
 
 
 def _collect_alert_dicts() -> list[dict]:
-    stream = make_stream(30, pair_from=8, pair_until=18, rate=0.3, base=0.005, seed=6)
+    stream = make_stream(34, pair_from=15, pair_until=19, rate=0.3, base=0.005, seed=4)
     cfg = AlertsConfig(growth_rate=3.0, surge_min_count=20, surge_max_p_value=1e-3)
-    alerts: list[Alert] = [x for _, xs in run(RuleMonitor(RULES, cfg), stream) for x in xs]
+    history = run(RuleMonitor(RULES, cfg), stream, panes=10)
+    alerts: list[Alert] = [x for _, xs in history for x in xs]
     # a rule with confidence 1: infinite conviction written as null
     m = RuleMonitor(FAMILY, NO_SURGE)
     alerts += m.evaluate(pair_snapshot(300, r=300, q=400), seq=5, event_time=None)
