@@ -1,0 +1,37 @@
+"""Shared test settings: hypothesis profiles.
+
+``STREAMCOUNT_HYPOTHESIS_PROFILE=ci`` runs more examples without a deadline; the default
+``dev`` profile keeps the suite quick on a laptop.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import warnings
+
+from hypothesis import HealthCheck, settings
+
+# When a property test fails, hypothesis' pytest plugin imports its patch writer, which pulls
+# in libcst -> mypy_extensions and emits a DeprecationWarning; with ``filterwarnings = error``
+# that turns the failure report into an INTERNALERROR that stops the whole run. Import it once
+# here with that warning silenced so a failing example is reported normally.
+with warnings.catch_warnings():
+    warnings.simplefilter("ignore", DeprecationWarning)
+    # without libcst the plugin skips the patch writer too
+    with contextlib.suppress(ImportError):
+        import hypothesis.extra._patching  # noqa: F401
+
+settings.register_profile(
+    "dev",
+    max_examples=50,
+    deadline=None,
+    suppress_health_check=[HealthCheck.too_slow],
+)
+settings.register_profile(
+    "ci",
+    max_examples=300,
+    deadline=None,
+    suppress_health_check=[HealthCheck.too_slow],
+)
+settings.load_profile(os.environ.get("STREAMCOUNT_HYPOTHESIS_PROFILE", "dev"))
