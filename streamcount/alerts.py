@@ -274,6 +274,15 @@ def _bounds_by_rows(snapshot: WindowSnapshot, rows: np.ndarray) -> tuple[np.ndar
     return low, high
 
 
+def _by_consequent(
+    active: Mapping[RuleKey, _State],
+) -> dict[tuple[str, ...], dict[RuleKey, _State]]:
+    groups: dict[tuple[str, ...], dict[RuleKey, _State]] = {}
+    for key, state in active.items():
+        groups.setdefault(key[1], {})[key] = state
+    return groups
+
+
 class RuleMonitor:
     """Follows rules and itemsets from pane to pane and returns alerts when they change.
 
@@ -395,8 +404,10 @@ class RuleMonitor:
             (self._surges, self._surge_family_rep),
         ):
             active = {k: s for k, s in states.items() if s.active}
-            for state in active.values():
-                state.announced = rep_of(state.latest, active) is None  # type: ignore[operator]
+            groups = _by_consequent(active) if states is self._rules else {None: active}
+            for key, state in active.items():
+                group = groups[key[1] if states is self._rules else None]  # type: ignore[index]
+                state.announced = rep_of(state.latest, group) is None  # type: ignore[operator]
         logger.info(
             "alert warm-up over at seq %d: %d rules and %d surges active (starting state, "
             "not alerted)",
@@ -406,6 +417,7 @@ class RuleMonitor:
         )
 
     def _rule_family_rep(self, rule: Rule, active: Mapping[RuleKey, _State]) -> RuleKey | None:
+        """The representative of ``rule``'s family among ``active`` (same consequent only)."""
         ante = set(rule.antecedent)
         tol = 1.0 + self.family_lift_tolerance
         best: RuleKey | None = None
@@ -413,7 +425,7 @@ class RuleMonitor:
             other = state.latest
             if not isinstance(other, Rule) or key == rule.key:
                 continue
-            if other.consequent != rule.consequent or not set(other.antecedent) < ante:
+            if not set(other.antecedent) < ante:
                 continue
             if rule.lift.low <= other.lift.high * tol and (
                 best is None or (len(key[0]), key) < (len(best[0]), best)
@@ -533,10 +545,10 @@ class RuleMonitor:
             state.announced = False
             if state.idle() and cfg.cooldown_evaluations == 0:
                 self._rules.pop(key, None)
-        active = {k: s for k, s in self._rules.items() if s.active}
+        groups = _by_consequent({k: s for k, s in self._rules.items() if s.active})
         for key in sorted(emerged, key=lambda k: (len(k[0]), k)):
             state = self._rules[key]
-            rep = self._rule_family_rep(state.latest, active)  # type: ignore[arg-type]
+            rep = self._rule_family_rep(state.latest, groups[key[1]])  # type: ignore[arg-type]
             state.announced = warm and rep is None
             if state.announced:
                 out.append(self._rule_alert("emerged", state.latest, window, seq, event_time))  # type: ignore[arg-type]
