@@ -255,7 +255,18 @@ def _check_type(key: str, value: Any, hint: Any) -> Any:
             return float(value)
         if tp is str and isinstance(value, str):
             return value
-    return _fail(key, value, f"must be {wanted}, not {type(value).__name__}")
+    rule = f"must be {wanted}, not {type(value).__name__}"
+    if float in options and isinstance(value, str) and _looks_numeric(value):
+        # YAML 1.1 reads 1e-3 (no dot) as text
+        rule += f"; write it with a dot, e.g. {float(value)!r}"
+    return _fail(key, value, rule)
+
+
+def _looks_numeric(text: str) -> bool:
+    try:
+        return math.isfinite(float(text))
+    except ValueError:
+        return False
 
 
 def _fail(key: str, value: object, rule: str) -> typing.NoReturn:

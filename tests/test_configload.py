@@ -232,6 +232,13 @@ def test_bad_config_names_key_and_rule(tmp_path: Path, text: str, key: str, rule
     assert err.source == str(path)  # type: ignore[attr-defined]
 
 
+def test_exponent_without_dot_gets_a_hint(tmp_path: Path) -> None:
+    # PyYAML follows YAML 1.1, where 1e-3 (no dot) is a string, not a float
+    with pytest.raises(ConfigError, match=r"write it with a dot, e\.g\. 0\.001"):
+        load_config(_write(tmp_path, "engine:\n  epsilon: 1e-3\n"))
+    assert load_config(_write(tmp_path, "engine:\n  epsilon: 1.0e-3\n")).engine.epsilon == 0.001
+
+
 def test_bool_accepted_only_for_bool(tmp_path: Path) -> None:
     with pytest.raises(ConfigError, match="must be bool, not int"):
         load_config(_write(tmp_path, "input:\n  follow: 1\n"))
