@@ -36,12 +36,13 @@ returned. The rules active when warm-up ends are the starting state: they are li
 
 Families (deduplication)
 ------------------------
-A rule ``X' => Y`` belongs to the *family* of an active rule ``X => Y`` when ``X`` is a proper
-subset of ``X'`` (same consequent) and adding the extra items brings no lift gain beyond the
-smaller rule's interval: ``lift_low(X' => Y) <= lift_high(X => Y) x (1 +
-family_lift_tolerance)``. Only the family's *representative* (the active rule with the
-smallest antecedent; rules emerging in the same evaluation are taken smallest antecedent
-first) alerts; a member is tracked and listed as active, but neither its ``emerged`` nor its
+A rule ``R'`` belongs to the *family* of an active rule ``R`` when ``R``'s itemset is contained
+in ``R'``'s (a subset, or the same itemset split another way), ``R`` comes first in the family
+order (fewer items, then fewer antecedent items, then by name) and ``R'`` brings no lift gain
+beyond ``R``'s interval: ``lift_low(R') <= lift_high(R) x (1 + family_lift_tolerance)``. So
+``X => Y`` and ``Y => X`` (equal lift) are one family, and so are a rule and its superset rules
+without a lift gain. Only the family's *representative* (the first active rule in the family
+order) alerts; a member is tracked and listed as active, but neither its ``emerged`` nor its
 ``faded`` alert is sent. Surges form families the same way: an itemset ``S`` is a member of an
 active surge ``T`` when ``T`` is a proper subset of ``S`` and ``GR_lo(S) <= GR_hi(T) x (1 +
 family_lift_tolerance)``.
@@ -274,15 +275,6 @@ def _bounds_by_rows(snapshot: WindowSnapshot, rows: np.ndarray) -> tuple[np.ndar
     return low, high
 
 
-def _by_consequent(
-    active: Mapping[RuleKey, _State],
-) -> dict[tuple[str, ...], dict[RuleKey, _State]]:
-    groups: dict[tuple[str, ...], dict[RuleKey, _State]] = {}
-    for key, state in active.items():
-        groups.setdefault(key[1], {})[key] = state
-    return groups
-
-
 class RuleMonitor:
     """Follows rules and itemsets from pane to pane and returns alerts when they change.
 
@@ -404,10 +396,8 @@ class RuleMonitor:
             (self._surges, self._surge_family_rep),
         ):
             active = {k: s for k, s in states.items() if s.active}
-            groups = _by_consequent(active) if states is self._rules else {None: active}
-            for key, state in active.items():
-                group = groups[key[1] if states is self._rules else None]  # type: ignore[index]
-                state.announced = rep_of(state.latest, group) is None  # type: ignore[operator]
+            for state in active.values():
+                state.announced = rep_of(state.latest, active) is None  # type: ignore[operator]
         logger.info(
             "alert warm-up over at seq %d: %d rules and %d surges active (starting state, "
             "not alerted)",
@@ -417,20 +407,30 @@ class RuleMonitor:
         )
 
     def _rule_family_rep(self, rule: Rule, active: Mapping[RuleKey, _State]) -> RuleKey | None:
-        """The representative of ``rule``'s family among ``active`` (same consequent only)."""
-        ante = set(rule.antecedent)
+        """The representative of ``rule``'s family among the ``active`` rules, or ``None``.
+
+        Another active rule represents ``rule`` when its itemset is contained in ``rule``'s
+        (the same itemset split another way, or a subset), it comes first in the family order
+        (fewer items, then fewer antecedent items, then by name), and ``rule`` shows no lift
+        gain beyond it. ``X => Y`` and ``Y => X`` have the same lift, so the two directions of
+        a rule always share a family.
+        """
+        items = set(rule.items)
         tol = 1.0 + self.family_lift_tolerance
+        rank = (len(rule.items), len(rule.antecedent), rule.key)
         best: RuleKey | None = None
+        best_rank: tuple[int, int, RuleKey] | None = None
         for key, state in active.items():
             other = state.latest
             if not isinstance(other, Rule) or key == rule.key:
                 continue
-            if not set(other.antecedent) < ante:
+            other_rank = (len(other.items), len(other.antecedent), key)
+            if other_rank >= rank or not set(other.items) <= items:
                 continue
             if rule.lift.low <= other.lift.high * tol and (
-                best is None or (len(key[0]), key) < (len(best[0]), best)
+                best_rank is None or other_rank < best_rank
             ):
-                best = key
+                best, best_rank = key, other_rank
         return best
 
     def _surge_family_rep(
@@ -545,10 +545,10 @@ class RuleMonitor:
             state.announced = False
             if state.idle() and cfg.cooldown_evaluations == 0:
                 self._rules.pop(key, None)
-        groups = _by_consequent({k: s for k, s in self._rules.items() if s.active})
+        active = {k: s for k, s in self._rules.items() if s.active}
         for key in sorted(emerged, key=lambda k: (len(k[0]), k)):
             state = self._rules[key]
-            rep = self._rule_family_rep(state.latest, groups[key[1]])  # type: ignore[arg-type]
+            rep = self._rule_family_rep(state.latest, active)  # type: ignore[arg-type]
             state.announced = warm and rep is None
             if state.announced:
                 out.append(self._rule_alert("emerged", state.latest, window, seq, event_time))  # type: ignore[arg-type]

@@ -37,10 +37,10 @@ from streamcount.configload import describe, fingerprint
 from streamcount.deadletter import DeadLetterFile
 from streamcount.engine import Engine
 from streamcount.errors import CheckpointError, InputError, ParseError
-from streamcount.formats import JsonlDecoder, make_decoder
+from streamcount.formats import JsonlDecoder, decode_raw, make_decoder
 from streamcount.metrics import Metrics, RuleSample, ServiceState
 from streamcount.rules import Rule
-from streamcount.sinks import JsonlSink, LogSink, Sink, SinkFanout, WebhookSink
+from streamcount.sinks import Sink, SinkFanout, build_sinks
 from streamcount.snapshot import EngineStatistics, WindowSnapshot
 from streamcount.sources import FollowedFile, IterableSource, RawRecord, StdinSource
 
@@ -98,7 +98,11 @@ class Service:
         self._ready = False
         self.turns = 0
 
-        self.decoder = make_decoder(config.input, config.engine.max_basket_items)
+        self.decoder = make_decoder(
+            config.input,
+            config.engine.max_basket_items,
+            require_ts=config.engine.window_seconds is not None,
+        )
         self.monitor = RuleMonitor(config.rules, config.alerts)
         self.engine = Engine(config.engine, on_pane_closed=self._on_pane_closed)
         restored = None if fresh else self._restore()
@@ -108,17 +112,8 @@ class Service:
         )
         self.dead_letter = DeadLetterFile(config.input.dead_letter_path)
 
-        sinks: list[Sink] = []
-        if config.sinks.log:
-            sinks.append(LogSink())
-        if config.sinks.stdout:
-            sinks.append(JsonlSink(None))
-        if config.sinks.file:
-            sinks.append(JsonlSink(config.sinks.file))
-        if config.sinks.webhook.url:
-            sinks.append(WebhookSink(config.sinks.webhook))
-        sinks.extend(extra_sinks)
-        self.sinks = SinkFanout(sinks)
+        configured = build_sinks(config.sinks)
+        self.sinks = SinkFanout((*configured.sinks, *extra_sinks))
 
         self.metrics = Metrics(
             self.registry,
@@ -252,20 +247,8 @@ class Service:
         origin: list[RawRecord | None] = []
         rejected: Counter[str] = Counter()
         for rec in records:
-            if rec.too_long:
-                self._reject(
-                    ParseError(
-                        "too_long",
-                        f"record longer than input.max_record_bytes="
-                        f"{self.config.input.max_record_bytes}",
-                        offset=rec.offset,
-                        raw=rec.data,
-                    ),
-                    rejected,
-                )
-                continue
             try:
-                txs = self.decoder.feed(rec.data, rec.offset, rec.end_offset)
+                txs = decode_raw(self.decoder, rec, self.config.input.max_record_bytes)
             except ParseError as exc:
                 self._reject(exc, rejected)
                 continue
@@ -298,9 +281,7 @@ class Service:
                 rec = origin[rej.index]
                 raw = rec.data if rec is not None else " ".join(baskets[rej.index]).encode()
                 self._reject(
-                    ParseError(
-                        rej.reason, rej.detail, offset=rec.offset if rec else None, raw=raw
-                    ),
+                    ParseError(rej.reason, rej.detail, offset=rec.offset if rec else None, raw=raw),
                     rejected,
                 )
         if records or baskets or rejected:
@@ -341,7 +322,7 @@ class Service:
         self._publish(window)
 
     def _observe_sinks(self) -> None:
-        stats = self.sinks.stats()
+        stats = self.sinks.stats_by_sink()
         self.metrics.observe_sinks(
             {name: s.failed for name, s in stats.items()},
             {name: s.dropped for name, s in stats.items()},
@@ -384,7 +365,9 @@ class Service:
             active_rules=len(view.rules),
             last_checkpoint_unix=self._last_checkpoint_unix,
             event_lag_seconds=lag,
-            top_rules=tuple(RuleSample.from_rule(r) for r in view.rules[: self.config.metrics.top_rules]),
+            top_rules=tuple(
+                RuleSample.from_rule(r) for r in view.rules[: self.config.metrics.top_rules]
+            ),
         )
 
     # -- checkpoints and shutdown -------------------------------------------------------------
@@ -431,7 +414,6 @@ class Service:
 
     # -- ApiBackend (called from HTTP threads; reads only the published view) ------------------
 
-    @property
     def ingest_enabled(self) -> bool:
         return bool(self.config.input.http_ingest)
 
@@ -492,7 +474,7 @@ class Service:
 
     def ingest(self, body: bytes, content_type: str) -> dict[str, Any]:
         """Decode a JSON object or NDJSON body now (in the HTTP thread); count it next turn."""
-        if not self.ingest_enabled:
+        if not self.ingest_enabled():
             raise InputError("HTTP ingest is off (input.http_ingest: false)")
         decoder = JsonlDecoder(
             self.config.input.jsonl,
