@@ -33,7 +33,7 @@ from streamcount import __version__
 from streamcount.alerts import RuleMonitor
 from streamcount.checkpoint import load_latest_checkpoint, save_checkpoint
 from streamcount.config import Config
-from streamcount.configload import describe, fingerprint
+from streamcount.configload import describe, fingerprint, fingerprint_settings
 from streamcount.deadletter import DeadLetterFile
 from streamcount.engine import Engine
 from streamcount.errors import CheckpointError, InputError, ParseError
@@ -131,7 +131,9 @@ class Service:
         directory = self.config.checkpoint.checkpoint_dir
         if not directory:
             return None
-        loaded = load_latest_checkpoint(directory, fingerprint=self._fingerprint)
+        loaded = load_latest_checkpoint(
+            directory, fingerprint=self._fingerprint, settings=fingerprint_settings(self.config)
+        )
         if loaded is None:
             logger.info("no checkpoint in %s; starting fresh", directory)
             return None
@@ -389,9 +391,13 @@ class Service:
         }
         try:
             path = save_checkpoint(
-                directory, meta=meta, arrays=arrays, fingerprint=self._fingerprint
+                directory,
+                meta=meta,
+                arrays=arrays,
+                fingerprint=self._fingerprint,
+                settings=fingerprint_settings(self.config),
             )
-        except OSError as exc:
+        except (OSError, CheckpointError) as exc:
             logger.warning("checkpoint to %s failed: %s", directory, exc)
             self.metrics.observe_checkpoint(False, now)
         else:

@@ -5,7 +5,7 @@ generator (:mod:`streamcount.generator`) with two planted changes the demo then 
 
 * from the start, a bundle (``chai-spice-mix`` with ``stoneware-mug``) sells together; at
   transaction 9,000 the mugs go out of stock and the pattern stops: a ``faded`` alert;
-* at transaction 6,000 a promotion on ``sourdough-starter-jar`` starts pulling an unplanned
+* at transaction 7,000 a promotion on ``sourdough-starter-jar`` starts pulling an unplanned
   companion, ``bread-scoring-blade``: ``surged`` and ``emerged`` alerts.
 
 Everything else is the real thing: the engine, rules, alerts, sinks, the HTTP listener with
@@ -22,7 +22,6 @@ import threading
 import time
 from collections import Counter
 from collections.abc import Iterator
-from dataclasses import replace
 from typing import Any, TextIO
 
 from streamcount.catalog import SHOP_NAME
@@ -46,9 +45,9 @@ __all__ = ["BUNDLE", "DEMO_TRANSACTIONS", "PROMOTION", "demo_config", "demo_main
 BUNDLE = ("chai-spice-mix", "stoneware-mug")
 PROMOTION = ("sourdough-starter-jar", "bread-scoring-blade")
 BUNDLE_STOP = 9000
-PROMOTION_START = 6000
-DEMO_TRANSACTIONS = 15000
-_DRIFT_RATE = 0.06
+PROMOTION_START = 7000
+DEMO_TRANSACTIONS = 16000
+_DRIFT_RATE = 0.08
 
 
 def demo_feed(seed: int, transactions: int | None) -> SyntheticFeed:
@@ -56,8 +55,8 @@ def demo_feed(seed: int, transactions: int | None) -> SyntheticFeed:
     params = GeneratorParams(
         transactions=transactions if transactions is not None else 10**12,
         avg_transaction_size=5.0,
-        avg_pattern_size=2.0,
-        patterns=300,
+        avg_pattern_size=3.0,
+        patterns=40,
         items=120,
         seed=seed,
     )
@@ -69,16 +68,16 @@ def demo_feed(seed: int, transactions: int | None) -> SyntheticFeed:
 
 
 def demo_config(listen: str | None) -> Config:
-    """Settings sized for the demo: a 3,000-order window in panes of 500."""
+    """Settings sized for the demo: a 6,000-order window in panes of 500."""
     return Config(
         input=InputConfig(path=None, format="jsonl", dead_letter_path=None),
         engine=EngineConfig(
-            epsilon=0.002, max_itemset_size=3, window_size=3000, pane_size=500, batch_size=500
+            epsilon=0.002, max_itemset_size=3, window_size=6000, pane_size=500, batch_size=500
         ),
         rules=RulesConfig(
-            min_support=0.02,
-            min_confidence=0.3,
-            min_lift=3.0,
+            min_support=0.03,
+            min_confidence=0.4,
+            min_lift=2.0,
             max_p_value=0.001,
             confirm_evaluations=2,
             cooldown_evaluations=6,
@@ -220,8 +219,10 @@ def demo_main(args: argparse.Namespace) -> int:
         f"pulls {' + '.join(PROMOTION)} from order {PROMOTION_START:,}."
     )
     if bound:
-        say(f"Metrics: http://{bound[0]}:{bound[1]}/metrics   API: http://{bound[0]}:{bound[1]}/v1/status")
-    say("Warm-up: no alerts until the first window (3,000 orders) is full.")
+        say(
+            f"Metrics: http://{bound[0]}:{bound[1]}/metrics   API: http://{bound[0]}:{bound[1]}/v1/status"
+        )
+    say("Warm-up: no alerts until the first window (6,000 orders) is full.")
     started = time.monotonic()
     last_status = 0.0
     try:
@@ -274,10 +275,7 @@ def _summary(service: Any, console: ConsoleSink, elapsed: float, say: Any) -> No
         f"{w['first_seq']:,}..{w['last_seq']:,} ({w['transactions']:,}), counts exact to within "
         f"{w['max_error']} orders."
     )
-    say(
-        "Alerts: "
-        + ", ".join(f"{kinds.get(k, 0)} {k}" for k in ("emerged", "surged", "faded"))
-    )
+    say("Alerts: " + ", ".join(f"{kinds.get(k, 0)} {k}" for k in ("emerged", "surged", "faded")))
     rules = service.rules("lift", 5, None, None, None)["rules"]
     if rules:
         say("Active rules now (top 5 by lift):")
@@ -288,10 +286,5 @@ def _summary(service: Any, console: ConsoleSink, elapsed: float, say: Any) -> No
                 f"  {' + '.join(r['antecedent'])} => {' + '.join(r['consequent'])}: "
                 f"lift {lift['value']:.2f}, confidence {100 * conf['value']:.0f}%"
             )
-    say(
-        "Alerts are signals for a person to review, not decisions on prices, stock or fraud "
-        "holds."
-    )
+    say("Alerts are signals for a person to review, not decisions on prices, stock or fraud holds.")
 
-
-_ = replace  # dataclasses.replace is re-exported for callers tweaking demo_config
