@@ -7,7 +7,11 @@ Rules (``w = ceil(1/epsilon)`` transactions per bucket; a batch covers transacti
 ``N0+1 .. N1``, ``b0 = ceil(N0/w)``, ``b1 = ceil(N1/w)``, ``beta = b1 - b0``):
 
 * every tracked itemset gains its batch count: ``f += c``; it is deleted when ``f + delta <= b1``;
-* an untracked itemset with batch count ``c >= max(beta, 1)`` is inserted as ``(c, b0)``;
+* an untracked itemset with batch count ``c`` becomes ``(c, b0)``, and the same deletion test
+  applies to it at once, so it is kept only when ``c + b0 > b1``, i.e. ``c > beta`` (the paper
+  inserts at ``c >= beta`` and deletes at the next batch; a pane may never see another batch,
+  and deleting any entry with ``f + delta <= b_current`` is always sound, since its true count
+  is at most ``f + delta``);
 * level by level (size 1, 2, ... K): an itemset is counted only when every subset one item
   smaller is tracked after this batch; a tracked itemset with an untracked subset is deleted
   (its true count is at most the subset's, ``<= b1``), so the summary is downward closed.
@@ -184,7 +188,8 @@ class LossySummary:
         else:
             b0 = b1 = 0
         beta = b1 - b0
-        min_new = max(beta, 1)
+        # new entries must survive the deletion test: c + b0 > b1 (exact mode: any c >= 1)
+        min_new = beta + 1
         exact = self.width == 0
         self.n = n1
         items = np.asarray(items, dtype=np.int32)
@@ -317,7 +322,8 @@ class LossySummary:
             assert int(level.f.max()) <= self.n, f"L{k}: f above n"
             if k > 1:
                 assert (np.diff(level.items, axis=1) > 0).all(), f"L{k}: row not ascending"
-            radix = int(level.items.max()) + 1
+            # one radix for this level and the one below, so their keys are comparable
+            radix = max(int(lv.items.max(initial=0)) for lv in self.levels[max(k - 2, 0) : k]) + 1
             keys = pack(level.items, radix)
             order = np.lexsort(level.items.T[::-1])
             assert (order == np.arange(len(level))).all(), f"L{k}: rows not in order"
