@@ -287,7 +287,8 @@ class RuleMonitor:
         ``surge_max_p_value``).
     family_lift_tolerance:
         Relative lift (or growth-rate) gain a superset must exceed to be alerted apart from its
-        family's representative (see the module docstring). Not yet a config key.
+        family's representative (see the module docstring); ``None`` takes
+        ``alerts.family_lift_tolerance``.
 
     Notes
     -----
@@ -302,8 +303,10 @@ class RuleMonitor:
         rules: RulesConfig,
         alerts: AlertsConfig,
         *,
-        family_lift_tolerance: float = 0.1,
+        family_lift_tolerance: float | None = None,
     ) -> None:
+        if family_lift_tolerance is None:
+            family_lift_tolerance = alerts.family_lift_tolerance
         if not 0.0 < rules.exit_ratio <= 1.0:
             raise ConfigError("rules.exit_ratio", rules.exit_ratio, "must be in (0, 1]")
         if rules.confirm_evaluations < 1:

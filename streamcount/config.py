@@ -4,8 +4,8 @@ Every section of the YAML file maps to one frozen dataclass below; the field nam
 config keys, the command-line options (``--min-support`` is ``min_support``) and the names
 used in JSON output and metrics. ``config/default.yaml`` documents every key.
 
-Loading and validation (``load_config``, ``config_from_mapping``) live at the bottom of this
-module: a YAML mapping is validated once into a :class:`Config`; an unknown key or a bad value
+Loading and validation (``load_config``, ``config_from_mapping``) live in
+:mod:`streamcount.configload`: a YAML mapping is validated once into a :class:`Config`; an unknown key or a bad value
 raises :class:`~streamcount.errors.ConfigError` naming the dotted key, the value and the rule.
 """
 
@@ -137,6 +137,9 @@ class AlertsConfig:
     surge_max_p_value: float = 0.001
     #: minimum lower-bound count in the recent window
     surge_min_count: int = 20
+    #: relative lift (or growth-rate) gain a superset rule (or itemset) needs to alert apart
+    #: from its family's representative
+    family_lift_tolerance: float = 0.1
     #: alerts kept in memory for GET /v1/alerts
     history: int = 1000
 

@@ -190,6 +190,7 @@ _RULES: dict[str, tuple[_Check, ...]] = {
     "alerts.recent_panes": (_at_least(1),),
     "alerts.surge_max_p_value": ((lambda v: 0 < v <= 1, "must be in (0, 1]"),),
     "alerts.surge_min_count": (_at_least(1),),
+    "alerts.family_lift_tolerance": (_at_least(0),),
     "alerts.history": (_at_least(1),),
     "sinks.file": (_NON_EMPTY,),
     "sinks.webhook.url": ((_http_url, "must be an http:// or https:// URL with a host"),),
