@@ -35,9 +35,9 @@ def test_checkpoint_of_a_fresh_engine_round_trips() -> None:
     restored = Engine.from_state(config, json.loads(json.dumps(meta)), arrays)
     restored.check_invariants()
     assert restored.snapshot().transactions == 0
-    restored.add([["tea", "jam"]])
+    restored.add([["tea", "jam"]] * 10)  # one whole bucket (w = 10)
     restored.flush()
-    assert _counts(restored.snapshot()) == {("tea",): 1, ("jam",): 1, ("jam", "tea"): 1}
+    assert _counts(restored.snapshot()) == {("tea",): 10, ("jam",): 10, ("jam", "tea"): 10}
 
 
 def test_from_state_refuses_other_settings() -> None:
