@@ -25,6 +25,7 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
+from sortedcontainers import SortedDict
 
 from streamcount.config import EngineConfig
 from streamcount.counters import bucket_width
@@ -113,7 +114,8 @@ class Engine:
         w = self.width
         self.batch_size = max(w, (int(config.batch_size) // w) * w) if w else int(config.batch_size)
         self.vocabulary = ItemVocabulary()
-        self.panes: dict[int, Pane] = {}
+        #: live panes by index, kept in index order
+        self.panes: SortedDict = SortedDict()
         self.next_seq = 1
         self.transactions_seen = 0
         self.rejected: Counter[str] = Counter()
@@ -262,7 +264,7 @@ class Engine:
         watermark = self.max_event_ts - self.config.allowed_lateness_seconds
         limit = math.floor(watermark / self.pane_seconds) - 1  # panes ending at or before it
         closes = 0
-        for idx in sorted(i for i, p in self.panes.items() if not p.closed and i <= limit):
+        for idx in [i for i, p in self.panes.items() if not p.closed and i <= limit]:
             self._close(self.panes[idx])
             closes += 1
         self.closed_through = max(self.closed_through, limit)
@@ -307,8 +309,7 @@ class Engine:
         Open panes stay open. Partial batches keep every guarantee; the untracked bound of
         such a pane becomes ``ceil(n/w)`` instead of ``n/w``.
         """
-        for idx in sorted(self.panes):
-            pane = self.panes[idx]
+        for pane in list(self.panes.values()):
             if pane.buffered:
                 self._count(pane, None)
 
@@ -319,7 +320,9 @@ class Engine:
         bottom = self.newest_index - self.window_panes + 1
         if newest is not None:
             bottom = max(bottom, top - newest + 1)
-        return [p for i, p in sorted(self.panes.items()) if bottom <= i <= top and p.counted]
+        return [
+            self.panes[i] for i in self.panes.irange(bottom, top) if self.panes[i].counted
+        ]
 
     def snapshot(self, *, newest: int | None = None, skip_newest: int = 0) -> WindowSnapshot:
         """Frozen counts over the window (counted transactions only).
@@ -393,8 +396,7 @@ class Engine:
         """Everything needed to resume: a JSON-able manifest and named numpy arrays."""
         arrays = self.vocabulary.to_arrays()
         panes_meta = []
-        for j, idx in enumerate(sorted(self.panes)):
-            pane = self.panes[idx]
+        for j, pane in enumerate(self.panes.values()):
             panes_meta.append(pane.meta())
             arrays.update(pane.to_arrays(f"pane{j}."))
         meta: dict[str, object] = {
