@@ -125,7 +125,9 @@ def build_parser() -> argparse.ArgumentParser:
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     rp = sub.add_parser("replay", help="count a whole file as fast as possible; JSON report")
-    rp.add_argument("path", help="basket lines or JSON lines file (.gz read transparently; - stdin)")
+    rp.add_argument(
+        "path", help="basket lines or JSON lines file (.gz read transparently; - stdin)"
+    )
     rp.add_argument("--output", metavar="FILE", help="write the report here instead of stdout")
     rp.add_argument(
         "--report",
@@ -155,7 +157,10 @@ def build_parser() -> argparse.ArgumentParser:
     demo.add_argument("--listen", default="127.0.0.1:0", help="HTTP listener (default a free port)")
     demo.add_argument("--seed", type=int, default=7)
     demo.add_argument(
-        "--rate", type=float, default=0.0, help="transactions per second (0: as fast as it can)"
+        "--rate",
+        type=float,
+        default=None,
+        help="orders per second (default: paced to fill --duration; 0: as fast as it can)",
     )
     demo.set_defaults(func=_cmd_demo)
 

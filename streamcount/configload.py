@@ -368,7 +368,9 @@ def _cross_checks(cfg: Config) -> None:
                 f"must be < engine.window_seconds ({eng.window_seconds:g})",
             )
     window_panes = _window_panes(cfg)
-    if cfg.alerts.surge and cfg.alerts.recent_panes >= window_panes:
+    # a one-pane window (e.g. a whole file counted as one window) has no baseline: surges are
+    # simply never raised there, which is no configuration mistake
+    if cfg.alerts.surge and window_panes > 1 and cfg.alerts.recent_panes >= window_panes:
         _fail(
             "alerts.recent_panes",
             cfg.alerts.recent_panes,

@@ -206,14 +206,18 @@ def demo_main(args: argparse.Namespace) -> int:
     out = sys.stdout
     tty = out.isatty() and not args.json
     total = None if args.forever else DEMO_TRANSACTIONS
-    rate = args.rate if args.rate > 0 else DEMO_TRANSACTIONS / max(args.duration, 0.5)
+    if args.rate is None:  # pace the scripted feed to fill --duration
+        rate = DEMO_TRANSACTIONS / max(args.duration, 0.5)
+    else:
+        rate = max(0.0, args.rate)  # 0: as fast as the machine goes
     config = demo_config(args.listen)
     source = PacedFeedSource(demo_feed(args.seed, total), rate)
     console = ConsoleSink(out, as_json=args.json, status_line=tty)
     service = Service(config, source=source, extra_sinks=(console,))
     bound = service.start_server()
     say = (lambda text: print(text, file=sys.stderr)) if args.json else print
-    say(f"{SHOP_NAME}: live order feed, {rate:,.0f} orders/s (invented shop, generated data)")
+    pace = f"{rate:,.0f} orders/s" if rate > 0 else "as fast as it goes"
+    say(f"{SHOP_NAME}: live order feed, {pace} (invented shop, generated data)")
     say(
         f"Planted: {' + '.join(BUNDLE)} sold together until order {BUNDLE_STOP:,}; a promotion "
         f"pulls {' + '.join(PROMOTION)} from order {PROMOTION_START:,}."
