@@ -4,7 +4,8 @@ The report (one JSON object)::
 
     {"window": {"first_seq", "last_seq", "transactions", "max_error", "epsilon", "pane_size"},
      "itemsets": [{"items": [...], "count", "upper", "support"}, ...],
-     "rules": [...],            # with --report ...,rules
+     "rules": [...],            # with --report ...,rules: rules passing the thresholds on
+                                # the reported window
      "alerts": [...],           # with --report ...,alerts
      "input": {"transactions", "rejected": {reason: n}}}
 
@@ -119,8 +120,12 @@ def replay_chunks(
     out: dict[str, Any] = {"window": snap.window_dict()}
     if "itemsets" in parts:
         out["itemsets"] = [s.as_dict() for s in snap.frequent(config.rules.min_support)]
-    if monitor is not None and "rules" in parts:
-        out["rules"] = [r.as_dict() for r in monitor.active_rules]
+    if "rules" in parts:
+        # the rules that hold on the reported window (the alert state machine's confirmation
+        # and hysteresis are about changes over time; the report is about this window)
+        from streamcount.rules import derive_rules
+
+        out["rules"] = [r.as_dict() for r in derive_rules(snap, config.rules)]
     if "alerts" in parts:
         out["alerts"] = alerts
     out["input"] = {"transactions": engine.transactions_seen, "rejected": dict(rejected)}
