@@ -92,6 +92,7 @@ class Service:
         self._last_checkpoint_unix: float | None = None
         self._last_checkpoint_mono = time.monotonic()
         self._last_publish = 0.0
+        self._unpublished = False  # counted since the view was last built
         self._last_turn = time.monotonic()
         self._alerts: deque[dict[str, Any]] = deque(maxlen=max(1, config.alerts.history))
         self._alert_counts: Counter[str] = Counter()
@@ -291,7 +292,9 @@ class Service:
             self.metrics.observe_batch(accepted, rejected, time.perf_counter() - started)
         self.turns += 1
         now = time.monotonic()
-        if baskets and now - self._last_publish >= _PUBLISH_SECONDS:
+        if baskets:
+            self._unpublished = True
+        if self._unpublished and now - self._last_publish >= _PUBLISH_SECONDS:
             self._publish()
         self._observe_sinks()
         interval = self.config.checkpoint.checkpoint_interval_seconds
@@ -357,6 +360,7 @@ class Service:
     def _publish(self, window: WindowSnapshot | None = None) -> None:
         self._view = self._build_view(window)
         self._last_publish = time.monotonic()
+        self._unpublished = False
 
     def _service_state(self) -> ServiceState:
         view = self._view
