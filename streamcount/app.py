@@ -85,8 +85,9 @@ class Service:
         self.clock = clock
         self.registry = registry if registry is not None else CollectorRegistry()
         self._stop = threading.Event()
-        self._ingest: queue.Queue[tuple[list[list[str]], list[float | None]]] = queue.Queue(
-            maxsize=1000
+        # HTTP ingest -> loop: (baskets, timestamps, records the HTTP decoder rejected)
+        self._ingest: queue.Queue[tuple[list[list[str]], list[float | None], list[ParseError]]] = (
+            queue.Queue(maxsize=1000)
         )
         self._fingerprint = fingerprint(config)
         self._last_checkpoint_unix: float | None = None
@@ -270,9 +271,11 @@ class Service:
                 origin.append(None)
         while True:
             try:
-                more, more_ts = self._ingest.get_nowait()
+                more, more_ts, more_errors = self._ingest.get_nowait()
             except queue.Empty:
                 break
+            for exc in more_errors:
+                self._reject(exc, rejected, source="http")
             baskets.extend(more)
             stamps.extend(more_ts)
             origin.extend([None] * len(more))
@@ -302,9 +305,9 @@ class Service:
             self.checkpoint()
         return accepted
 
-    def _reject(self, exc: ParseError, rejected: Counter[str]) -> None:
+    def _reject(self, exc: ParseError, rejected: Counter[str], source: str | None = None) -> None:
         rejected[exc.reason] += 1
-        self.dead_letter.write(exc, source=self.source_name)
+        self.dead_letter.write(exc, source=source or self.source_name)
 
     def _on_pane_closed(self, engine: Engine) -> None:
         recent = self.config.alerts.recent_panes
@@ -483,7 +486,11 @@ class Service:
         return {"alerts": items[-limit:]}
 
     def ingest(self, body: bytes, content_type: str) -> dict[str, Any]:
-        """Decode a JSON object or NDJSON body now (in the HTTP thread); count it next turn."""
+        """Decode a JSON object or NDJSON body now (in the HTTP thread); count it next turn.
+
+        Rejected lines go to the loop too, which dead-letters and counts them (the HTTP
+        threads never write the dead-letter file themselves).
+        """
         if not self.ingest_enabled():
             raise InputError("HTTP ingest is off (input.http_ingest: false)")
         decoder = JsonlDecoder(
@@ -498,6 +505,7 @@ class Service:
         baskets: list[list[str]] = []
         stamps: list[float | None] = []
         errors = []
+        rejected: list[ParseError] = []
         offset = 0
         for n, line in enumerate(lines, start=1):
             try:
@@ -506,18 +514,18 @@ class Service:
                     stamps.append(tx.ts)
             except ParseError as exc:
                 errors.append({"line": n, "reason": exc.reason, "detail": exc.detail})
-                self.dead_letter.write(exc, source="http")
+                rejected.append(exc)
             offset += len(line) + 1
+        try:
+            self._ingest.put((baskets, stamps, rejected), timeout=5.0)
+        except queue.Full:
+            raise InputError("ingest queue is full; retry later") from None
         if errors and not baskets:
             first = errors[0]
             raise InputError(
                 f"no valid transaction in the body; line {first['line']}: {first['reason']}: "
                 f"{first['detail']}"
             )
-        try:
-            self._ingest.put((baskets, stamps), timeout=5.0)
-        except queue.Full:
-            raise InputError("ingest queue is full; retry later") from None
         return {"accepted": len(baskets), "rejected": errors}
 
 
