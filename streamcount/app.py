@@ -269,9 +269,16 @@ class Service:
                 baskets.append(list(tx.items))
                 stamps.append(tx.ts)
                 origin.append(None)
+        # an exhausted source (HTTP ingest only) returns at once: wait on the ingest queue
+        # instead, or the loop would spin
+        wait = timeout if not records and getattr(self.source, "exhausted", False) else 0.0
         while True:
             try:
-                more, more_ts, more_errors = self._ingest.get_nowait()
+                if wait > 0:
+                    more, more_ts, more_errors = self._ingest.get(timeout=wait)
+                    wait = 0.0
+                else:
+                    more, more_ts, more_errors = self._ingest.get_nowait()
             except queue.Empty:
                 break
             for exc in more_errors:
