@@ -91,5 +91,5 @@ class ItemVocabulary:
     def from_arrays(cls, arrays: dict[str, np.ndarray]) -> ItemVocabulary:
         blob = arrays["vocab.bytes"].tobytes()
         ends = arrays["vocab.ends"].tolist()
-        starts = [0, *ends[:-1]]
+        starts = [0, *ends[:-1]] if ends else []
         return cls(blob[s:e].decode("utf-8") for s, e in zip(starts, ends, strict=True))
