@@ -204,11 +204,15 @@ class Service:
                     f"server.token_env = {self.config.server.token_env!r}: that environment "
                     "variable is not set or empty"
                 )
+        limit = self.config.server.max_request_bytes
+        if self.config.input.http_ingest:
+            # input.max_body_bytes caps the bodies of POST /v1/transactions
+            limit = min(limit, self.config.input.max_body_bytes)
         self.server, self._server_thread = start_server(
             listen,
             self,
             token=token,
-            max_request_bytes=self.config.server.max_request_bytes,
+            max_request_bytes=limit,
             request_timeout_seconds=self.config.server.request_timeout_seconds,
         )
         host, port = self.server.server_address[:2]
