@@ -231,7 +231,12 @@ def test_http_token_limits_errors_and_ingest(services: ServiceRunner, tmp_path: 
     token = "tea-and-scones-9f3c"
     service = services.start(
         {
-            "input": {"path": None, "http_ingest": True, "format": "jsonl"},
+            "input": {
+                "path": None,
+                "http_ingest": True,
+                "format": "jsonl",
+                "max_body_bytes": 3000,
+            },
             "engine": {**ENGINE, "batch_size": 1},
             "rules": RULES,
             "server": {"token_env": TOKEN_ENV, "max_request_bytes": 4000},
@@ -268,6 +273,10 @@ def test_http_token_limits_errors_and_ingest(services: ServiceRunner, tmp_path: 
     )
     assert too_large.status == 413
     assert too_large.json()["error"]["code"] == "too_large"
+    # so is one over input.max_body_bytes (3000), the smaller limit for ingest
+    over_ingest_limit = big[:3500]
+    too_large = service.request("POST", "/v1/transactions", over_ingest_limit, auth)
+    assert too_large.status == 413
 
     # NDJSON ingest: good lines counted, a bad one reported, dead-lettered and counted
     baskets = shop_baskets(20, seed=5)
@@ -275,7 +284,7 @@ def test_http_token_limits_errors_and_ingest(services: ServiceRunner, tmp_path: 
         json.dumps({"id": i, "items": b}).encode() + b"\n" for i, b in enumerate(baskets)
     )
     body += b'{"id": 99, "items": "not-a-list"}\n'
-    assert len(body) <= 4000
+    assert len(body) <= 3000
     accepted = service.request(
         "POST", "/v1/transactions", body, {**auth, "Content-Type": "application/x-ndjson"}
     )
