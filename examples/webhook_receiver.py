@@ -8,6 +8,7 @@ records seen before (same ``id``, e.g. re-sent after a restart) are skipped.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 
@@ -40,10 +41,8 @@ def main() -> None:
     args = parser.parse_args()
     server = ThreadingHTTPServer(("127.0.0.1", args.port), _Handler)
     print(f"listening on http://127.0.0.1:{args.port}/alerts", flush=True)
-    try:
+    with contextlib.suppress(KeyboardInterrupt):
         server.serve_forever()
-    except KeyboardInterrupt:
-        pass
 
 
 if __name__ == "__main__":

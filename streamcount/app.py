@@ -37,7 +37,13 @@ from streamcount.configload import describe, fingerprint, fingerprint_settings
 from streamcount.deadletter import DeadLetterFile
 from streamcount.engine import Engine
 from streamcount.errors import CheckpointError, InputError, ParseError
-from streamcount.formats import JsonlDecoder, decode_raw, make_decoder
+from streamcount.formats import (
+    BasketDecoder,
+    JsonlDecoder,
+    decode_basket_records,
+    decode_raw,
+    make_decoder,
+)
 from streamcount.metrics import Metrics, RuleSample, ServiceState
 from streamcount.rules import Rule
 from streamcount.sinks import Sink, SinkFanout, build_sinks
@@ -254,16 +260,24 @@ class Service:
         stamps: list[float | None] = []
         origin: list[RawRecord | None] = []
         rejected: Counter[str] = Counter()
-        for rec in records:
-            try:
-                txs = decode_raw(self.decoder, rec, self.config.input.max_record_bytes)
-            except ParseError as exc:
+        if isinstance(self.decoder, BasketDecoder):
+            # stateless and timestamp-free: decode the whole read in one pass
+            baskets, origins, errors = decode_basket_records(self.decoder, records)
+            origin.extend(origins)
+            stamps = [None] * len(baskets)
+            for exc in errors:
                 self._reject(exc, rejected)
-                continue
-            for tx in txs:
-                baskets.append(list(tx.items))
-                stamps.append(tx.ts)
-                origin.append(rec)
+        else:
+            for rec in records:
+                try:
+                    txs = decode_raw(self.decoder, rec, self.config.input.max_record_bytes)
+                except ParseError as exc:
+                    self._reject(exc, rejected)
+                    continue
+                for tx in txs:
+                    baskets.append(list(tx.items))
+                    stamps.append(tx.ts)
+                    origin.append(rec)
         if self.config.input.format == "csv":
             latest = max((s for s in stamps if s is not None), default=None)
             due = self.decoder.flush_due(latest) if latest is not None else []

@@ -5,8 +5,9 @@ config keys, the command-line options (``--min-support`` is ``min_support``) and
 used in JSON output and metrics. ``config/default.yaml`` documents every key.
 
 Loading and validation (``load_config``, ``config_from_mapping``) live in
-:mod:`streamcount.configload`: a YAML mapping is validated once into a :class:`Config`; an unknown key or a bad value
-raises :class:`~streamcount.errors.ConfigError` naming the dotted key, the value and the rule.
+:mod:`streamcount.configload`: a YAML mapping is validated once into a :class:`Config`; an
+unknown key or a bad value raises :class:`~streamcount.errors.ConfigError` naming the dotted
+key, the value and the rule.
 """
 
 from __future__ import annotations

@@ -291,4 +291,3 @@ def _summary(service: Any, console: ConsoleSink, elapsed: float, say: Any) -> No
                 f"lift {lift['value']:.2f}, confidence {100 * conf['value']:.0f}%"
             )
     say("Alerts are signals for a person to review, not decisions on prices, stock or fraud holds.")
-

@@ -23,6 +23,7 @@ import math
 from collections import Counter
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
+from itertools import pairwise
 
 import numpy as np
 from sortedcontainers import SortedDict
@@ -103,7 +104,8 @@ class Engine:
         if self.time_based:
             assert config.pane_seconds is not None
             self.pane_seconds = float(config.pane_seconds)
-            self.window_panes = int(round(float(config.window_seconds) / self.pane_seconds))  # type: ignore[arg-type]
+            window_seconds = float(config.window_seconds)  # type: ignore[arg-type]
+            self.window_panes = round(window_seconds / self.pane_seconds)
             self.pane_size: int | None = None
         else:
             self.pane_seconds = 0.0
@@ -164,7 +166,7 @@ class Engine:
                 )
         ts = np.full(t, np.nan)
         if timestamps is not None:
-            ts = np.array([np.nan if x is None else float(x) for x in timestamps], dtype=np.float64)
+            ts = np.array(timestamps, dtype=np.float64)  # None becomes NaN
         pane_idx: np.ndarray | None = None
         if self.time_based:
             missing = ok & np.isnan(ts)
@@ -320,9 +322,7 @@ class Engine:
         bottom = self.newest_index - self.window_panes + 1
         if newest is not None:
             bottom = max(bottom, top - newest + 1)
-        return [
-            self.panes[i] for i in self.panes.irange(bottom, top) if self.panes[i].counted
-        ]
+        return [self.panes[i] for i in self.panes.irange(bottom, top) if self.panes[i].counted]
 
     def snapshot(self, *, newest: int | None = None, skip_newest: int = 0) -> WindowSnapshot:
         """Frozen counts over the window (counted transactions only).
@@ -383,7 +383,7 @@ class Engine:
                 assert p.counted + p.buffered <= self.pane_size, "pane over pane_size"
                 assert (p.first_seq - 1) // self.pane_size == p.index, "seq outside its pane"
             spans = sorted((p.first_seq, p.last_seq) for p in live)
-            for (_, a_hi), (b_lo, _) in zip(spans, spans[1:], strict=False):
+            for (_, a_hi), (b_lo, _) in pairwise(spans):
                 assert a_hi + 1 == b_lo, "count-based window has a gap"
         if self.width:
             snap_error = sum(p.absent_bound for p in live)
@@ -435,7 +435,8 @@ class Engine:
         for key in ("epsilon", "max_itemset_size", "pane_size", "window_panes"):
             if meta[key] != getattr(eng, key):
                 raise ValueError(
-                    f"engine state has {key}={meta[key]!r} but the settings give {getattr(eng, key)!r}"
+                    f"engine state has {key}={meta[key]!r} but the settings give "
+                    f"{getattr(eng, key)!r}"
                 )
         eng.vocabulary = ItemVocabulary.from_arrays(arrays)
         eng.next_seq = int(meta["next_seq"])  # type: ignore[call-overload]

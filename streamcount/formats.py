@@ -59,6 +59,7 @@ __all__ = [
     "Decoder",
     "JsonlDecoder",
     "Transaction",
+    "decode_basket_records",
     "decode_raw",
     "iter_file_chunks",
     "make_decoder",
@@ -316,6 +317,50 @@ class BasketDecoder(_Stateless):
         if len(items) > self.max_basket_items:
             raise _too_many(len(items), self.max_basket_items, offset, record, "line")
         return [Transaction(tuple(items), offset=offset, end_offset=end_offset)]
+
+
+def decode_basket_records(
+    decoder: BasketDecoder, records: Sequence[RawRecord]
+) -> tuple[list[list[str]], list[RawRecord], list[ParseError]]:
+    """Decode many basket lines at once: ``(baskets, the record of each, errors)``.
+
+    The common case (every line decodes, no repeats, none too long or too large) is one
+    decode and one split per line in C loops; otherwise each record goes through
+    :func:`decode_raw`, so the result is the same as decoding them one by one.
+    """
+    if not records:
+        return [], [], []
+    if not any(r.too_long for r in records):
+        block = b"\n".join(r.data for r in records)
+        try:
+            text = block.decode(decoder.encoding)
+        except UnicodeDecodeError:
+            text = None
+        if text is not None and max(len(r.data) for r in records) <= decoder.max_record_bytes:
+            parsed = [line.split() for line in text.replace(",", " ").split("\n")]
+            clean = (
+                len(parsed) == len(records)
+                and sum(map(len, parsed)) == sum(map(len, map(frozenset, parsed)))
+                and max(map(len, parsed)) <= decoder.max_basket_items
+            )
+            if clean:
+                keep = [i for i, p in enumerate(parsed) if p]
+                if len(keep) == len(parsed):
+                    return parsed, list(records), []
+                return [parsed[i] for i in keep], [records[i] for i in keep], []
+    baskets: list[list[str]] = []
+    origins: list[RawRecord] = []
+    errors: list[ParseError] = []
+    for rec in records:
+        try:
+            got = decode_raw(decoder, rec, decoder.max_record_bytes)
+        except ParseError as exc:
+            errors.append(exc)
+            continue
+        for tx in got:
+            baskets.append(list(tx.items))
+            origins.append(rec)
+    return baskets, origins, errors
 
 
 # ---------------------------------------------------------------------------------------------

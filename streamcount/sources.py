@@ -25,6 +25,7 @@ import threading
 import time
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
+from itertools import accumulate
 from typing import IO, Any, Protocol
 
 from streamcount.errors import ConfigError, InputError
@@ -115,7 +116,7 @@ class _LineSplitter:
     def drain(self, out: list[RawRecord], limit: int) -> None:
         buf = self._buf
         cap = self.max_record_bytes
-        start = 0
+        start = self._drain_bulk(out, limit)
         while len(out) < limit:
             nl = buf.find(b"\n", start)
             if self._drop_partial:
@@ -156,6 +157,34 @@ class _LineSplitter:
             self.offset += length + 1
             start = nl + 1
         del buf[:start]
+
+    def _drain_bulk(self, out: list[RawRecord], limit: int) -> int:
+        """The common case in a few C-level passes: every complete line in the buffer, none
+        over-long, no skipping in progress. Returns how many buffer bytes it consumed (0 when
+        the line-by-line loop must handle what is there)."""
+        if self._drop_partial or self._head is not None:
+            return 0
+        buf = self._buf
+        last_nl = buf.rfind(b"\n")
+        if last_nl < 0:
+            return 0
+        lines = bytes(buf[:last_nl]).split(b"\n")
+        room = limit - len(out)
+        if len(lines) > room:
+            if room <= 0:
+                return 0
+            lines = lines[:room]
+        if max(map(len, lines)) > self.max_record_bytes:
+            return 0
+        ends = list(accumulate(len(line) + 1 for line in lines))
+        base = self.offset
+        out.extend(
+            RawRecord(line, base + end - len(line) - 1, base + end)
+            for line, end in zip(lines, ends, strict=True)
+        )
+        consumed = ends[-1]
+        self.offset = base + consumed
+        return consumed
 
     def finish(self, out: list[RawRecord]) -> None:
         """End of input: the final line without a newline becomes a record."""

@@ -51,7 +51,7 @@ class ItemVocabulary:
     def __init__(self, names: Iterable[str] = ()) -> None:
         self._interner = _Interner()
         for name in names:
-            self._interner[name]  # noqa: B018 - interning is the lookup's side effect
+            self._interner[name]
 
     def __len__(self) -> int:
         return len(self._interner.names)
