@@ -67,6 +67,8 @@ class _View:
     rules: tuple[Rule, ...]
     alerts: tuple[dict[str, Any], ...]
     status: dict[str, Any] = field(default_factory=dict)
+    #: the window the rules were last evaluated on (at the last pane close)
+    rules_window: dict[str, Any] | None = None
 
 
 class Service:
@@ -104,6 +106,7 @@ class Service:
         self._alerts: deque[dict[str, Any]] = deque(maxlen=max(1, config.alerts.history))
         self._alert_counts: Counter[str] = Counter()
         self._ready = False
+        self._rules_window: dict[str, Any] | None = None
         self.turns = 0
 
         self.decoder = make_decoder(
@@ -238,6 +241,8 @@ class Service:
             while not self._stop.is_set():
                 self.turn(timeout=self.config.input.poll_interval_seconds)
                 if self._finished():
+                    # count the last partial batch, as replay does at the end of a file
+                    self.engine.flush()
                     logger.info("input exhausted; stopping")
                     break
         finally:
@@ -345,6 +350,7 @@ class Service:
             event_time=window.last_ts,
             warm=engine.window_full,
         )
+        self._rules_window = window.window_dict()
         records = [a.as_dict() for a in fired]
         if records:
             self._alerts.extend(records)
@@ -382,8 +388,9 @@ class Service:
             "vocabulary_items": stats.vocabulary_size,
             "last_checkpoint_unix": self._last_checkpoint_unix,
             "max_event_ts": stats.max_event_ts,
+            "rules_window": self._rules_window,
         }
-        return _View(window, stats, rules, tuple(self._alerts), status)
+        return _View(window, stats, rules, tuple(self._alerts), status, self._rules_window)
 
     def _publish(self, window: WindowSnapshot | None = None) -> None:
         self._view = self._build_view(window)
@@ -502,7 +509,8 @@ class Service:
             raise InputError(f"sort = {sort!r}: must be one of {sorted(keys)}")
         chosen.sort(key=keys[sort], reverse=True)
         return {
-            "window": view.window.window_dict(),
+            # rules are evaluated at pane close: this is the window they were measured on
+            "window": view.rules_window or view.window.window_dict(),
             "rules": [r.as_dict() for r in chosen[:limit]],
         }
 
