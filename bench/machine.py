@@ -25,6 +25,7 @@ from typing import Any
 
 __all__ = [
     "BENCH_DIR",
+    "BUSY_LOAD",
     "DATA_DIR",
     "REPO_DIR",
     "RESULTS_DIR",
@@ -46,6 +47,9 @@ REPO_DIR = BENCH_DIR.parent
 DATA_DIR = Path(os.environ.get("STREAMCOUNT_DATA_DIR", "/work/shared/data"))
 RESULTS_MD = BENCH_DIR / "RESULTS.md"
 RESULTS_DIR = BENCH_DIR / "results"
+#: a 1-minute load average above this marks a recorded run as disturbed (2 shared cores: one
+#: busy process besides the benchmark already competes for caches and memory bandwidth)
+BUSY_LOAD = 1.0
 
 
 def _read(path: str) -> str:
@@ -216,9 +220,18 @@ def record(kind: str, title: str, body_md: str, raw: dict[str, Any]) -> tuple[Pa
             "bench/README.md for the method. Raw JSON of each run is in bench/results/.\n",
             encoding="utf-8",
         )
+    loads = [*info.get("load_average_at_start", ()), *info.get("load_average_at_end", ())]
+    busy = ""
+    if loads and max(loads[0], loads[3] if len(loads) > 3 else 0) > BUSY_LOAD:
+        busy = (
+            f"- **disturbed**: 1-minute load average above {BUSY_LOAD} at start or end (other "
+            "engineers' processes on the shared cores); these figures are lower and noisier "
+            "than on a quiet machine\n"
+        )
     section = (
         f"\n## {info.get('date', day)}: {title}\n\n"
-        f"{format_machine(info)}\n- raw: bench/results/{path.name}\n\n{body_md.rstrip()}\n"
+        f"{format_machine(info)}\n{busy}- raw: bench/results/{path.name}\n\n"
+        f"{body_md.rstrip()}\n"
     )
     with RESULTS_MD.open("a", encoding="utf-8") as fh:
         fh.write(section)
