@@ -73,6 +73,7 @@ import logging
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
+from typing import Protocol
 
 import numpy as np
 
@@ -98,6 +99,15 @@ ALERT_KINDS: tuple[str, ...] = ("emerged", "faded", "surged")
 _STATE_VERSION = 1
 
 RuleKey = tuple[tuple[str, ...], tuple[str, ...]]
+
+
+class _WindowSource(Protocol):
+    """What :meth:`RuleMonitor.evaluate_close` needs of the engine (no import of it here)."""
+
+    @property
+    def window_full(self) -> bool: ...
+
+    def snapshot(self, *, newest: int | None = None, skip_newest: int = 0) -> WindowSnapshot: ...
 
 
 def _window_dict(snapshot: WindowSnapshot) -> dict[str, int]:
@@ -350,6 +360,26 @@ class RuleMonitor:
         return out
 
     # ------------------------------------------------------------------ evaluation
+    def evaluate_close(
+        self,
+        engine: _WindowSource,
+        *,
+        recent_panes: int,
+        window: WindowSnapshot | None = None,
+    ) -> list[Alert]:
+        """:meth:`evaluate` on an engine right after a pane closed: its whole window (pass
+        ``window`` when the caller already took that snapshot), the ``recent_panes`` newest
+        panes, and the rest of the window as the baseline."""
+        window = engine.snapshot() if window is None else window
+        return self.evaluate(
+            window,
+            recent=engine.snapshot(newest=recent_panes),
+            baseline=engine.snapshot(skip_newest=recent_panes),
+            seq=window.last_seq,
+            event_time=window.last_ts,
+            warm=engine.window_full,
+        )
+
     def evaluate(
         self,
         window: WindowSnapshot,

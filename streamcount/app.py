@@ -340,15 +340,9 @@ class Service:
         self.dead_letter.write(exc, source=source or self.source_name)
 
     def _on_pane_closed(self, engine: Engine) -> None:
-        recent = self.config.alerts.recent_panes
         window = engine.snapshot()
-        fired = self.monitor.evaluate(
-            window,
-            recent=engine.snapshot(newest=recent),
-            baseline=engine.snapshot(skip_newest=recent),
-            seq=window.last_seq,
-            event_time=window.last_ts,
-            warm=engine.window_full,
+        fired = self.monitor.evaluate_close(
+            engine, recent_panes=self.config.alerts.recent_panes, window=window
         )
         self._rules_window = window.window_dict()
         records = [a.as_dict() for a in fired]

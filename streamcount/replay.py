@@ -78,25 +78,13 @@ def replay_chunks(
     if unknown:
         raise ValueError(f"--report: unknown part(s) {sorted(unknown)}; choose from {REPORT_PARTS}")
     alerts: list[dict[str, Any]] = []
-    monitor = None
-    if parts & {"rules", "alerts"}:
+    if "alerts" in parts:
         from streamcount.alerts import RuleMonitor
 
         monitor = RuleMonitor(config.rules, config.alerts)
-        recent = config.alerts.recent_panes
 
         def on_close(eng: Engine) -> None:
-            assert monitor is not None
-            window = eng.snapshot()
-            fired = monitor.evaluate(
-                window,
-                recent=eng.snapshot(newest=recent),
-                baseline=eng.snapshot(skip_newest=recent),
-                seq=window.last_seq,
-                event_time=window.last_ts,
-                warm=eng.window_full,
-            )
-            for alert in fired:
+            for alert in monitor.evaluate_close(eng, recent_panes=config.alerts.recent_panes):
                 record = alert.as_dict()
                 alerts.append(record)
                 if on_alert is not None:
