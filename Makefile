@@ -20,6 +20,7 @@ demo: $(STAMP)
 ## test: the whole suite, slow dataset checks included (what CI runs)
 test: $(STAMP)
 	$(BIN)/ruff check streamcount tests bench examples
+	$(BIN)/ruff format --check streamcount tests bench examples
 	$(BIN)/python -m pytest -q
 
 ## test-fast: everything but the tests marked slow

@@ -9,6 +9,7 @@ Nothing here uses streamcount. Each transaction is read as a set; every ``k``-su
 from __future__ import annotations
 
 import gzip
+import os
 from collections import Counter
 from collections.abc import Hashable, Iterable, Sequence
 from itertools import combinations
@@ -22,8 +23,12 @@ __all__ = [
     "read_transactions",
 ]
 
-#: The shared open datasets (see its README.md).
-DATA_DIR = Path("/work/shared/data")
+#: The shared open datasets (see its README.md): ``shared/data`` beside the repository's
+#: folder, as laid out for development and CI; ``STREAMCOUNT_DATA_DIR`` overrides it.
+DATA_DIR = Path(
+    os.environ.get("STREAMCOUNT_DATA_DIR")
+    or Path(__file__).resolve().parents[2] / "shared" / "data"
+)
 
 
 def exact_counts(

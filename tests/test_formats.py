@@ -13,6 +13,7 @@ from datetime import UTC, datetime, timedelta, timezone
 from pathlib import Path
 
 import pytest
+from oracle import DATA_DIR
 
 from streamcount.config import CsvConfig, InputConfig, JsonlConfig
 from streamcount.errors import ConfigError, InputError, ParseError
@@ -28,7 +29,7 @@ from streamcount.formats import (
 )
 from streamcount.sources import RawRecord
 
-DATA = Path("/work/shared/data")
+DATA = DATA_DIR
 
 
 def feed_lines(decoder, lines: list[bytes]) -> tuple[list[Transaction], list[ParseError], int]:
