@@ -109,6 +109,10 @@ class _WindowSource(Protocol):
 
     def snapshot(self, *, newest: int | None = None, skip_newest: int = 0) -> WindowSnapshot: ...
 
+    def split_snapshot(
+        self, recent_panes: int
+    ) -> tuple[WindowSnapshot, WindowSnapshot, WindowSnapshot]: ...
+
 
 def _window_dict(snapshot: WindowSnapshot) -> dict[str, int]:
     return {
@@ -361,24 +365,24 @@ class RuleMonitor:
 
     # ------------------------------------------------------------------ evaluation
     def evaluate_close(
-        self,
-        engine: _WindowSource,
-        *,
-        recent_panes: int,
-        window: WindowSnapshot | None = None,
-    ) -> list[Alert]:
-        """:meth:`evaluate` on an engine right after a pane closed: its whole window (pass
-        ``window`` when the caller already took that snapshot), the ``recent_panes`` newest
-        panes, and the rest of the window as the baseline."""
-        window = engine.snapshot() if window is None else window
-        return self.evaluate(
+        self, engine: _WindowSource, *, recent_panes: int
+    ) -> tuple[list[Alert], WindowSnapshot]:
+        """:meth:`evaluate` on an engine right after a pane closed: its whole window, the
+        ``recent_panes`` newest panes and the rest of the window as the baseline (those two
+        only when surges are on). Returns the alerts and the window evaluated."""
+        if self.alerts_config.surge:
+            window, recent, baseline = engine.split_snapshot(recent_panes)
+        else:
+            window, recent, baseline = engine.snapshot(), None, None
+        alerts = self.evaluate(
             window,
-            recent=engine.snapshot(newest=recent_panes),
-            baseline=engine.snapshot(skip_newest=recent_panes),
+            recent=recent,
+            baseline=baseline,
             seq=window.last_seq,
             event_time=window.last_ts,
             warm=engine.window_full,
         )
+        return alerts, window
 
     def evaluate(
         self,

@@ -340,9 +340,8 @@ class Service:
         self.dead_letter.write(exc, source=source or self.source_name)
 
     def _on_pane_closed(self, engine: Engine) -> None:
-        window = engine.snapshot()
-        fired = self.monitor.evaluate_close(
-            engine, recent_panes=self.config.alerts.recent_panes, window=window
+        fired, window = self.monitor.evaluate_close(
+            engine, recent_panes=self.config.alerts.recent_panes
         )
         self._rules_window = window.window_dict()
         records = [a.as_dict() for a in fired]

@@ -32,7 +32,7 @@ from streamcount.config import EngineConfig
 from streamcount.counters import bucket_width
 from streamcount.snapshot import EngineStatistics, WindowSnapshot
 from streamcount.vocab import ItemVocabulary
-from streamcount.window import Pane, combine_panes
+from streamcount.window import Pane, combine_panes, merge_snapshots
 
 __all__ = ["STATE_VERSION", "AddResult", "Engine", "Rejection"]
 
@@ -338,6 +338,16 @@ class Engine:
             max_itemset_size=self.max_itemset_size,
             pane_size=self.pane_size,
         )
+
+    def split_snapshot(
+        self, recent_panes: int
+    ) -> tuple[WindowSnapshot, WindowSnapshot, WindowSnapshot]:
+        """``(window, recent, baseline)`` in one pass: the ``recent_panes`` newest panes, the
+        rest of the window, and the window built by merging those two (equal to
+        :meth:`snapshot`, without re-merging every pane)."""
+        recent = self.snapshot(newest=recent_panes)
+        baseline = self.snapshot(skip_newest=recent_panes)
+        return merge_snapshots(baseline, recent), recent, baseline
 
     @property
     def window_full(self) -> bool:

@@ -84,7 +84,8 @@ def replay_chunks(
         monitor = RuleMonitor(config.rules, config.alerts)
 
         def on_close(eng: Engine) -> None:
-            for alert in monitor.evaluate_close(eng, recent_panes=config.alerts.recent_panes):
+            fired, _ = monitor.evaluate_close(eng, recent_panes=config.alerts.recent_panes)
+            for alert in fired:
                 record = alert.as_dict()
                 alerts.append(record)
                 if on_alert is not None:

@@ -50,12 +50,14 @@ class LevelCounts:
 
     @classmethod
     def empty(cls, size: int) -> LevelCounts:
-        return cls(
-            size,
+        arrays = (
             np.zeros((0, size), dtype=np.int32),
             np.zeros(0, dtype=np.int64),
             np.zeros(0, dtype=np.int64),
         )
+        for arr in arrays:
+            arr.setflags(write=False)
+        return cls(size, *arrays)
 
 
 @dataclass(frozen=True, slots=True)

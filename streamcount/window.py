@@ -28,7 +28,7 @@ from streamcount.counters import LossySummary
 from streamcount.keys import pack, unique_with_sum
 from streamcount.snapshot import LevelCounts, WindowSnapshot
 
-__all__ = ["Pane", "combine_panes"]
+__all__ = ["Pane", "combine_panes", "merge_snapshots"]
 
 
 class Pane:
@@ -198,6 +198,33 @@ class Pane:
             assert self.first_seq == self.last_seq == 0, "empty pane with a seq range"
 
 
+def _sum_parts(
+    size: int, parts: Sequence[tuple[np.ndarray, np.ndarray, np.ndarray, int]], radix: int
+) -> LevelCounts:
+    """Sum ``(items, lower, upper, absent bound)`` parts of one itemset size.
+
+    The upper bound of an itemset is its own upper bound in each part that lists it plus the
+    part's absent bound where it is missing: summed as ``sum(upper - absent) + sum(absent)``.
+    """
+    total_absent = sum(p[3] for p in parts)  # every part counts, listed entries or not
+    parts = [p for p in parts if p[0].shape[0]]
+    if not parts:
+        return LevelCounts.empty(size)
+    if len(parts) == 1:  # one part: already sorted and unique
+        items, low, high, absent = parts[0]
+        count, upper = low.copy(), high + (total_absent - absent)
+    else:
+        rows = np.concatenate([p[0] for p in parts])
+        low_all = np.concatenate([p[1] for p in parts])
+        extra = np.concatenate([p[2] - p[3] for p in parts])
+        _, first, (count, upper_extra) = unique_with_sum(pack(rows, radix), low_all, extra)
+        items = rows[first]
+        upper = upper_extra + total_absent
+    for arr in (items, count, upper):
+        arr.setflags(write=False)
+    return LevelCounts(size, items, count, upper)
+
+
 def combine_panes(
     panes: Sequence[Pane],
     *,
@@ -208,41 +235,70 @@ def combine_panes(
 ) -> WindowSnapshot:
     """Sum pane summaries into a frozen :class:`WindowSnapshot` (the pane scheme above).
 
-    Cost: one concatenation and one sort per itemset size over all panes' tracked entries.
+    Cost: one concatenation and one stable sort (a merge of the panes' sorted runs) per
+    itemset size over all panes' tracked entries; nothing to merge for a single pane.
     """
     live = [p for p in panes if p.counted > 0]
-    n = sum(p.counted for p in live)
-    max_error = sum(p.absent_bound for p in live)
     radix = max(len(item_names), 1)
-    levels: list[LevelCounts] = []
+    levels = []
     for k in range(1, max_itemset_size + 1):
-        parts = [p.summary.levels[k - 1] for p in live]
-        parts_b = [p.absent_bound for p in live]
-        if not parts or sum(len(lv) for lv in parts) == 0:
-            levels.append(LevelCounts.empty(k))
-            continue
-        rows = np.concatenate([lv.items for lv in parts])
-        f = np.concatenate([lv.f for lv in parts])
-        extra = np.concatenate([lv.f + lv.delta - b for lv, b in zip(parts, parts_b, strict=True)])
-        _, first, (count, upper_extra) = unique_with_sum(pack(rows, radix), f, extra)
-        items = rows[first]
-        items.setflags(write=False)
-        upper = upper_extra + max_error
-        count.setflags(write=False)
-        upper.setflags(write=False)
-        levels.append(LevelCounts(k, items, count, upper))
+        parts = []
+        for p in live:
+            lv = p.summary.levels[k - 1]
+            parts.append((lv.items, lv.f, lv.f + lv.delta, p.absent_bound))
+        levels.append(_sum_parts(k, parts, radix))
     ts_min = [p.min_ts for p in live if p.min_ts is not None]
     ts_max = [p.max_ts for p in live if p.max_ts is not None]
     return WindowSnapshot(
         first_seq=min((p.first_seq for p in live), default=0),
         last_seq=max((p.last_seq for p in live), default=0),
-        transactions=n,
-        max_error=max_error,
+        transactions=sum(p.counted for p in live),
+        max_error=sum(p.absent_bound for p in live),
         epsilon=epsilon,
         pane_size=pane_size,
         panes=len(live),
         levels=tuple(levels),
         item_names=item_names,
+        first_ts=min(ts_min) if ts_min else None,
+        last_ts=max(ts_max) if ts_max else None,
+    )
+
+
+def merge_snapshots(a: WindowSnapshot, b: WindowSnapshot) -> WindowSnapshot:
+    """The snapshot of two disjoint spans of panes, from theirs (the same pane-sum rule: a
+    missing itemset counts 0 below and the span's ``max_error`` above).
+
+    Used to build the window from its baseline and recent parts without re-merging every pane.
+    """
+    if a.transactions == 0:
+        return b
+    if b.transactions == 0:
+        return a
+    names = a.item_names if len(a.item_names) >= len(b.item_names) else b.item_names
+    radix = max(len(names), 1)
+    levels = tuple(
+        _sum_parts(
+            la.size,
+            [
+                (la.items, la.count, la.upper, a.max_error),
+                (lb.items, lb.count, lb.upper, b.max_error),
+            ],
+            radix,
+        )
+        for la, lb in zip(a.levels, b.levels, strict=True)
+    )
+    ts_min = [t for t in (a.first_ts, b.first_ts) if t is not None]
+    ts_max = [t for t in (a.last_ts, b.last_ts) if t is not None]
+    return WindowSnapshot(
+        first_seq=min(a.first_seq, b.first_seq),
+        last_seq=max(a.last_seq, b.last_seq),
+        transactions=a.transactions + b.transactions,
+        max_error=a.max_error + b.max_error,
+        epsilon=a.epsilon,
+        pane_size=a.pane_size,
+        panes=a.panes + b.panes,
+        levels=levels,
+        item_names=names,
         first_ts=min(ts_min) if ts_min else None,
         last_ts=max(ts_max) if ts_max else None,
     )
