@@ -294,7 +294,8 @@ class Service:
                 origin.append(None)
         # an exhausted source (HTTP ingest only) returns at once: wait on the ingest queue
         # instead, or the loop would spin
-        wait = timeout if not records and getattr(self.source, "exhausted", False) else 0.0
+        exhausted = not records and getattr(self.source, "exhausted", False)
+        wait = timeout if exhausted and self.config.input.http_ingest else 0.0
         while True:
             try:
                 if wait > 0:

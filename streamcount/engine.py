@@ -32,7 +32,7 @@ from streamcount.config import EngineConfig
 from streamcount.counters import bucket_width
 from streamcount.snapshot import EngineStatistics, WindowSnapshot
 from streamcount.vocab import ItemVocabulary
-from streamcount.window import Pane, combine_panes, merge_snapshots
+from streamcount.window import Pane, PaneSum, combine_panes, merge_sums, subtract_panes, sum_panes
 
 __all__ = ["STATE_VERSION", "AddResult", "Engine", "Rejection"]
 
@@ -127,6 +127,8 @@ class Engine:
         #: lowest pane index ever opened (for the warm-up test of time-based windows)
         self.first_index: int | None = None
         self.closed_through = -1  # every pane index <= this is closed
+        #: the window summed at the last split_snapshot(), kept to subtract expired panes from
+        self._window_sum: PaneSum | None = None
 
     # -- intake -------------------------------------------------------------------------------
 
@@ -342,12 +344,38 @@ class Engine:
     def split_snapshot(
         self, recent_panes: int
     ) -> tuple[WindowSnapshot, WindowSnapshot, WindowSnapshot]:
-        """``(window, recent, baseline)`` in one pass: the ``recent_panes`` newest panes, the
-        rest of the window, and the window built by merging those two (equal to
-        :meth:`snapshot`, without re-merging every pane)."""
-        recent = self.snapshot(newest=recent_panes)
-        baseline = self.snapshot(skip_newest=recent_panes)
-        return merge_snapshots(baseline, recent), recent, baseline
+        """``(window, recent, baseline)``: the ``recent_panes`` newest panes of the window,
+        the rest of it, and the whole window (equal to :meth:`snapshot`).
+
+        Called at every pane close. The baseline is the previous call's window with the panes
+        that left it subtracted exactly (when none of its panes changed since), and the window
+        is the baseline merged with the recent part, so no call re-merges every pane.
+        Cost: one binary search per entry of the expired panes plus two two-run merges.
+        """
+        live = self._window_panes(None, 0)
+        cut = max(len(live) - recent_panes, 0)
+        base_panes, recent_part = live[:cut], live[cut:]
+        shape = {
+            "item_names": self.vocabulary.names,
+            "epsilon": self.epsilon,
+            "max_itemset_size": self.max_itemset_size,
+            "pane_size": self.pane_size,
+        }
+        baseline: PaneSum | None = None
+        cache = self._window_sum
+        if cache is not None:
+            then = {id(p): n for p, n in cache.panes}
+            unchanged = all(p.counted == n for p, n in cache.panes)
+            if unchanged and all(then.get(id(p)) == p.counted for p in base_panes):
+                wanted = {id(p) for p in base_panes}
+                gone = [p for p, _ in cache.panes if id(p) not in wanted]
+                baseline = subtract_panes(cache, gone)
+        if baseline is None:
+            baseline = sum_panes(base_panes, **shape)  # type: ignore[arg-type]
+        recent = sum_panes(recent_part, **shape)  # type: ignore[arg-type]
+        window = merge_sums(baseline, recent)
+        self._window_sum = window
+        return window.snapshot, recent.snapshot, baseline.snapshot
 
     @property
     def window_full(self) -> bool:

@@ -21,14 +21,15 @@ and absent from the third has ``count = 12`` and ``upper = 6 + 7 + 2 = 15``.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from dataclasses import dataclass
 
 import numpy as np
 
 from streamcount.counters import LossySummary
-from streamcount.keys import pack, unique_with_sum
+from streamcount.keys import lookup, pack, unique_with_sum
 from streamcount.snapshot import LevelCounts, WindowSnapshot
 
-__all__ = ["Pane", "combine_panes", "merge_snapshots"]
+__all__ = ["Pane", "PaneSum", "combine_panes", "merge_sums", "subtract_panes", "sum_panes"]
 
 
 class Pane:
@@ -198,31 +199,101 @@ class Pane:
             assert self.first_seq == self.last_seq == 0, "empty pane with a seq range"
 
 
-def _sum_parts(
-    size: int, parts: Sequence[tuple[np.ndarray, np.ndarray, np.ndarray, int]], radix: int
-) -> LevelCounts:
-    """Sum ``(items, lower, upper, absent bound)`` parts of one itemset size.
+_Part = tuple[np.ndarray, np.ndarray, np.ndarray, int, np.ndarray]
+
+
+def _sum_parts(size: int, parts: Sequence[_Part], radix: int) -> tuple[LevelCounts, np.ndarray]:
+    """Sum ``(items, lower, upper, absent bound, presence)`` parts of one itemset size.
 
     The upper bound of an itemset is its own upper bound in each part that lists it plus the
     part's absent bound where it is missing: summed as ``sum(upper - absent) + sum(absent)``.
+    ``presence`` counts the panes that track each entry (what a later subtraction needs).
     """
     total_absent = sum(p[3] for p in parts)  # every part counts, listed entries or not
     parts = [p for p in parts if p[0].shape[0]]
     if not parts:
-        return LevelCounts.empty(size)
+        return LevelCounts.empty(size), np.zeros(0, dtype=np.int64)
     if len(parts) == 1:  # one part: already sorted and unique
-        items, low, high, absent = parts[0]
+        items, low, high, absent, presence = parts[0]
         count, upper = low.copy(), high + (total_absent - absent)
     else:
         rows = np.concatenate([p[0] for p in parts])
         low_all = np.concatenate([p[1] for p in parts])
         extra = np.concatenate([p[2] - p[3] for p in parts])
-        _, first, (count, upper_extra) = unique_with_sum(pack(rows, radix), low_all, extra)
+        pres_all = np.concatenate([p[4] for p in parts])
+        _, first, (count, upper_extra, presence) = unique_with_sum(
+            pack(rows, radix), low_all, extra, pres_all
+        )
         items = rows[first]
         upper = upper_extra + total_absent
     for arr in (items, count, upper):
         arr.setflags(write=False)
-    return LevelCounts(size, items, count, upper)
+    return LevelCounts(size, items, count, upper), presence
+
+
+@dataclass(frozen=True, slots=True)
+class PaneSum:
+    """A window snapshot with what it was summed from, so that panes can later be subtracted
+    from it exactly: the panes (with their transaction counts at the time) and, per level,
+    how many of them track each entry."""
+
+    snapshot: WindowSnapshot
+    presence: tuple[np.ndarray, ...]
+    panes: tuple[tuple[Pane, int], ...]
+
+
+def _snapshot_of(
+    panes: Sequence[Pane],
+    levels: Sequence[LevelCounts],
+    *,
+    item_names: Sequence[str],
+    epsilon: float,
+    pane_size: int | None,
+) -> WindowSnapshot:
+    ts_min = [p.min_ts for p in panes if p.min_ts is not None]
+    ts_max = [p.max_ts for p in panes if p.max_ts is not None]
+    return WindowSnapshot(
+        first_seq=min((p.first_seq for p in panes), default=0),
+        last_seq=max((p.last_seq for p in panes), default=0),
+        transactions=sum(p.counted for p in panes),
+        max_error=sum(p.absent_bound for p in panes),
+        epsilon=epsilon,
+        pane_size=pane_size,
+        panes=len(panes),
+        levels=tuple(levels),
+        item_names=item_names,
+        first_ts=min(ts_min) if ts_min else None,
+        last_ts=max(ts_max) if ts_max else None,
+    )
+
+
+def sum_panes(
+    panes: Sequence[Pane],
+    *,
+    item_names: Sequence[str],
+    epsilon: float,
+    max_itemset_size: int,
+    pane_size: int | None,
+) -> PaneSum:
+    """Sum pane summaries (the pane scheme above) into a :class:`PaneSum`.
+
+    Cost: one concatenation and one stable sort (a merge of the panes' sorted runs) per
+    itemset size over all panes' tracked entries; nothing to merge for a single pane.
+    """
+    live = [p for p in panes if p.counted > 0]
+    radix = max(len(item_names), 1)
+    levels, presence = [], []
+    for k in range(1, max_itemset_size + 1):
+        parts = []
+        for p in live:
+            lv = p.summary.levels[k - 1]
+            ones = np.ones(len(lv), dtype=np.int64)
+            parts.append((lv.items, lv.f, lv.f + lv.delta, p.absent_bound, ones))
+        level, pres = _sum_parts(k, parts, radix)
+        levels.append(level)
+        presence.append(pres)
+    snap = _snapshot_of(live, levels, item_names=item_names, epsilon=epsilon, pane_size=pane_size)
+    return PaneSum(snap, tuple(presence), tuple((p, p.counted) for p in live))
 
 
 def combine_panes(
@@ -233,72 +304,96 @@ def combine_panes(
     max_itemset_size: int,
     pane_size: int | None,
 ) -> WindowSnapshot:
-    """Sum pane summaries into a frozen :class:`WindowSnapshot` (the pane scheme above).
-
-    Cost: one concatenation and one stable sort (a merge of the panes' sorted runs) per
-    itemset size over all panes' tracked entries; nothing to merge for a single pane.
-    """
-    live = [p for p in panes if p.counted > 0]
-    radix = max(len(item_names), 1)
-    levels = []
-    for k in range(1, max_itemset_size + 1):
-        parts = []
-        for p in live:
-            lv = p.summary.levels[k - 1]
-            parts.append((lv.items, lv.f, lv.f + lv.delta, p.absent_bound))
-        levels.append(_sum_parts(k, parts, radix))
-    ts_min = [p.min_ts for p in live if p.min_ts is not None]
-    ts_max = [p.max_ts for p in live if p.max_ts is not None]
-    return WindowSnapshot(
-        first_seq=min((p.first_seq for p in live), default=0),
-        last_seq=max((p.last_seq for p in live), default=0),
-        transactions=sum(p.counted for p in live),
-        max_error=sum(p.absent_bound for p in live),
-        epsilon=epsilon,
-        pane_size=pane_size,
-        panes=len(live),
-        levels=tuple(levels),
+    """Sum pane summaries into a frozen :class:`WindowSnapshot` (see :func:`sum_panes`)."""
+    return sum_panes(
+        panes,
         item_names=item_names,
-        first_ts=min(ts_min) if ts_min else None,
-        last_ts=max(ts_max) if ts_max else None,
-    )
+        epsilon=epsilon,
+        max_itemset_size=max_itemset_size,
+        pane_size=pane_size,
+    ).snapshot
 
 
-def merge_snapshots(a: WindowSnapshot, b: WindowSnapshot) -> WindowSnapshot:
-    """The snapshot of two disjoint spans of panes, from theirs (the same pane-sum rule: a
-    missing itemset counts 0 below and the span's ``max_error`` above).
+def merge_sums(a: PaneSum, b: PaneSum) -> PaneSum:
+    """The sum over the panes of ``a`` and ``b`` (disjoint), from the two sums: the same
+    pane-sum rule, a missing itemset counting 0 below and the part's ``max_error`` above.
 
-    Used to build the window from its baseline and recent parts without re-merging every pane.
+    Cost: a merge of two sorted runs per itemset size.
     """
-    if a.transactions == 0:
+    sa, sb = a.snapshot, b.snapshot
+    if sa.transactions == 0:
         return b
-    if b.transactions == 0:
+    if sb.transactions == 0:
         return a
-    names = a.item_names if len(a.item_names) >= len(b.item_names) else b.item_names
+    names = sa.item_names if len(sa.item_names) >= len(sb.item_names) else sb.item_names
     radix = max(len(names), 1)
-    levels = tuple(
-        _sum_parts(
+    levels, presence = [], []
+    for la, pa, lb, pb in zip(sa.levels, a.presence, sb.levels, b.presence, strict=True):
+        level, pres = _sum_parts(
             la.size,
             [
-                (la.items, la.count, la.upper, a.max_error),
-                (lb.items, lb.count, lb.upper, b.max_error),
+                (la.items, la.count, la.upper, sa.max_error, pa),
+                (lb.items, lb.count, lb.upper, sb.max_error, pb),
             ],
             radix,
         )
-        for la, lb in zip(a.levels, b.levels, strict=True)
-    )
-    ts_min = [t for t in (a.first_ts, b.first_ts) if t is not None]
-    ts_max = [t for t in (a.last_ts, b.last_ts) if t is not None]
-    return WindowSnapshot(
-        first_seq=min(a.first_seq, b.first_seq),
-        last_seq=max(a.last_seq, b.last_seq),
-        transactions=a.transactions + b.transactions,
-        max_error=a.max_error + b.max_error,
-        epsilon=a.epsilon,
-        pane_size=a.pane_size,
-        panes=a.panes + b.panes,
-        levels=levels,
+        levels.append(level)
+        presence.append(pres)
+    panes = a.panes + b.panes
+    snap = _snapshot_of(
+        [p for p, _ in panes],
+        levels,
         item_names=names,
-        first_ts=min(ts_min) if ts_min else None,
-        last_ts=max(ts_max) if ts_max else None,
+        epsilon=sa.epsilon,
+        pane_size=sa.pane_size,
     )
+    return PaneSum(snap, tuple(presence), panes)
+
+
+def subtract_panes(total: PaneSum, gone: Sequence[Pane]) -> PaneSum:
+    """``total`` without the panes ``gone`` (each must be one of its panes, unchanged since):
+    their counts are subtracted exactly and entries no remaining pane tracks are dropped.
+
+    Worked example (``w = 4``): an itemset tracked in two panes of 10 as ``(5, 1)`` and
+    ``(7, 0)`` has ``count 12``, ``upper 6 + 7 = 13`` and presence 2; subtracting the first
+    pane leaves ``count 7``, ``upper 13 - 3 - (6 - 3) = 7`` and presence 1.
+
+    Cost: one binary search per entry of the panes removed, and one pass over the total.
+    """
+    gone_ids = {id(p) for p in gone}
+    keep_panes = tuple((p, n) for p, n in total.panes if id(p) not in gone_ids)
+    snap = total.snapshot
+    names = snap.item_names
+    radix = max(len(names), 1)
+    removed_absent = sum(p.absent_bound for p in gone)
+    levels, presence = [], []
+    for level, pres in zip(snap.levels, total.presence, strict=True):
+        count = level.count.copy()
+        upper = level.upper - removed_absent
+        pres = pres.copy()
+        keys = pack(level.items, radix) if len(level) else None
+        for p in gone:
+            lv = p.summary.levels[level.size - 1]
+            if not len(lv):
+                continue
+            assert keys is not None
+            pos, found = lookup(keys, pack(lv.items, radix))
+            if not found.all():
+                raise ValueError("subtract_panes: a removed pane has entries the total lacks")
+            count[pos] -= lv.f
+            upper[pos] -= lv.f + lv.delta - p.absent_bound
+            pres[pos] -= 1
+        keep = pres > 0
+        items, count, upper, pres = level.items[keep], count[keep], upper[keep], pres[keep]
+        for arr in (items, count, upper):
+            arr.setflags(write=False)
+        levels.append(LevelCounts(level.size, items, count, upper))
+        presence.append(pres)
+    new = _snapshot_of(
+        [p for p, _ in keep_panes],
+        levels,
+        item_names=names,
+        epsilon=snap.epsilon,
+        pane_size=snap.pane_size,
+    )
+    return PaneSum(new, tuple(presence), keep_panes)
