@@ -44,7 +44,7 @@ __all__ = [
 BENCH_DIR = Path(__file__).resolve().parent
 REPO_DIR = BENCH_DIR.parent
 #: the shared datasets (``T10I4D100K.dat.gz``, ``retail.dat.gz``); overridable for other hosts
-DATA_DIR = Path(os.environ.get("STREAMCOUNT_DATA_DIR", "/work/shared/data"))
+DATA_DIR = Path(os.environ.get("STREAMCOUNT_DATA_DIR") or REPO_DIR.parent / "shared" / "data")
 RESULTS_MD = BENCH_DIR / "RESULTS.md"
 RESULTS_DIR = BENCH_DIR / "results"
 #: a 1-minute load average above this marks a recorded run as disturbed (2 shared cores: one
