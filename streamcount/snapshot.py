@@ -15,7 +15,7 @@ An itemset not listed in a level has ``count = 0`` and ``upper = max_error``.
 from __future__ import annotations
 
 from collections.abc import Iterable, Iterator, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -117,6 +117,10 @@ class WindowSnapshot:
     item_names: Sequence[str]
     first_ts: float | None = None
     last_ts: float | None = None
+    #: packed keys of each level, computed on first use (a cache, not part of the value)
+    _keys: dict[int, tuple[int, np.ndarray]] = field(
+        default_factory=dict, init=False, repr=False, compare=False
+    )
 
     @property
     def max_itemset_size(self) -> int:
@@ -160,11 +164,27 @@ class WindowSnapshot:
         count = np.zeros(n, dtype=np.int64)
         upper = np.full(n, self.max_error, dtype=np.int64)
         if len(level) and n:
-            radix = int(max(level.items.max(), rows.max())) + 1
-            pos, found = lookup(pack(level.items, radix), pack(rows, radix))
-            count[found] = level.count[pos[found]]
-            upper[found] = level.upper[pos[found]]
+            radix, keys = self._level_keys(k)
+            # an id beyond every tracked id cannot be in a tracked itemset
+            idx = np.flatnonzero((rows < radix).all(axis=1))
+            pos, found = lookup(keys, pack(rows[idx], radix))
+            hit = idx[found]
+            count[hit] = level.count[pos[found]]
+            upper[hit] = level.upper[pos[found]]
         return count, upper
+
+    def _level_keys(self, size: int) -> tuple[int, np.ndarray]:
+        """``(radix, sorted packed keys)`` of the tracked itemsets of one size, cached.
+
+        Readers on several threads may compute it at once; they compute the same value.
+        """
+        cached = self._keys.get(size)
+        if cached is None:
+            items = self.levels[size - 1].items
+            radix = int(items.max()) + 1 if items.size else 1
+            cached = (radix, pack(items, radix))
+            self._keys[size] = cached
+        return cached
 
     def frequent(
         self, min_support: float, *, sizes: Iterable[int] | None = None

@@ -329,14 +329,12 @@ def merge_sums(a: PaneSum, b: PaneSum) -> PaneSum:
     radix = max(len(names), 1)
     levels, presence = [], []
     for la, pa, lb, pb in zip(sa.levels, a.presence, sb.levels, b.presence, strict=True):
-        level, pres = _sum_parts(
-            la.size,
-            [
-                (la.items, la.count, la.upper, sa.max_error, pa),
-                (lb.items, lb.count, lb.upper, sb.max_error, pb),
-            ],
-            radix,
-        )
+        if len(la) < len(lb):  # insert the smaller side into the larger
+            la, pa, lb, pb = lb, pb, la, pa
+            ea, eb = sb.max_error, sa.max_error
+        else:
+            ea, eb = sa.max_error, sb.max_error
+        level, pres = _merge_two(la, pa, ea, lb, pb, eb, radix)
         levels.append(level)
         presence.append(pres)
     panes = a.panes + b.panes
@@ -348,6 +346,48 @@ def merge_sums(a: PaneSum, b: PaneSum) -> PaneSum:
         pane_size=sa.pane_size,
     )
     return PaneSum(snap, tuple(presence), panes)
+
+
+def _merge_two(
+    a: LevelCounts,
+    pres_a: np.ndarray,
+    absent_a: int,
+    b: LevelCounts,
+    pres_b: np.ndarray,
+    absent_b: int,
+    radix: int,
+) -> tuple[LevelCounts, np.ndarray]:
+    """Sum two sorted levels by inserting ``b`` into ``a`` (``a`` the larger one).
+
+    Same rule as :func:`_sum_parts`, in O(len(a) + len(b) log len(a)): a binary search of
+    ``b``'s keys in ``a``'s, additions where found, one ordered insertion of the rest.
+    """
+    extra_a = a.upper - absent_a
+    if not len(b):
+        count, extra, pres, items = a.count.copy(), extra_a, pres_a.copy(), a.items
+    else:
+        keys_a = pack(a.items, radix)
+        keys_b = pack(b.items, radix)
+        pos = np.searchsorted(keys_a, keys_b)
+        found = np.zeros(len(b), dtype=bool)
+        inside = pos < len(a)
+        found[inside] = keys_a[pos[inside]] == keys_b[inside]
+        extra_b = b.upper - absent_b
+        count, extra, pres = a.count.copy(), extra_a.copy(), pres_a.copy()
+        hit = pos[found]
+        count[hit] += b.count[found]
+        extra[hit] += extra_b[found]
+        pres[hit] += pres_b[found]
+        new = ~found
+        at = pos[new]
+        items = np.insert(a.items, at, b.items[new], axis=0)
+        count = np.insert(count, at, b.count[new])
+        extra = np.insert(extra, at, extra_b[new])
+        pres = np.insert(pres, at, pres_b[new])
+    upper = extra + absent_a + absent_b
+    for arr in (items, count, upper):
+        arr.setflags(write=False)
+    return LevelCounts(a.size, items, count, upper), pres
 
 
 def subtract_panes(total: PaneSum, gone: Sequence[Pane]) -> PaneSum:
