@@ -355,7 +355,7 @@ def decode_basket_records(
         try:
             got = decode_raw(decoder, rec, decoder.max_record_bytes)
         except ParseError as exc:
-            errors.append(exc)
+            errors.append(exc.with_traceback(None))  # no frame cycle kept alive
             continue
         for tx in got:
             baskets.append(list(tx.items))
@@ -1052,7 +1052,7 @@ def _basket_slice(
         try:
             got = decoder.feed(line, offset, next_offset)
         except ParseError as exc:
-            errors.append(exc)
+            errors.append(exc.with_traceback(None))  # no frame cycle kept alive
         else:
             if got:
                 items.append(list(got[0].items))
@@ -1193,7 +1193,7 @@ def _decoded_chunk(decoder: Decoder, lines: list[bytes], base: int, last_nl: boo
         try:
             txs.extend(decoder.feed(line, offset, end))
         except ParseError as exc:
-            errors.append(exc)
+            errors.append(exc.with_traceback(None))  # no frame cycle kept alive
         offset = end
     chunk = _transactions_chunk(txs, offset, "jsonl")
     chunk.errors.extend(errors)
