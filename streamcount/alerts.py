@@ -32,7 +32,14 @@ Warm-up
 Until the first window is full (``warm=False``) the state is tracked as usual but no alert is
 returned. The rules active when warm-up ends are the starting state: they are listed by
 :attr:`RuleMonitor.active_rules` and counted in one INFO log line, never alerted as
-``emerged`` (they do get a ``faded`` alert when they fade).
+``emerged`` (they do get a ``faded`` alert when they fade). Rules *near* their thresholds when
+warm-up ends (passing the exit thresholds, judged on point values) are part of the starting
+state too: as long as they keep passing the exit thresholds they are *primed*, and if one
+crosses the entry thresholds it becomes active silently (listed, never alerted, neither on
+entering nor on fading), since a rule hovering around a threshold is not a change in how
+people shop. A primed rule that falls below the exit thresholds loses its priming, so a
+real comeback later is alerted. Priming needs a warm-up: a monitor whose first evaluation
+is already warm primes nothing.
 
 Families (deduplication)
 ------------------------
@@ -72,7 +79,7 @@ import json
 import logging
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Protocol
 
 import numpy as np
@@ -97,6 +104,8 @@ logger = logging.getLogger(__name__)
 ALERT_KINDS: tuple[str, ...] = ("emerged", "faded", "surged")
 
 _STATE_VERSION = 1
+#: cap on the rules remembered as near their thresholds at the end of warm-up
+_PRIMED_MAX_RULES = 100_000
 
 RuleKey = tuple[tuple[str, ...], tuple[str, ...]]
 
@@ -342,6 +351,8 @@ class RuleMonitor:
         self._surges: dict[tuple[str, ...], _State] = {}
         self._evaluations = 0
         self._warm_done = False
+        #: rules near their thresholds since warm-up: their activation is not news (see below)
+        self._primed: set[RuleKey] = set()
 
     # ------------------------------------------------------------------ views
     @property
@@ -412,7 +423,8 @@ class RuleMonitor:
         """
         self._evaluations += 1
         if warm and not self._warm_done:
-            self._finish_warmup(seq)
+            # prime only after a warm-up was seen: with none, nothing is "already there"
+            self._finish_warmup(seq, window, prime=self._evaluations > 1)
         out = self._evaluate_rules(window, seq, event_time, warm)
         if (
             self.alerts_config.surge
@@ -426,8 +438,21 @@ class RuleMonitor:
             logger.debug("evaluation %d (seq %d): %d alerts", self._evaluations, seq, len(out))
         return out
 
-    def _finish_warmup(self, seq: int) -> None:
+    def _finish_warmup(self, seq: int, window: WindowSnapshot, *, prime: bool) -> None:
         self._warm_done = True
+        cfg = self.rules_config
+        ratio = cfg.exit_ratio
+        near = replace(
+            cfg,
+            min_support=cfg.min_support * ratio,
+            min_confidence=cfg.min_confidence * ratio,
+            min_lift=cfg.min_lift * ratio,
+            max_p_value=None,
+            max_rules=_PRIMED_MAX_RULES,
+        )
+        min_count = math.ceil(joint_count_threshold(window, cfg) * ratio)
+        if prime:
+            self._primed = {r.key for r in derive_rules(window, near, min_count=min_count)}
         for states, rep_of in (
             (self._rules, self._rule_family_rep),
             (self._surges, self._surge_family_rep),
@@ -436,11 +461,12 @@ class RuleMonitor:
             for state in active.values():
                 state.announced = rep_of(state.latest, active) is None  # type: ignore[operator]
         logger.info(
-            "alert warm-up over at seq %d: %d rules and %d surges active (starting state, "
-            "not alerted)",
+            "alert warm-up over at seq %d: %d rules and %d surges active, %d rules near "
+            "their thresholds (starting state, not alerted)",
             seq,
             sum(s.active for s in self._rules.values()),
             sum(s.active for s in self._surges.values()),
+            len(self._primed),
         )
 
     def _rule_family_rep(self, rule: Rule, active: Mapping[RuleKey, _State]) -> RuleKey | None:
@@ -574,6 +600,17 @@ class RuleMonitor:
             else:
                 self._rules[key] = state
 
+        if self._primed and self._warm_done:
+            # a primed rule stays primed while it keeps passing the exit thresholds
+            stays = {k for k in self._primed if k in entry}
+            rest = [k for k in self._primed if k not in entry]
+            stays.update(
+                r.key
+                for r in measure_rules(window, rest, config=cfg)
+                if self._exit_holds(r, min_count)
+            )
+            self._primed = stays
+
         out: list[Alert] = []
         for key in sorted(faded):
             state = self._rules[key]
@@ -586,7 +623,7 @@ class RuleMonitor:
         for key in sorted(emerged, key=lambda k: (len(k[0]), k)):
             state = self._rules[key]
             rep = self._rule_family_rep(state.latest, active)  # type: ignore[arg-type]
-            state.announced = warm and rep is None
+            state.announced = warm and rep is None and key not in self._primed
             if state.announced:
                 out.append(self._rule_alert("emerged", state.latest, window, seq, event_time))  # type: ignore[arg-type]
         return out
@@ -742,6 +779,7 @@ class RuleMonitor:
                 for k, s in sorted(self._rules.items())
             ],
             "surges": [{"items": list(k), **enc(s)} for k, s in sorted(self._surges.items())],
+            "primed": [[list(k[0]), list(k[1])] for k in sorted(self._primed)],
         }
 
     def load_state(self, d: Mapping[str, object]) -> None:
@@ -776,7 +814,9 @@ class RuleMonitor:
                 )
             evaluations = int(d["evaluations"])  # type: ignore[call-overload]
             warm_done = bool(d["warm_done"])
+            primed = {(tuple(a), tuple(c)) for a, c in d.get("primed", [])}  # type: ignore[attr-defined]
         except (KeyError, TypeError, ValueError) as exc:
             raise CheckpointError(f"alert monitor state is malformed: {exc!r}") from exc
         self._rules, self._surges = rules, surges
         self._evaluations, self._warm_done = evaluations, warm_done
+        self._primed = primed
