@@ -453,13 +453,13 @@ class RuleMonitor:
         min_count = math.ceil(joint_count_threshold(window, cfg) * ratio)
         if prime:
             self._primed = {r.key for r in derive_rules(window, near, min_count=min_count)}
-        for states, rep_of in (
-            (self._rules, self._rule_family_rep),
-            (self._surges, self._surge_family_rep),
-        ):
-            active = {k: s for k, s in states.items() if s.active}
-            for state in active.values():
-                state.announced = rep_of(state.latest, active) is None  # type: ignore[operator]
+        rules = {k: s for k, s in self._rules.items() if s.active}
+        for state in rules.values():  # all start together: the family order decides
+            rep = self._rule_family_rep(state.latest, rules, frozenset(rules))  # type: ignore[arg-type]
+            state.announced = rep is None
+        surges = {k: s for k, s in self._surges.items() if s.active}
+        for state in surges.values():
+            state.announced = self._surge_family_rep(state.latest, surges) is None  # type: ignore[arg-type]
         logger.info(
             "alert warm-up over at seq %d: %d rules and %d surges active, %d rules near "
             "their thresholds (starting state, not alerted)",
@@ -469,14 +469,20 @@ class RuleMonitor:
             len(self._primed),
         )
 
-    def _rule_family_rep(self, rule: Rule, active: Mapping[RuleKey, _State]) -> RuleKey | None:
+    def _rule_family_rep(
+        self,
+        rule: Rule,
+        active: Mapping[RuleKey, _State],
+        newly: frozenset[RuleKey] = frozenset(),
+    ) -> RuleKey | None:
         """The representative of ``rule``'s family among the ``active`` rules, or ``None``.
 
         Another active rule represents ``rule`` when its itemset is contained in ``rule``'s
         (the same itemset split another way, or a subset), it comes first in the family order
         (fewer items, then fewer antecedent items, then by name), and ``rule`` shows no lift
         gain beyond it. ``X => Y`` and ``Y => X`` have the same lift, so the two directions of
-        a rule always share a family.
+        a rule always share a family. The family order only decides between rules that become
+        active together (``newly``): a rule already active represents one that joins later.
         """
         items = set(rule.items)
         tol = 1.0 + self.family_lift_tolerance
@@ -488,7 +494,9 @@ class RuleMonitor:
             if not isinstance(other, Rule) or key == rule.key:
                 continue
             other_rank = (len(other.items), len(other.antecedent), key)
-            if other_rank >= rank or not set(other.items) <= items:
+            if not set(other.items) <= items:
+                continue
+            if other_rank >= rank and (key in newly or len(other.items) > len(rule.items)):
                 continue
             if rule.lift.low <= other.lift.high * tol and (
                 best_rank is None or other_rank < best_rank
@@ -532,7 +540,7 @@ class RuleMonitor:
         cfg = self.rules_config
         ratio = 1.0 if kind == "emerged" else cfg.exit_ratio
         out: dict[str, object] = {
-            "min_count": joint_count_threshold(window, cfg) * ratio,
+            "min_count": math.ceil(joint_count_threshold(window, cfg) * ratio),
             "min_support": cfg.min_support * ratio,
             "min_confidence": cfg.min_confidence * ratio,
             "min_lift": cfg.min_lift * ratio,
@@ -622,7 +630,9 @@ class RuleMonitor:
         active = {k: s for k, s in self._rules.items() if s.active}
         for key in sorted(emerged, key=lambda k: (len(k[0]), k)):
             state = self._rules[key]
-            rep = self._rule_family_rep(state.latest, active)  # type: ignore[arg-type]
+            rep = self._rule_family_rep(  # type: ignore[arg-type]
+                state.latest, active, frozenset(emerged)
+            )
             state.announced = warm and rep is None and key not in self._primed
             if state.announced:
                 out.append(self._rule_alert("emerged", state.latest, window, seq, event_time))  # type: ignore[arg-type]

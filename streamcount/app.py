@@ -69,6 +69,8 @@ class _View:
     status: dict[str, Any] = field(default_factory=dict)
     #: the window the rules were last evaluated on (at the last pane close)
     rules_window: dict[str, Any] | None = None
+    #: the panes (index, counted) the window was summed from
+    window_key: tuple[tuple[int, int], ...] = ()
 
 
 class Service:
@@ -105,6 +107,8 @@ class Service:
         self._last_turn = time.monotonic()
         self._alerts: deque[dict[str, Any]] = deque(maxlen=max(1, config.alerts.history))
         self._alert_counts: Counter[str] = Counter()
+        #: records set aside since the state began, by reason (decoder and engine alike)
+        self._rejected_counts: Counter[str] = Counter()
         self._ready = False
         self._rules_window: dict[str, Any] | None = None
         self.turns = 0
@@ -160,6 +164,8 @@ class Service:
                 f"checkpoint in {directory} cannot be restored: {exc}; start with --fresh to "
                 "discard it"
             ) from exc
+        self._alert_counts.update(meta.get("alert_counts", {}))
+        self._rejected_counts.update(meta.get("rejected_counts", {}))
         for record in meta.get("alerts", []):
             self._alerts.append(record)
         self._last_checkpoint_unix = float(meta.get("written_at", self.clock()))
@@ -237,6 +243,7 @@ class Service:
             self.start_server()
         logger.info("streamcount %s started: %s", __version__, describe(self.config))
         self._ready = True
+        clean = False
         try:
             while not self._stop.is_set():
                 self.turn(timeout=self.config.input.poll_interval_seconds)
@@ -245,22 +252,23 @@ class Service:
                     self.engine.flush()
                     logger.info("input exhausted; stopping")
                     break
+            clean = True
         finally:
-            self.shutdown()
+            self.shutdown(clean=clean)
         return 0
 
     def _finished(self) -> bool:
-        return bool(
-            getattr(self.source, "exhausted", False)
-            and not self.config.input.follow
-            and self._ingest.empty()
-        ) or bool(getattr(self.source, "exhausted", False) and self.source_name == "stdin")
+        if not getattr(self.source, "exhausted", False) or not self._ingest.empty():
+            return False
+        return not self.config.input.follow or self.source_name == "stdin"
 
-    def turn(self, timeout: float = 0.0) -> int:
+    def turn(self, timeout: float = 0.0, *, read_source: bool = True) -> int:
         """One turn of the loop: read, decode, count, publish, maybe checkpoint."""
         started = time.perf_counter()
         self._last_turn = time.monotonic()
-        records: list[RawRecord] = self.source.read(max_records=_READ_RECORDS, timeout=timeout)
+        records: list[RawRecord] = (
+            self.source.read(max_records=_READ_RECORDS, timeout=timeout) if read_source else []
+        )
         baskets: list[list[str]] = []
         stamps: list[float | None] = []
         origin: list[RawRecord | None] = []
@@ -311,6 +319,9 @@ class Service:
             stamps.extend(more_ts)
             origin.extend([None] * len(more))
         accepted = 0
+        limit = self.config.input.max_future_seconds
+        if baskets and limit is not None and any(t is not None for t in stamps):
+            baskets, stamps, origin = self._drop_future(baskets, stamps, origin, limit, rejected)
         if baskets:
             result = self.engine.add(baskets, stamps)
             accepted = result.accepted
@@ -326,7 +337,7 @@ class Service:
             self.metrics.observe_batch(accepted, rejected, time.perf_counter() - started)
         self.turns += 1
         now = time.monotonic()
-        if baskets:
+        if baskets or rejected:
             self._unpublished = True
         if self._unpublished and now - self._last_publish >= _PUBLISH_SECONDS:
             self._publish()
@@ -336,8 +347,38 @@ class Service:
             self.checkpoint()
         return accepted
 
+    def _drop_future(
+        self,
+        baskets: list[list[str]],
+        stamps: list[float | None],
+        origin: list[RawRecord | None],
+        limit: float,
+        rejected: Counter[str],
+    ) -> tuple[list[list[str]], list[float | None], list[RawRecord | None]]:
+        """Set aside transactions stamped more than ``limit`` seconds ahead of the clock."""
+        horizon = self.clock() + limit
+        ahead = [i for i, t in enumerate(stamps) if t is not None and t > horizon]
+        if not ahead:
+            return baskets, stamps, origin
+        for i in ahead:
+            rec = origin[i]
+            self._reject(
+                ParseError(
+                    "too_early",
+                    f"event time {stamps[i]!r} is more than input.max_future_seconds={limit:g} "
+                    f"ahead of the clock ({horizon - limit:.0f}); check the sender's clock",
+                    offset=rec.offset if rec is not None else None,
+                    raw=rec.data if rec is not None else " ".join(baskets[i]).encode(),
+                ),
+                rejected,
+            )
+        drop = set(ahead)
+        keep = [i for i in range(len(baskets)) if i not in drop]
+        return [baskets[i] for i in keep], [stamps[i] for i in keep], [origin[i] for i in keep]
+
     def _reject(self, exc: ParseError, rejected: Counter[str], source: str | None = None) -> None:
         rejected[exc.reason] += 1
+        self._rejected_counts[exc.reason] += 1
         self.dead_letter.write(exc, source=source or self.source_name)
 
     def _on_pane_closed(self, engine: Engine) -> None:
@@ -364,14 +405,21 @@ class Service:
     # -- published view ----------------------------------------------------------------------
 
     def _build_view(self, window: WindowSnapshot | None = None) -> _View:
-        window = window if window is not None else self.engine.snapshot()
+        if window is None:
+            # the window changes only when a batch is counted; statistics change with every
+            # transaction buffered, so a view is rebuilt without re-summing unchanged panes
+            previous = getattr(self, "_view", None)
+            if previous is not None and previous.window_key == self._window_key():
+                window = previous.window
+            else:
+                window = self.engine.snapshot()
         stats = self.engine.statistics()
         rules = tuple(self.monitor.active_rules)
         status = {
             "version": __version__,
             "window": window.window_dict(),
             "transactions_seen": stats.transactions_seen,
-            "rejected": dict(stats.rejected),
+            "rejected": dict(self._rejected_counts),
             "buffered_transactions": stats.buffered_transactions,
             "tracked_itemsets": {str(k + 1): n for k, n in enumerate(stats.tracked_entries)},
             "summary_bytes": stats.bytes_held,
@@ -384,7 +432,19 @@ class Service:
             "max_event_ts": stats.max_event_ts,
             "rules_window": self._rules_window,
         }
-        return _View(window, stats, rules, tuple(self._alerts), status, self._rules_window)
+        return _View(
+            window,
+            stats,
+            rules,
+            tuple(self._alerts),
+            status,
+            self._rules_window,
+            self._window_key(),
+        )
+
+    def _window_key(self) -> tuple[tuple[int, int], ...]:
+        """What the window's counts depend on: each live pane and how much of it is counted."""
+        return tuple((p.index, p.counted) for p in self.engine.panes.values())
 
     def _publish(self, window: WindowSnapshot | None = None) -> None:
         self._view = self._build_view(window)
@@ -420,6 +480,8 @@ class Service:
             "monitor": self.monitor.state_dict(),
             "source": self.source.position() if self.source_name == "file" else None,
             "alerts": list(self._alerts)[-100:],
+            "alert_counts": dict(self._alert_counts),
+            "rejected_counts": dict(self._rejected_counts),
             "written_at": now,
         }
         try:
@@ -430,25 +492,37 @@ class Service:
                 fingerprint=self._fingerprint,
                 settings=fingerprint_settings(self.config),
             )
-        except (OSError, CheckpointError) as exc:
+        except (OSError, ValueError, CheckpointError) as exc:
             logger.warning("checkpoint to %s failed: %s", directory, exc)
             self.metrics.observe_checkpoint(False, now)
         else:
             self._last_checkpoint_unix = now
             self.metrics.observe_checkpoint(True, now)
+            self._unpublished = True  # /v1/status shows the checkpoint time
             logger.info("checkpoint written: %s (seq %d)", path, self.engine.next_seq - 1)
         self._last_checkpoint_mono = time.monotonic()
 
-    def shutdown(self) -> None:
+    def shutdown(self, *, clean: bool = True) -> None:
+        """Stop serving, count what HTTP ingest already acknowledged, write the final
+        checkpoint and release everything.
+
+        After an unexpected error (``clean=False``) no checkpoint is written: the state may be
+        half-updated, so the last good checkpoint is kept and a restart re-reads from it.
+        """
         self._ready = False
-        self.checkpoint()
-        self._publish()
+        if self.server is not None:  # no new ingest from here on
+            self.server.shutdown()
+            self.server.server_close()
+        if clean:
+            while not self._ingest.empty():
+                self.turn(read_source=False)
+            self.checkpoint()
+            self._publish()
+        else:
+            logger.warning("stopping after an error; the last good checkpoint is kept")
         self.sinks.close(timeout=5.0)
         self.dead_letter.close()
         self.source.close()
-        if self.server is not None:
-            self.server.shutdown()
-            self.server.server_close()
         logger.info("stopped after %d transactions", self.engine.transactions_seen)
 
     # -- ApiBackend (called from HTTP threads; reads only the published view) ------------------

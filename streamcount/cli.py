@@ -10,13 +10,14 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+import typing
 from collections.abc import Sequence
 from typing import Any
 
 from streamcount import __version__
 from streamcount.errors import StreamcountError
 
-__all__ = ["main"]
+__all__ = ["format_from_path", "main"]
 
 #: (section, key, type) of every setting that has a command-line option
 SETTING_OPTIONS: tuple[tuple[str, str, type], ...] = (
@@ -82,10 +83,28 @@ def config_from_args(args: argparse.Namespace, extra: dict[str, object] | None =
     return apply_overrides(config, overrides) if overrides else config
 
 
+_SUFFIX_FORMATS = {".jsonl": "jsonl", ".ndjson": "jsonl", ".json": "jsonl", ".csv": "csv"}
+
+
+def format_from_path(path: str) -> str | None:
+    """The format a file name implies (``orders.jsonl.gz`` is JSON lines), or ``None``.
+
+    >>> format_from_path("orders.jsonl.gz"), format_from_path("lines.csv"), format_from_path("x")
+    ('jsonl', 'csv', None)
+    """
+    name = path.lower().removesuffix(".gz")
+    return next((fmt for suffix, fmt in _SUFFIX_FORMATS.items() if name.endswith(suffix)), None)
+
+
 def _cmd_replay(args: argparse.Namespace) -> int:
     from streamcount.replay import replay_file
 
-    config = config_from_args(args)
+    extra: dict[str, object] = {}
+    if args.set__input__format is None and not args.config:
+        implied = format_from_path(args.path)
+        if implied is not None:  # without --format, a .jsonl or .csv name decides
+            extra["input.format"] = implied
+    config = config_from_args(args, extra)
     parts = [p.strip() for p in args.report.split(",") if p.strip()]
     result = replay_file(args.path, config, report=parts, progress=sys.stderr)
     text = json.dumps(result.report, separators=(",", ":"), allow_nan=False)
@@ -115,8 +134,15 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     return demo_main(args)
 
 
+class _Parser(argparse.ArgumentParser):
+    """Usage errors as one line on stderr (exit 2), pointing at ``--help``."""
+
+    def error(self, message: str) -> typing.NoReturn:
+        self.exit(2, f"{self.prog}: error: {message} (see {self.prog} --help)\n")
+
+
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="streamcount",
         description="Live co-purchase counts, association rules and alerts over a sliding "
         "window with a guaranteed error bound.",
@@ -126,7 +152,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     rp = sub.add_parser("replay", help="count a whole file as fast as possible; JSON report")
     rp.add_argument(
-        "path", help="basket lines or JSON lines file (.gz read transparently; - stdin)"
+        "path",
+        help="basket lines, JSON lines or CSV file (.gz read transparently; - for stdin); "
+        "without --format a .jsonl/.ndjson/.json or .csv name selects the format",
     )
     rp.add_argument("--output", metavar="FILE", help="write the report here instead of stdout")
     rp.add_argument(

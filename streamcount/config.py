@@ -15,6 +15,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 __all__ = [
+    "MAX_TIMESTAMP",
     "AlertsConfig",
     "CheckpointConfig",
     "Config",
@@ -29,6 +30,10 @@ __all__ = [
     "SinksConfig",
     "WebhookConfig",
 ]
+
+
+#: event timestamps are epoch seconds; one this large is in another unit (ms, us, ns) or garbage
+MAX_TIMESTAMP = 1e11
 
 
 @dataclass(frozen=True, slots=True)
@@ -74,6 +79,9 @@ class InputConfig:
     #: accept transactions over HTTP at POST /v1/transactions
     http_ingest: bool = False
     max_body_bytes: int = 1048576
+    #: events stamped more than this many seconds ahead of the wall clock are set aside
+    #: (too_early) so one bad clock cannot close every pane; null: no check
+    max_future_seconds: float | None = 3600.0
     dead_letter_path: str | None = "dead-letter.jsonl"
     jsonl: JsonlConfig = field(default_factory=JsonlConfig)
     csv: CsvConfig = field(default_factory=CsvConfig)
@@ -106,7 +114,8 @@ class RulesConfig:
     min_support: float = 0.01
     min_confidence: float = 0.5
     min_lift: float = 1.5
-    #: absolute joint count below which no rule is formed; null: 10 x the window's max_error
+    #: absolute joint count below which no rule is formed; null: 10 x the window's max_error,
+    #: and at least 10
     min_count: int | None = None
     max_consequent_size: int = 1
     #: significance test (fisher | chi2) at the least favourable corner of the intervals;

@@ -29,6 +29,7 @@ import difflib
 import hashlib
 import json
 import math
+import os
 import re
 import sys
 import types
@@ -150,6 +151,7 @@ _RULES: dict[str, tuple[_Check, ...]] = {
     "input.max_record_bytes": (_at_least(1),),
     "input.encoding": ((_codec_known, "must be a text encoding Python knows, e.g. 'utf-8'"),),
     "input.max_body_bytes": (_at_least(1),),
+    "input.max_future_seconds": (_at_least(0),),
     "input.dead_letter_path": (_NON_EMPTY,),
     "input.jsonl.id_field": (_NON_EMPTY,),
     "input.jsonl.ts_field": (_NON_EMPTY,),
@@ -623,4 +625,11 @@ def check_config_main(path: str | Path) -> int:
         print(f"error: {path}: {err}", file=sys.stderr)
         return 2
     print(f"OK: {describe(cfg)}")
+    token_env = cfg.server.token_env
+    if token_env and not os.environ.get(token_env):
+        print(
+            f"warning: server.token_env = {token_env!r}: that environment variable is not set "
+            "here; `streamcount run` will refuse to start without it",
+            file=sys.stderr,
+        )
     return 0

@@ -19,6 +19,7 @@ timestamps (``max event time - allowed_lateness_seconds`` is the watermark).
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from collections import Counter
 from collections.abc import Callable, Sequence
@@ -28,7 +29,8 @@ from itertools import pairwise
 import numpy as np
 from sortedcontainers import SortedDict
 
-from streamcount.config import EngineConfig
+from streamcount.config import MAX_TIMESTAMP, EngineConfig
+from streamcount.configload import config_from_mapping
 from streamcount.counters import bucket_width
 from streamcount.snapshot import EngineStatistics, WindowSnapshot
 from streamcount.vocab import ItemVocabulary
@@ -61,32 +63,33 @@ class AddResult:
 class Engine:
     """Itemset counts over a sliding window with a guaranteed error bound.
 
-    Parameters
-    ----------
-    config:
-        Counting and window settings (``epsilon``, ``max_itemset_size``, ``window_size`` /
-        ``pane_size`` or ``window_seconds`` / ``pane_seconds``, ...).
-    on_pane_closed:
-        Called with the engine right after a pane is closed and counted.
+        Parameters
+        ----------
+        config:
+            Counting and window settings (``epsilon``, ``max_itemset_size``, ``window_size`` /
+            ``pane_size`` or ``window_seconds`` / ``pane_seconds``, ...).
+        on_pane_closed:
+            Called with the engine right after a pane is closed and counted.
 
-    Guarantee (for every itemset of size ``1..max_itemset_size`` and the window's
-    transactions ``first_seq..last_seq``): ``count <= true <= upper`` and
-    ``upper - count <= max_error <= ceil(epsilon * N) + panes``.
+        Guarantee (for every itemset of size ``1..max_itemset_size`` and the window's
+        transactions ``first_seq..last_seq``): ``count <= true <= upper`` and
+        ``upper - count <= max_error <= ceil(epsilon * N) + panes``.
 
-    Memory: the live panes' summaries (for single items at most ``w * H_B`` entries per pane,
-    Manku & Motwani 2002) plus at most one batch of buffered transactions per open pane.
+        Memory: the live panes' summaries (for single items at most ``w * H_B`` entries per pane,
+        Manku & Motwani 2002) plus at most one batch of buffered transactions per open pane.
 
-    Examples
-    --------
-    >>> from streamcount.config import EngineConfig
-    >>> eng = Engine(EngineConfig(epsilon=0.0, window_size=4, pane_size=2, max_itemset_size=2))
-    >>> _ = eng.add([["tea", "honey"], ["tea"], ["tea", "honey"], ["jam"], ["tea", "jam"]])
-    >>> eng.flush()
-    >>> snap = eng.snapshot()
-    >>> snap.first_seq, snap.last_seq, snap.transactions
-    (3, 5, 3)
-    >>> [(s.items, s.count) for s in snap.frequent(0.5)]
-    [(('jam',), 2), (('tea',), 2)]
+        Examples
+        --------
+        >>> from streamcount.config import EngineConfig
+    from streamcount.configload import config_from_mapping
+        >>> eng = Engine(EngineConfig(epsilon=0.0, window_size=4, pane_size=2, max_itemset_size=2))
+        >>> _ = eng.add([["tea", "honey"], ["tea"], ["tea", "honey"], ["jam"], ["tea", "jam"]])
+        >>> eng.flush()
+        >>> snap = eng.snapshot()
+        >>> snap.first_seq, snap.last_seq, snap.transactions
+        (3, 5, 3)
+        >>> [(s.items, s.count) for s in snap.frequent(0.5)]
+        [(('jam',), 2), (('tea',), 2)]
     """
 
     def __init__(
@@ -95,6 +98,8 @@ class Engine:
         *,
         on_pane_closed: Callable[[Engine], None] | None = None,
     ) -> None:
+        # the same rules as a config file (a ConfigError names the engine.* key)
+        config_from_mapping({"engine": dataclasses.asdict(config)}, source="EngineConfig")
         self.config = config
         self.on_pane_closed = on_pane_closed
         self.epsilon = float(config.epsilon)
@@ -102,7 +107,7 @@ class Engine:
         self.max_itemset_size = int(config.max_itemset_size)
         self.time_based = config.window_seconds is not None
         if self.time_based:
-            assert config.pane_seconds is not None
+            assert config.pane_seconds is not None  # checked with the config rules above
             self.pane_seconds = float(config.pane_seconds)
             window_seconds = float(config.window_seconds)  # type: ignore[arg-type]
             self.window_panes = round(window_seconds / self.pane_seconds)
@@ -177,6 +182,18 @@ class Engine:
                     Rejection(i, "missing_field", "a time-based window needs a timestamp")
                 )
             ok &= ~missing
+            with np.errstate(invalid="ignore"):
+                odd = ok & ~(np.abs(ts) < MAX_TIMESTAMP)
+            for i in np.flatnonzero(odd).tolist():
+                rejections.append(
+                    Rejection(
+                        i,
+                        "wrong_type",
+                        f"event time {float(ts[i])!r} is not epoch seconds below "
+                        f"{MAX_TIMESTAMP:.0e} (milliseconds?)",
+                    )
+                )
+            ok &= ~odd
             pane_idx = np.zeros(t, dtype=np.int64)
             pane_idx[ok] = np.floor(ts[ok] / self.pane_seconds).astype(np.int64)
             # watermark seen by each transaction = running max of earlier event times
@@ -195,8 +212,9 @@ class Engine:
                     Rejection(
                         i,
                         "too_late",
-                        f"event time {ts[i]!r} falls in pane {int(pane_idx[i])}, already closed "
-                        f"(allowed_lateness_seconds={self.config.allowed_lateness_seconds})",
+                        f"event time {float(ts[i])!r} falls in pane {int(pane_idx[i])}, "
+                        "already closed (allowed_lateness_seconds="
+                        f"{self.config.allowed_lateness_seconds})",
                     )
                 )
             ok &= ~late
@@ -251,28 +269,63 @@ class Engine:
         ts: np.ndarray,
         pane_idx: np.ndarray,
     ) -> int:
+        """Route accepted transactions to their panes, closing each pane as soon as the
+        watermark (largest event time so far minus ``allowed_lateness_seconds``) passes its
+        end: the chunk is cut where the watermark crosses a pane boundary, so a pane is closed
+        (and ``on_pane_closed`` sees the window) before later transactions are counted."""
         ends = np.cumsum(lengths)
-        starts = ends - lengths
-        order = np.argsort(pane_idx, kind="stable")
+        prev = -np.inf if self.max_event_ts is None else self.max_event_ts
+        running = np.maximum.accumulate(np.concatenate(([prev], ts)))[1:]
+        lateness = self.config.allowed_lateness_seconds
+        # panes ending at or before the watermark after each transaction
+        limit_after = np.floor((running - lateness) / self.pane_seconds) - 1
+        limit_before = np.floor((prev - lateness) / self.pane_seconds) - 1
+        raised = limit_after > np.concatenate(([limit_before], limit_after[:-1]))
+        # a segment ends with the transaction that moves the watermark past a pane's end
+        cuts = (np.flatnonzero(raised) + 1).tolist()
+        if not cuts or cuts[-1] != ts.shape[0]:
+            cuts.append(ts.shape[0])
+        closes = 0
+        for a, b in zip([0, *cuts[:-1]], cuts, strict=True):
+            self._append_by_pane(flat, lengths, ends, seq, ts, pane_idx, a, b)
+            self.max_event_ts = float(running[b - 1])
+            limit = limit_after[b - 1]
+            if not math.isfinite(limit):
+                continue
+            limit = int(limit)
+            for idx in [i for i, p in self.panes.items() if not p.closed and i <= limit]:
+                self._close(self.panes[idx])
+                closes += 1
+            self.closed_through = max(self.closed_through, limit)
+        return closes
+
+    def _append_by_pane(
+        self,
+        flat: np.ndarray,
+        lengths: np.ndarray,
+        ends: np.ndarray,
+        seq: np.ndarray,
+        ts: np.ndarray,
+        pane_idx: np.ndarray,
+        a: int,
+        b: int,
+    ) -> None:
+        """Append transactions ``a..b-1`` to their panes, in pane order, one gather each."""
+        order = a + np.argsort(pane_idx[a:b], kind="stable")
         sorted_idx = pane_idx[order]
         bounds = np.flatnonzero(np.concatenate(([True], sorted_idx[1:] != sorted_idx[:-1])))
         bounds = np.append(bounds, order.shape[0])
-        for a, b in zip(bounds[:-1].tolist(), bounds[1:].tolist(), strict=True):
-            rows = order[a:b]
-            pane = self._pane(int(sorted_idx[a]))
-            parts = [flat[starts[r] : ends[r]] for r in rows.tolist()]
-            pane.append(np.concatenate(parts), lengths[rows], seq[rows], ts[rows])
+        for lo, hi in zip(bounds[:-1].tolist(), bounds[1:].tolist(), strict=True):
+            rows = order[lo:hi]
+            n_items = lengths[rows]
+            # positions of every item of these rows in ``flat``, without a slice per row
+            first = ends[rows] - n_items
+            take = np.repeat(first - np.cumsum(n_items) + n_items, n_items) + np.arange(
+                int(n_items.sum())
+            )
+            pane = self._pane(int(sorted_idx[lo]))
+            pane.append(flat[take], n_items, seq[rows], ts[rows])
             self._count_full_batches(pane)
-        tmax = float(ts.max())
-        self.max_event_ts = tmax if self.max_event_ts is None else max(self.max_event_ts, tmax)
-        watermark = self.max_event_ts - self.config.allowed_lateness_seconds
-        limit = math.floor(watermark / self.pane_seconds) - 1  # panes ending at or before it
-        closes = 0
-        for idx in [i for i, p in self.panes.items() if not p.closed and i <= limit]:
-            self._close(self.panes[idx])
-            closes += 1
-        self.closed_through = max(self.closed_through, limit)
-        return closes
 
     def _pane(self, idx: int) -> Pane:
         pane = self.panes.get(idx)
@@ -294,16 +347,16 @@ class Engine:
 
     def _expire(self) -> None:
         oldest = self.newest_index - self.window_panes + 1
-        for idx in [
-            i for i, p in self.panes.items() if i < oldest and (p.closed or not p.buffered)
-        ]:
+        # only closed panes leave: an open one is closed (and evaluated) first
+        for idx in [i for i, p in self.panes.items() if i < oldest and p.closed]:
             del self.panes[idx]
 
     def _close(self, pane: Pane) -> None:
         self._count(pane, None)
         pane.closed = True
-        if not self.time_based:
-            self.closed_through = max(self.closed_through, pane.index)
+        # panes close in index order, so every index up to this one is now closed (set
+        # before the callback: it asks window_full)
+        self.closed_through = max(self.closed_through, pane.index)
         if self.on_pane_closed is not None:
             self.on_pane_closed(self)
 
@@ -442,7 +495,7 @@ class Engine:
             "epsilon": self.epsilon,
             "max_itemset_size": self.max_itemset_size,
             "pane_size": self.pane_size,
-            "pane_seconds": self.pane_seconds if self.time_based else None,
+            "pane_seconds": self.pane_seconds,
             "window_panes": self.window_panes,
             "next_seq": self.next_seq,
             "transactions_seen": self.transactions_seen,
@@ -470,7 +523,7 @@ class Engine:
             raise ValueError(
                 f"engine state version {meta.get('state_version')!r} is not {STATE_VERSION}"
             )
-        for key in ("epsilon", "max_itemset_size", "pane_size", "window_panes"):
+        for key in ("epsilon", "max_itemset_size", "pane_size", "pane_seconds", "window_panes"):
             if meta[key] != getattr(eng, key):
                 raise ValueError(
                     f"engine state has {key}={meta[key]!r} but the settings give "

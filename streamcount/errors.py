@@ -61,7 +61,8 @@ class ParseError(InputError):
     reason:
         A short machine-readable reason, used as the ``reason`` label of
         ``streamcount_records_rejected_total`` (``malformed``, ``bad_encoding``, ``too_long``,
-        ``too_many_items``, ``missing_field``, ``wrong_type``, ``too_late``, ``empty``).
+        ``too_many_items``, ``missing_field``, ``wrong_type``, ``too_late``, ``too_early``,
+        ``empty``).
     offset:
         Where the record starts in its source (byte offset for files, line number for others),
         or ``None`` when unknown.

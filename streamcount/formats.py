@@ -44,7 +44,7 @@ from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime
 from typing import IO, TYPE_CHECKING, Any, Protocol
 
-from streamcount.config import CsvConfig, InputConfig, JsonlConfig
+from streamcount.config import MAX_TIMESTAMP, CsvConfig, InputConfig, JsonlConfig
 from streamcount.errors import ConfigError, InputError, ParseError
 
 if TYPE_CHECKING:
@@ -52,6 +52,7 @@ if TYPE_CHECKING:
 
 __all__ = [
     "FORMATS",
+    "MAX_TIMESTAMP",
     "REASONS",
     "BasketDecoder",
     "Chunk",
@@ -230,10 +231,11 @@ def _parse_ts(value: object, where: str, offset: int, raw: bytes) -> float:
             moment = moment.replace(tzinfo=UTC)
         return moment.timestamp()
     ts = float(value)
-    if not math.isfinite(ts):
+    if not math.isfinite(ts) or abs(ts) >= MAX_TIMESTAMP:
         raise ParseError(
             "wrong_type",
-            f"{where} = {_show(value)}: a timestamp must be a finite number",
+            f"{where} = {_show(value)}: a timestamp must be epoch seconds, a finite number "
+            f"below {MAX_TIMESTAMP:.0e} (milliseconds or nanoseconds are not accepted)",
             offset=offset,
             raw=raw,
         )
@@ -242,6 +244,16 @@ def _parse_ts(value: object, where: str, offset: int, raw: bytes) -> float:
 
 def _item_name(value: object, where: str, offset: int, raw: bytes) -> str:
     if isinstance(value, str):
+        if not value.isascii():
+            try:  # JSON escapes can smuggle lone surrogates, which cannot be stored as UTF-8
+                value.encode("utf-8")
+            except UnicodeEncodeError:
+                raise ParseError(
+                    "bad_encoding",
+                    f"{where} = {_show(value)}: not valid Unicode (a lone surrogate escape)",
+                    offset=offset,
+                    raw=raw,
+                ) from None
         return value
     if isinstance(value, int | float) and not isinstance(value, bool):
         return str(value)

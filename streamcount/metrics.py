@@ -53,6 +53,7 @@ REJECT_REASONS: tuple[str, ...] = (
     "empty",
     "malformed",
     "missing_field",
+    "too_early",
     "too_late",
     "too_long",
     "too_many_items",

@@ -166,11 +166,17 @@ class Rule:
         )
 
 
+#: default floor of the joint count a rule needs, whatever the window's error (a rule resting
+#: on a handful of baskets is noise even when counts are exact; common practice, a >= 10)
+MIN_JOINT_COUNT = 10
+
+
 def joint_count_threshold(snapshot: WindowSnapshot, config: RulesConfig) -> int:
-    """The joint count a rule needs: ``config.min_count`` or ``10 x max_error``, at least 1."""
+    """The joint count a rule needs: ``config.min_count``, or by default
+    ``max(10, 10 x max_error)`` so that no rule rests on noise or on the counting error."""
     if config.min_count is not None:
         return max(1, int(config.min_count))
-    return max(1, 10 * int(snapshot.max_error))
+    return max(MIN_JOINT_COUNT, 10 * int(snapshot.max_error))
 
 
 def rule_p_value(config: RulesConfig, transactions: int, a: int, r: int, q: int) -> float:

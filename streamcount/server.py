@@ -10,7 +10,7 @@ Endpoints
 =========================  ======  ==========================================================
 ``/metrics``               GET     Prometheus text exposition (never needs the token)
 ``/healthz``               GET     200 while the process is alive (never needs the token)
-``/readyz``                GET     200 once serving real data, 503 before (e.g. restoring)
+``/readyz``                GET     200 once serving, 503 before (never needs the token)
 ``/v1/status``             GET     engine statistics, window, configuration summary
 ``/v1/itemsets``           GET     frequent itemsets: ``min_support``, ``size``, ``limit``
 ``/v1/rules``              GET     rules: ``sort`` (lift|confidence|support), ``limit``,
@@ -267,7 +267,7 @@ _GET = ("GET", "HEAD")
 _ROUTES: dict[str, _Route] = {
     "/metrics": _Route(_GET, _metrics, public=True),
     "/healthz": _Route(_GET, _healthz, public=True),
-    "/readyz": _Route(_GET, _readyz),
+    "/readyz": _Route(_GET, _readyz, public=True),  # probes carry no token
     "/v1/status": _Route(_GET, _status),
     "/v1/itemsets": _Route(_GET, _itemsets),
     "/v1/rules": _Route(_GET, _rules),
@@ -311,7 +311,7 @@ def route(
     backend:
         Where the data comes from.
     token:
-        When set, every endpoint except ``/metrics`` and ``/healthz`` needs
+        When set, every endpoint except ``/metrics``, ``/healthz`` and ``/readyz`` needs
         ``Authorization: Bearer <token>``.
     max_request_bytes:
         Bodies longer than this get 413 (the adapter checks ``Content-Length`` before

@@ -101,7 +101,9 @@ class WindowSnapshot:
     levels:
         ``levels[k - 1]`` holds the itemsets of size ``k``.
     item_names:
-        Vocabulary at snapshot time: ``item_names[i]`` is the name of item id ``i``.
+        The vocabulary: ``item_names[i]`` is the name of item id ``i``. It is the engine's
+        append-only list (shared, not copied): names are only ever added after the ids this
+        snapshot uses, so what the snapshot reads never changes.
     first_ts, last_ts:
         Smallest and largest event timestamp in the span (``None`` without timestamps).
     """

@@ -384,6 +384,7 @@ def test_alert_dicts_match_schema():
 
 def test_alert_dicts_validate_with_jsonschema():
     import jsonschema  # test extra: validates records against the published schema
+
     schema = _schema()
     jsonschema.Draft202012Validator.check_schema(schema)
     validator = jsonschema.Draft202012Validator(schema)
