@@ -9,8 +9,12 @@ from __future__ import annotations
 import contextlib
 import os
 import warnings
+from collections.abc import Iterator
+from pathlib import Path
 
+import pytest
 from hypothesis import HealthCheck, settings
+from service_helpers import ServiceRunner, service_runner
 
 # When a property test fails, hypothesis' pytest plugin imports its patch writer, which pulls
 # in libcst -> mypy_extensions and emits a DeprecationWarning; with ``filterwarnings = error``
@@ -35,3 +39,10 @@ settings.register_profile(
     suppress_health_check=[HealthCheck.too_slow],
 )
 settings.load_profile(os.environ.get("STREAMCOUNT_HYPOTHESIS_PROFILE", "dev"))
+
+
+@pytest.fixture
+def services(tmp_path: Path) -> Iterator[ServiceRunner]:
+    """Starts ``streamcount run`` subprocesses in ``tmp_path``; all are killed at teardown."""
+    with service_runner(tmp_path) as runner:
+        yield runner

@@ -384,3 +384,14 @@ def service_runner(
         yield runner
     finally:
         runner.close()
+
+
+def basket_lines(baskets: list[list[str]]) -> bytes:
+    """Basket lines (items separated by spaces), one per basket, as bytes."""
+    return b"".join((" ".join(b) + "\n").encode() for b in baskets)
+
+
+def append_bytes(path: Path, data: bytes) -> None:
+    """Append to a followed file the way a writer would (open, write, close)."""
+    with open(path, "ab") as fh:
+        fh.write(data)

@@ -10,12 +10,11 @@ import hashlib
 import random
 import signal
 import time
-from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
 import pytest
-from service_helpers import ServiceProcess, ServiceRunner, service_runner
+from service_helpers import ServiceProcess, ServiceRunner
 
 from streamcount.checkpoint import list_checkpoints, load_latest_checkpoint
 from streamcount.config import Config
@@ -34,12 +33,6 @@ ENGINE = {
     "max_itemset_size": 3,
     "max_basket_items": 50,
 }
-
-
-@pytest.fixture
-def services(tmp_path: Path) -> Iterator[ServiceRunner]:
-    with service_runner(tmp_path) as runner:
-        yield runner
 
 
 def _feed(n: int, seed: int) -> list[bytes]:

@@ -11,13 +11,12 @@ from __future__ import annotations
 
 import json
 from collections import Counter
-from collections.abc import Iterator
 from itertools import combinations
 from pathlib import Path
 
 import pytest
 from oracle import exact_counts, exact_window_counts
-from service_helpers import ServiceRunner, service_runner, shop_baskets
+from service_helpers import ServiceRunner, append_bytes, basket_lines, shop_baskets
 
 from streamcount.metrics import REJECT_REASONS
 
@@ -47,21 +46,6 @@ RULES = {
     "max_rules": 1000,
     "max_consequent_size": 1,
 }
-
-
-@pytest.fixture
-def services(tmp_path: Path) -> Iterator[ServiceRunner]:
-    with service_runner(tmp_path) as runner:
-        yield runner
-
-
-def _lines(baskets: list[list[str]]) -> bytes:
-    return b"".join((" ".join(b) + "\n").encode() for b in baskets)
-
-
-def _append(path: Path, data: bytes) -> None:
-    with open(path, "ab") as fh:
-        fh.write(data)
 
 
 def _itemset_table(payload: dict) -> dict[tuple[str, ...], tuple[int, int]]:
@@ -134,19 +118,19 @@ def test_followed_file_counts_metrics_itemsets_and_rules(
     }
 
     # phase 1: 100 baskets, then 30 more with bad lines among them, appended a moment later
-    _append(feed, _lines(accepted[:100]))
+    append_bytes(feed, basket_lines(accepted[:100]))
     service.wait_counted(100)
-    _append(
+    append_bytes(
         feed,
-        _lines(accepted[100:110])
+        basket_lines(accepted[100:110])
         + bad["too_many_items"][0]
         + b"\n"
-        + _lines(accepted[110:120])
+        + basket_lines(accepted[110:120])
         + bad["too_long"][0]
         + b"\n"
         + bad["bad_encoding"][0]
         + b"\n"
-        + _lines(accepted[120:130]),
+        + basket_lines(accepted[120:130]),
     )
     status = service.wait_counted(130)
     # the window holds all 130: 3 panes of a 4-pane window (the newest one still open)
@@ -157,8 +141,8 @@ def test_followed_file_counts_metrics_itemsets_and_rules(
     assert _itemset_table(got) == _exact_frequent(exact, 130, 0.05)
 
     # phase 2: up to 300 accepted transactions, which closes pane 5 (seq 251..300)
-    _append(feed, _lines(accepted[130:200]) + bad["bad_encoding"][1] + b"\n")
-    _append(feed, _lines(accepted[200:300]))
+    append_bytes(feed, basket_lines(accepted[130:200]) + bad["bad_encoding"][1] + b"\n")
+    append_bytes(feed, basket_lines(accepted[200:300]))
     status = service.wait_counted(300)
     # count-based window of 200/50 = 4 panes: panes 2..5 = seq 101..300
     window = status["window"]

@@ -10,29 +10,18 @@ from __future__ import annotations
 import json
 import os
 from collections import Counter
-from collections.abc import Iterator
 from pathlib import Path
 
-import pytest
 from oracle import exact_counts
-from service_helpers import ServiceProcess, ServiceRunner, service_runner, shop_baskets
+from service_helpers import (
+    ServiceProcess,
+    ServiceRunner,
+    append_bytes,
+    basket_lines,
+    shop_baskets,
+)
 
 from streamcount.metrics import REJECT_REASONS
-
-
-@pytest.fixture
-def services(tmp_path: Path) -> Iterator[ServiceRunner]:
-    with service_runner(tmp_path) as runner:
-        yield runner
-
-
-def _lines(baskets: list[list[str]]) -> bytes:
-    return b"".join((" ".join(b) + "\n").encode() for b in baskets)
-
-
-def _append(path: Path, data: bytes) -> None:
-    with open(path, "ab") as fh:
-        fh.write(data)
 
 
 def _all_itemsets(service: ServiceProcess) -> dict[tuple[str, ...], int]:
@@ -57,7 +46,7 @@ def test_rotation_and_truncation_count_every_record_once(
         baskets[120:200],
         baskets[200:],
     )
-    feed.write_bytes(_lines(first))
+    feed.write_bytes(basket_lines(first))
     service = services.start(
         {
             "input": {"path": str(feed), "poll_interval_seconds": 0.05},
@@ -76,8 +65,8 @@ def test_rotation_and_truncation_count_every_record_once(
 
     # rotation by rename: the old file gets a last write after the rename, then a new file
     os.rename(feed, tmp_path / "orders.txt.1")
-    _append(tmp_path / "orders.txt.1", _lines(late_old))
-    feed.write_bytes(_lines(second))
+    append_bytes(tmp_path / "orders.txt.1", basket_lines(late_old))
+    feed.write_bytes(basket_lines(second))
     service.wait_counted(200)
     service.wait_log(r"orders\.txt was rotated")
 
@@ -85,7 +74,7 @@ def test_rotation_and_truncation_count_every_record_once(
     with open(feed, "r+b") as fh:
         fh.truncate(0)
     service.wait_log(r"orders\.txt was truncated")
-    _append(feed, _lines(third))
+    append_bytes(feed, basket_lines(third))
     status = service.wait_counted(250)
     assert status["window"]["transactions"] == 250
 
@@ -154,7 +143,7 @@ def test_bad_records_are_set_aside_and_counting_goes_on(
     write(_record(108, 1040, []), "empty")
     for i, basket in enumerate(baskets[30:45]):
         write(_record(200 + i, 1100 + 10 * i, basket), items=basket)  # up to ts 1240
-    _append(feed, bytes(content))
+    append_bytes(feed, bytes(content))
     service.wait_status(
         lambda s: s["transactions_seen"] == 45 and s["window"]["transactions"] == 45,
         "the 45 good records of the first part counted",
@@ -167,7 +156,7 @@ def test_bad_records_are_set_aside_and_counting_goes_on(
     write(_record(301, 1000, ["scone", "plum-jam"]), "too_late")
     for i, basket in enumerate(baskets[45:]):
         write(_record(400 + i, 1301 + i, [*basket, "marker"]), items=[*basket, "marker"])
-    _append(feed, bytes(content[start:]))
+    append_bytes(feed, bytes(content[start:]))
     # (status "rejected" holds every rejection by reason, the decoder's and the engine's)
     want_rejected = dict(Counter(expected.values()))
     service.wait_status(
