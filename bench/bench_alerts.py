@@ -52,7 +52,7 @@ DRIFT_RATE = 0.03
 
 def _config(*, min_support: float | None = None) -> Any:
     """K=3, epsilon 0.001, window 50,000 / panes 5,000; rules and alerts at their defaults."""
-    from streamcount.config import Config, EngineConfig, RulesConfig
+    from streamcount.config.settings import Config, EngineConfig, RulesConfig
 
     rules = RulesConfig() if min_support is None else RulesConfig(min_support=min_support)
     return Config(
@@ -68,13 +68,13 @@ def _config(*, min_support: float | None = None) -> Any:
 
 
 def _chunks(baskets: list[list[str]], size: int = 8192) -> list[Any]:
-    from streamcount.formats import Chunk
+    from streamcount.intake.formats import Chunk
 
     return [Chunk(baskets[i : i + size], None, None) for i in range(0, len(baskets), size)]
 
 
 def _feed(transactions: int, seed: int, drifts: tuple[Any, ...] = ()) -> list[list[str]]:
-    from streamcount.generator import GeneratorParams, SyntheticFeed
+    from streamcount.demo.generator import GeneratorParams, SyntheticFeed
 
     params = GeneratorParams(transactions=transactions, items=1000, patterns=2000, seed=seed)
     return [list(t) for t in SyntheticFeed(params, drifts).transactions()]
@@ -85,7 +85,7 @@ def _feed(transactions: int, seed: int, drifts: tuple[Any, ...] = ()) -> list[li
 
 
 def _overhead_child(case: dict[str, Any]) -> dict[str, Any]:
-    from streamcount.formats import iter_file_chunks
+    from streamcount.intake.formats import iter_file_chunks
     from streamcount.replay import replay_chunks, replay_file
 
     path = str(machine.DATA_DIR / "T10I4D100K.dat.gz")
@@ -167,7 +167,7 @@ def _pick_pair(baskets: list[list[str]]) -> tuple[tuple[str, str], dict[str, Any
 
 
 def _drift_child(case: dict[str, Any]) -> dict[str, Any]:
-    from streamcount.generator import Drift
+    from streamcount.demo.generator import Drift
     from streamcount.replay import replay_chunks
 
     total, seed, start_at = int(case["transactions"]), int(case["seed"]), int(case["start"])

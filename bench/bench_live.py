@@ -44,7 +44,7 @@ TARGET_RATIO = 0.8
 
 
 def _config(path: str) -> Any:
-    from streamcount.config import (
+    from streamcount.config.settings import (
         CheckpointConfig,
         Config,
         EngineConfig,
@@ -74,7 +74,7 @@ def _replay_once(path: str, report: list[str]) -> tuple[float, int]:
 
 
 def _live_once(path: str) -> tuple[float, int]:
-    from streamcount.app import Service
+    from streamcount.service.loop import Service
 
     cfg = _config(path)
     start = time.perf_counter()

@@ -78,7 +78,7 @@ def data_path(dataset: str) -> Path:
 
 
 def _config(k: int, epsilon: float) -> Any:
-    from streamcount.config import Config, EngineConfig, RulesConfig
+    from streamcount.config.settings import Config, EngineConfig, RulesConfig
 
     return Config(
         engine=EngineConfig(
@@ -105,7 +105,7 @@ def _limited(chunks: Iterable[Any], size: int) -> Iterator[Any]:
 
 
 def _replay_once(path: Path, cfg: Any, size: int | None) -> tuple[float, Any]:
-    from streamcount.formats import iter_file_chunks
+    from streamcount.intake.formats import iter_file_chunks
     from streamcount.replay import replay_chunks, replay_file
 
     start = time.perf_counter()
@@ -140,7 +140,7 @@ def _naive_once(path: Path, k: int, size: int | None) -> tuple[float, int, int]:
 
 def _parsed(path: Path, size: int | None) -> list[list[list[str]]]:
     """The file as the replay's own chunks of item lists (not timed)."""
-    from streamcount.formats import iter_file_chunks
+    from streamcount.intake.formats import iter_file_chunks
 
     chunks = iter_file_chunks(str(path), "basket")
     if size is not None:
@@ -149,7 +149,7 @@ def _parsed(path: Path, size: int | None) -> list[list[list[str]]]:
 
 
 def _counting_once(parts: list[list[list[str]]], cfg: Any) -> tuple[float, Any]:
-    from streamcount.engine import Engine
+    from streamcount.engine.engine import Engine
 
     start = time.perf_counter()
     engine = Engine(cfg.engine)
@@ -240,7 +240,7 @@ def run_child(case: dict[str, Any]) -> dict[str, Any]:
 
 def _flat(case: dict[str, Any]) -> dict[str, Any]:
     """A stationary stream: T10I4D100K over and over; statistics every tenth of the way."""
-    from streamcount.engine import Engine
+    from streamcount.engine.engine import Engine
 
     total = int(case["transactions"])
     step = total // 10
@@ -294,7 +294,7 @@ def _flat_slices(source: str, total: int, seed: int) -> Iterator[list[Any]]:
     """Slices of ``PANE_SIZE`` transactions of a stationary stream, ``total`` in all.
 
     ``repeat``: T10I4D100K over and over (its 100,000 lines are a whole number of panes).
-    ``generator``: :class:`~streamcount.generator.SyntheticFeed` T10.I4 with N = 1000 items and
+    ``generator``: :class:`~streamcount.demo.generator.SyntheticFeed` T10.I4 with N = 1000 items and
     2,000 patterns, no drift, seeded by ``--seed``, generated lazily (not timed).
     """
     if source == "repeat":
@@ -308,7 +308,7 @@ def _flat_slices(source: str, total: int, seed: int) -> Iterator[list[Any]]:
                 yield base[lo : lo + take]
                 fed += take
         return
-    from streamcount.generator import GeneratorParams, SyntheticFeed
+    from streamcount.demo.generator import GeneratorParams, SyntheticFeed
 
     feed = SyntheticFeed(GeneratorParams(transactions=total, items=1000, patterns=2000, seed=seed))
     stream = feed.transactions()

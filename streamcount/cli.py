@@ -70,8 +70,8 @@ def _add_setting_options(parser: argparse.ArgumentParser) -> None:
 
 
 def config_from_args(args: argparse.Namespace, extra: dict[str, object] | None = None) -> Any:
-    from streamcount.config import Config
-    from streamcount.configload import apply_overrides, load_config
+    from streamcount.config.settings import Config
+    from streamcount.config.load import apply_overrides, load_config
 
     config = load_config(args.config) if getattr(args, "config", None) else Config()
     overrides: dict[str, object] = {}
@@ -117,19 +117,19 @@ def _cmd_replay(args: argparse.Namespace) -> int:
 
 
 def _cmd_check_config(args: argparse.Namespace) -> int:
-    from streamcount.configload import check_config_main
+    from streamcount.config.load import check_config_main
 
     return check_config_main(args.file)
 
 
 def _cmd_run(args: argparse.Namespace) -> int:
-    from streamcount.app import run_main
+    from streamcount.service.loop import run_main
 
     return run_main(args)
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
-    from streamcount.demo import demo_main
+    from streamcount.demo.run import demo_main
 
     return demo_main(args)
 
@@ -196,7 +196,7 @@ def build_parser() -> argparse.ArgumentParser:
     cc.add_argument("file")
     cc.set_defaults(func=_cmd_check_config)
 
-    from streamcount.generator import register_cli
+    from streamcount.demo.generator import register_cli
 
     register_cli(sub)
     return parser

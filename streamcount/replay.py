@@ -24,8 +24,8 @@ from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from typing import Any, TextIO
 
-from streamcount.config import Config
-from streamcount.engine import Engine
+from streamcount.config.settings import Config
+from streamcount.engine.engine import Engine
 
 __all__ = ["REPORT_PARTS", "ReplayResult", "replay_chunks", "replay_file"]
 
@@ -80,7 +80,7 @@ def replay_chunks(
         raise ValueError(f"--report: unknown part(s) {sorted(unknown)}; choose from {REPORT_PARTS}")
     alerts: list[dict[str, Any]] = []
     if "alerts" in parts:
-        from streamcount.alerts import RuleMonitor
+        from streamcount.alerts.monitor import RuleMonitor
 
         monitor = RuleMonitor(config.rules, config.alerts)
 
@@ -122,7 +122,7 @@ def replay_chunks(
     if "rules" in parts:
         # the rules that hold on the reported window (the alert state machine's confirmation
         # and hysteresis are about changes over time; the report is about this window)
-        from streamcount.rules import derive_rules
+        from streamcount.rules.derive import derive_rules
 
         out["rules"] = [r.as_dict() for r in derive_rules(snap, config.rules)]
     if "alerts" in parts:
@@ -139,7 +139,7 @@ def replay_file(
     progress: TextIO | None = sys.stderr,
 ) -> ReplayResult:
     """Read ``path`` (``.gz`` transparently, ``-`` for stdin) in ``config.input.format``."""
-    from streamcount.formats import iter_file_chunks
+    from streamcount.intake.formats import iter_file_chunks
 
     chunks = iter_file_chunks(
         path, config.input.format, config.input, config.engine.max_basket_items

@@ -1,6 +1,6 @@
 """Alert noise on a stationary feed, and a planted pattern still caught, end to end.
 
-The feed is the Agrawal & Srikant (1994) generator (streamcount.generator), whose
+The feed is the Agrawal & Srikant (1994) generator (streamcount.demo.generator), whose
 transactions are drawn independently from one fixed distribution: after warm-up nothing in it
 changes, so every emerged or faded alert on it is noise. The rate measured on it is recorded
 in bench/RESULTS.md (bench/bench_alerts.py); this test holds the service's default settings
@@ -11,8 +11,8 @@ from __future__ import annotations
 
 from types import SimpleNamespace
 
-from streamcount.config import Config, EngineConfig
-from streamcount.generator import Drift, GeneratorParams, SyntheticFeed
+from streamcount.config.settings import Config, EngineConfig
+from streamcount.demo.generator import Drift, GeneratorParams, SyntheticFeed
 from streamcount.replay import replay_chunks
 
 WINDOW, PANE = 50_000, 5_000

@@ -12,11 +12,11 @@ from itertools import combinations
 import numpy as np
 import pytest
 
-from streamcount.alerts import ALERT_KINDS, Alert, RuleMonitor, alert_id
-from streamcount.config import AlertsConfig, RulesConfig
+from streamcount.alerts.monitor import ALERT_KINDS, Alert, RuleMonitor, alert_id
+from streamcount.config.settings import AlertsConfig, RulesConfig
 from streamcount.errors import CheckpointError, ConfigError
-from streamcount.rules import derive_rules
-from streamcount.snapshot import LevelCounts, WindowSnapshot
+from streamcount.rules.derive import derive_rules
+from streamcount.engine.snapshot import LevelCounts, WindowSnapshot
 
 # An invented tea room's menu (no real products)
 BACKGROUND = [

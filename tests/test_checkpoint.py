@@ -14,7 +14,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
-from streamcount.checkpoint import (
+from streamcount.service.checkpoint import (
     FORMAT_VERSION,
     MAGIC,
     list_checkpoints,
@@ -22,9 +22,9 @@ from streamcount.checkpoint import (
     load_latest_checkpoint,
     save_checkpoint,
 )
-from streamcount.config import Config, EngineConfig
-from streamcount.configload import apply_overrides, fingerprint, fingerprint_settings
-from streamcount.engine import Engine
+from streamcount.config.settings import Config, EngineConfig
+from streamcount.config.load import apply_overrides, fingerprint, fingerprint_settings
+from streamcount.engine.engine import Engine
 from streamcount.errors import CheckpointError
 
 FP = "a" * 64

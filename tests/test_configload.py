@@ -9,8 +9,8 @@ from pathlib import Path
 import pytest
 import yaml
 
-from streamcount.config import Config, EngineConfig
-from streamcount.configload import (
+from streamcount.config.settings import Config, EngineConfig
+from streamcount.config.load import (
     FINGERPRINT_KEYS,
     apply_overrides,
     check_config_main,
@@ -339,7 +339,7 @@ def test_check_config_main(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -
 
 def test_engine_section_fields_are_all_validated() -> None:
     # every engine key has a rule in the table (a key without any rule is easy to forget)
-    from streamcount.configload import _RULES
+    from streamcount.config.load import _RULES
 
     for f in dataclasses.fields(EngineConfig):
         assert f"engine.{f.name}" in _RULES, f.name

@@ -15,9 +15,9 @@ from hypothesis import given
 from hypothesis import strategies as st
 from oracle import exact_counts
 
-from streamcount.config import EngineConfig
-from streamcount.counters import Level, LossySummary, bucket_width
-from streamcount.engine import Engine
+from streamcount.config.settings import EngineConfig
+from streamcount.engine.counters import Level, LossySummary, bucket_width
+from streamcount.engine.engine import Engine
 
 
 def _level_dict(summary: LossySummary, k: int) -> dict[tuple[int, ...], tuple[int, int]]:

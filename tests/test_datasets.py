@@ -21,8 +21,8 @@ import numpy as np
 import pytest
 from oracle import DATA_DIR, count_itemset, exact_counts, read_transactions
 
-from streamcount.config import EngineConfig
-from streamcount.engine import Engine
+from streamcount.config.settings import EngineConfig
+from streamcount.engine.engine import Engine
 
 REFERENCE = DATA_DIR / "reference_counts.json"
 

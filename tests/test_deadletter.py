@@ -7,9 +7,9 @@ import logging
 
 import pytest
 
-from streamcount.deadletter import RAW_CHARS, DeadLetterFile
+from streamcount.intake.deadletter import RAW_CHARS, DeadLetterFile
 from streamcount.errors import ParseError
-from streamcount.formats import BasketDecoder, JsonlDecoder
+from streamcount.intake.formats import BasketDecoder, JsonlDecoder
 
 FIELDS = {"time", "source", "offset", "reason", "detail", "raw", "raw_truncated"}
 
@@ -102,7 +102,7 @@ def test_buffered_until_flush_and_appends_after_reopen(tmp_path):
 def test_unwritable_path_warns_and_keeps_counting_even_as_root(tmp_path, caplog):
     target = tmp_path / "is-a-directory"
     target.mkdir()  # opening a directory for append fails for every user
-    caplog.set_level(logging.WARNING, logger="streamcount.deadletter")
+    caplog.set_level(logging.WARNING, logger="streamcount.intake.deadletter")
     dl = DeadLetterFile(target)
     dl.write(ParseError("malformed", "x", offset=0, raw=b"{"), source="s")
     dl.write(ParseError("malformed", "x", offset=1, raw=b"{"), source="s")

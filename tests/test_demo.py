@@ -11,7 +11,7 @@ import json
 import subprocess
 import sys
 
-from streamcount.demo import BUNDLE, BUNDLE_STOP, PROMOTION, PROMOTION_START
+from streamcount.demo.run import BUNDLE, BUNDLE_STOP, PROMOTION, PROMOTION_START
 
 
 def _run_demo(*extra: str) -> subprocess.CompletedProcess[str]:

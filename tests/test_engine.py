@@ -8,8 +8,8 @@ from dataclasses import dataclass, field
 import pytest
 from oracle import exact_counts, exact_window_counts
 
-from streamcount.config import Config, EngineConfig, RulesConfig
-from streamcount.engine import Engine
+from streamcount.config.settings import Config, EngineConfig, RulesConfig
+from streamcount.engine.engine import Engine
 from streamcount.replay import replay_chunks
 
 

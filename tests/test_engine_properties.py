@@ -15,8 +15,8 @@ from hypothesis import given
 from hypothesis import strategies as st
 from oracle import assert_snapshot_bounds, exact_counts, exact_window_counts
 
-from streamcount.config import EngineConfig
-from streamcount.engine import Engine
+from streamcount.config.settings import EngineConfig
+from streamcount.engine.engine import Engine
 
 EPSILONS = [0.0, 0.5, 0.34, 0.25, 0.2, 0.1, 0.05, 0.01]
 

@@ -16,8 +16,8 @@ from hypothesis import strategies as st
 from hypothesis.stateful import RuleBasedStateMachine, initialize, invariant, rule
 from oracle import assert_snapshot_bounds, exact_window_counts
 
-from streamcount.config import EngineConfig
-from streamcount.engine import Engine
+from streamcount.config.settings import EngineConfig
+from streamcount.engine.engine import Engine
 
 _NAMES = ["tea", "jam", "honey", "bread", "salt"]  # invented shop items
 _basket = st.lists(st.sampled_from(_NAMES), min_size=1, max_size=5)

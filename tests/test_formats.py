@@ -15,9 +15,9 @@ from pathlib import Path
 import pytest
 from oracle import DATA_DIR
 
-from streamcount.config import CsvConfig, InputConfig, JsonlConfig
+from streamcount.config.settings import CsvConfig, InputConfig, JsonlConfig
 from streamcount.errors import ConfigError, InputError, ParseError
-from streamcount.formats import (
+from streamcount.intake.formats import (
     REASONS,
     BasketDecoder,
     CsvOrderDecoder,
@@ -27,7 +27,7 @@ from streamcount.formats import (
     iter_file_chunks,
     make_decoder,
 )
-from streamcount.sources import RawRecord
+from streamcount.intake.sources import RawRecord
 
 DATA = DATA_DIR
 

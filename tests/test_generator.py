@@ -1,4 +1,4 @@
-"""Tests of the synthetic feed generator (streamcount.generator) and the invented catalogue.
+"""Tests of the synthetic feed generator (streamcount.demo.generator) and the invented catalogue.
 
 Reference values come from outside the generator: exact distributions computed with scipy
 (zero-truncated Poisson, Exponential, Normal, Binomial), brute-force recounts of the generated
@@ -23,11 +23,11 @@ import numpy as np
 import pytest
 from scipy import stats
 
-import streamcount.catalog
-import streamcount.generator
-from streamcount.catalog import CATALOG, SHOP_NAME, item_index, item_name
+import streamcount.demo.shop
+import streamcount.demo.generator
+from streamcount.demo.shop import CATALOG, SHOP_NAME, item_index, item_name
 from streamcount.errors import ConfigError
-from streamcount.generator import (
+from streamcount.demo.generator import (
     DEFAULT_DRIFT_RATE,
     DEFAULT_START_TIME,
     Drift,
@@ -172,7 +172,7 @@ def test_corruption_drops_items_geometrically() -> None:
         if len(p) >= 4 and 0.3 < feed.corruption_levels[i] < 0.7
     )
     length, c = len(feed.patterns[k]), float(feed.corruption_levels[k])
-    uniform = streamcount.generator._Uniforms(np.random.default_rng(11))
+    uniform = streamcount.demo.generator._Uniforms(np.random.default_rng(11))
     draws = [feed._corrupted(k, uniform) for _ in range(20_000)]
     assert all(set(d) <= set(feed.patterns[k]) for d in draws)
     # survivors = l - d, with P(d) = c^d (1 - c) for d < l and P(d = l) = c^l
@@ -608,7 +608,7 @@ def test_catalogue_is_an_invented_shop() -> None:
         item_index("item-0005")  # id 5 prints as a catalogue name, not item-0005
 
 
-@pytest.mark.parametrize("module", [streamcount.generator, streamcount.catalog])
+@pytest.mark.parametrize("module", [streamcount.demo.generator, streamcount.demo.shop])
 def test_docstring_examples_run(module) -> None:
     result = doctest.testmod(module, optionflags=doctest.ELLIPSIS | doctest.NORMALIZE_WHITESPACE)
     assert result.attempted > 0 and result.failed == 0

@@ -10,7 +10,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.stats import chi2_contingency, fisher_exact
 
-from streamcount.measures import (
+from streamcount.rules.measures import (
     Interval,
     Measure,
     chi_square,

@@ -6,7 +6,7 @@ import pytest
 from prometheus_client import REGISTRY, CollectorRegistry, generate_latest
 from prometheus_client.parser import text_string_to_metric_families
 
-from streamcount.metrics import (
+from streamcount.service.metrics import (
     ALERT_KINDS,
     METRIC_NAMES,
     REJECT_REASONS,
@@ -14,7 +14,7 @@ from streamcount.metrics import (
     RuleSample,
     ServiceState,
 )
-from streamcount.snapshot import EngineStatistics
+from streamcount.engine.snapshot import EngineStatistics
 
 
 def _stats(**changes: object) -> EngineStatistics:

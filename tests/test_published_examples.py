@@ -12,8 +12,8 @@ from __future__ import annotations
 import pytest
 from oracle import exact_counts
 
-from streamcount.config import EngineConfig
-from streamcount.engine import Engine
+from streamcount.config.settings import EngineConfig
+from streamcount.engine.engine import Engine
 
 # A. Agrawal & Srikant 1994, AprioriTid example (ALGORITHMS.md §7A; data [M], outputs [C])
 AS94 = [["1", "3", "4"], ["2", "3", "5"], ["1", "2", "3", "5"], ["2", "5"]]

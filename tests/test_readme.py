@@ -9,8 +9,8 @@ import subprocess
 import sys
 from pathlib import Path
 
-from streamcount.config import Config
-from streamcount.metrics import METRIC_NAMES
+from streamcount.config.settings import Config
+from streamcount.service.metrics import METRIC_NAMES
 
 ROOT = Path(__file__).resolve().parents[1]
 README = (ROOT / "README.md").read_text(encoding="utf-8")

@@ -10,9 +10,9 @@ from itertools import combinations
 import numpy as np
 import pytest
 
-from streamcount.config import RulesConfig
-from streamcount.rules import Rule, derive_rules, joint_count_threshold, measure_rules
-from streamcount.snapshot import LevelCounts, WindowSnapshot
+from streamcount.config.settings import RulesConfig
+from streamcount.rules.derive import Rule, derive_rules, joint_count_threshold, measure_rules
+from streamcount.engine.snapshot import LevelCounts, WindowSnapshot
 
 
 def make_snapshot(

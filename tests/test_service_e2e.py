@@ -18,7 +18,7 @@ import pytest
 from oracle import exact_counts, exact_window_counts
 from service_helpers import ServiceRunner, append_bytes, basket_lines, shop_baskets
 
-from streamcount.metrics import REJECT_REASONS
+from streamcount.service.metrics import REJECT_REASONS
 
 TOKEN_ENV = "STREAMCOUNT_E2E_TOKEN"
 

@@ -21,7 +21,7 @@ from service_helpers import (
     shop_baskets,
 )
 
-from streamcount.metrics import REJECT_REASONS
+from streamcount.service.metrics import REJECT_REASONS
 
 
 def _all_itemsets(service: ServiceProcess) -> dict[tuple[str, ...], int]:

@@ -10,9 +10,9 @@ from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 
 import pytest
 
-from streamcount.config import SinksConfig, WebhookConfig
+from streamcount.config.settings import SinksConfig, WebhookConfig
 from streamcount.errors import ConfigError, SinkError
-from streamcount.sinks import (
+from streamcount.alerts.sinks import (
     JsonlSink,
     LogSink,
     MemorySink,
@@ -113,7 +113,7 @@ def test_webhook_delivers(receivers):
 def test_webhook_retries_then_recovers(receivers, caplog):
     rx = receivers(plan=[500, 500])
     sink = webhook(rx.url)
-    with caplog.at_level(logging.INFO, logger="streamcount.sinks"):
+    with caplog.at_level(logging.INFO, logger="streamcount.alerts.sinks"):
         sink.emit(record(1))
         sink.close(10)
     assert [b["seq"] for b in rx.bodies] == [1]
@@ -252,7 +252,7 @@ class Broken:
 def test_fanout_isolates_errors(caplog, tmp_path):
     mem = MemorySink()
     fan = SinkFanout([Broken(), mem, JsonlSink(tmp_path / "a.jsonl")])
-    with caplog.at_level(logging.WARNING, logger="streamcount.sinks"):
+    with caplog.at_level(logging.WARNING, logger="streamcount.alerts.sinks"):
         fan.emit_all([record(1), record(2), record(3)])
         fan.close(1)
     assert [r["seq"] for r in mem.records] == [1, 2, 3]

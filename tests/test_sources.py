@@ -12,9 +12,9 @@ import threading
 import pytest
 
 from streamcount.errors import ConfigError, InputError
-from streamcount.sources import FollowedFile, IterableSource, RawRecord, StdinSource
+from streamcount.intake.sources import FollowedFile, IterableSource, RawRecord, StdinSource
 
-LOGGER = "streamcount.sources"
+LOGGER = "streamcount.intake.sources"
 
 
 def append(path, data: bytes) -> None:

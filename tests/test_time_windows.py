@@ -6,8 +6,8 @@ from __future__ import annotations
 
 import pytest
 
-from streamcount.config import EngineConfig
-from streamcount.engine import Engine
+from streamcount.config.settings import EngineConfig
+from streamcount.engine.engine import Engine
 from streamcount.errors import ConfigError
 
 

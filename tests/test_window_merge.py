@@ -9,9 +9,9 @@ from hypothesis import given
 from hypothesis import strategies as st
 from oracle import assert_snapshot_bounds, exact_window_counts
 
-from streamcount.config import EngineConfig
-from streamcount.engine import Engine
-from streamcount.snapshot import WindowSnapshot
+from streamcount.config.settings import EngineConfig
+from streamcount.engine.engine import Engine
+from streamcount.engine.snapshot import WindowSnapshot
 
 
 def _as_dict(snap: WindowSnapshot) -> dict[tuple[str, ...], tuple[int, int]]:

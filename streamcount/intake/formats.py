@@ -44,11 +44,11 @@ from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime
 from typing import IO, TYPE_CHECKING, Any, Protocol
 
-from streamcount.config import MAX_TIMESTAMP, CsvConfig, InputConfig, JsonlConfig
+from streamcount.config.settings import MAX_TIMESTAMP, CsvConfig, InputConfig, JsonlConfig
 from streamcount.errors import ConfigError, InputError, ParseError
 
 if TYPE_CHECKING:
-    from streamcount.sources import RawRecord
+    from streamcount.intake.sources import RawRecord
 
 __all__ = [
     "FORMATS",

@@ -41,7 +41,7 @@ from urllib.parse import urlsplit
 
 import yaml
 
-from streamcount.config import Config
+from streamcount.config.settings import Config
 from streamcount.errors import ConfigError
 
 __all__ = [

@@ -43,7 +43,7 @@ from typing import Any, Protocol
 from urllib.parse import parse_qs, urlsplit
 
 from streamcount import __version__
-from streamcount.configload import parse_listen
+from streamcount.config.load import parse_listen
 from streamcount.errors import InputError
 
 __all__ = [

@@ -1,7 +1,7 @@
 """``streamcount demo``: an invented shop's live order feed, watched by the real service.
 
-The shop is :data:`streamcount.catalog.SHOP_NAME`. Its feed comes from the Agrawal & Srikant
-generator (:mod:`streamcount.generator`) with two planted changes the demo then catches:
+The shop is :data:`streamcount.demo.shop.SHOP_NAME`. Its feed comes from the Agrawal & Srikant
+generator (:mod:`streamcount.demo.generator`) with two planted changes the demo then catches:
 
 * from the start, a bundle (``chai-spice-mix`` with ``stoneware-mug``) sells together; at
   transaction 9,000 the mugs go out of stock and the pattern stops: a ``faded`` alert;
@@ -24,8 +24,8 @@ from collections import Counter
 from collections.abc import Iterator
 from typing import Any, TextIO
 
-from streamcount.catalog import SHOP_NAME
-from streamcount.config import (
+from streamcount.demo.shop import SHOP_NAME
+from streamcount.config.settings import (
     AlertsConfig,
     CheckpointConfig,
     Config,
@@ -35,9 +35,9 @@ from streamcount.config import (
     ServerConfig,
     SinksConfig,
 )
-from streamcount.generator import Drift, GeneratorParams, SyntheticFeed
-from streamcount.sinks import SinkStats
-from streamcount.sources import RawRecord
+from streamcount.demo.generator import Drift, GeneratorParams, SyntheticFeed
+from streamcount.alerts.sinks import SinkStats
+from streamcount.intake.sources import RawRecord
 
 __all__ = ["BUNDLE", "DEMO_TRANSACTIONS", "PROMOTION", "demo_config", "demo_main"]
 
@@ -201,7 +201,7 @@ class ConsoleSink:
 
 def demo_main(args: argparse.Namespace) -> int:
     """Run the demo; returns 0. ``args``: duration, forever, json, listen, seed, rate."""
-    from streamcount.app import Service
+    from streamcount.service.loop import Service
 
     out = sys.stdout
     tty = out.isatty() and not args.json

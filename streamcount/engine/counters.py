@@ -42,7 +42,7 @@ from functools import lru_cache
 
 import numpy as np
 
-from streamcount.keys import combination_table, fits_int64, lookup, pack, unpack
+from streamcount.engine.keys import combination_table, fits_int64, lookup, pack, unpack
 
 __all__ = ["Level", "LossySummary", "bucket_width"]
 

@@ -34,7 +34,7 @@ from prometheus_client import CollectorRegistry, Counter, Histogram
 from prometheus_client.core import GaugeMetricFamily, Metric
 from prometheus_client.registry import Collector
 
-from streamcount.snapshot import EngineStatistics
+from streamcount.engine.snapshot import EngineStatistics
 
 __all__ = [
     "ALERT_KINDS",

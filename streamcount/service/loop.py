@@ -30,25 +30,25 @@ from typing import Any
 from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, generate_latest
 
 from streamcount import __version__
-from streamcount.alerts import RuleMonitor
-from streamcount.checkpoint import load_latest_checkpoint, save_checkpoint
-from streamcount.config import Config
-from streamcount.configload import describe, fingerprint, fingerprint_settings
-from streamcount.deadletter import DeadLetterFile
-from streamcount.engine import Engine
+from streamcount.alerts.monitor import RuleMonitor
+from streamcount.service.checkpoint import load_latest_checkpoint, save_checkpoint
+from streamcount.config.settings import Config
+from streamcount.config.load import describe, fingerprint, fingerprint_settings
+from streamcount.intake.deadletter import DeadLetterFile
+from streamcount.engine.engine import Engine
 from streamcount.errors import CheckpointError, InputError, ParseError
-from streamcount.formats import (
+from streamcount.intake.formats import (
     BasketDecoder,
     JsonlDecoder,
     decode_basket_records,
     decode_raw,
     make_decoder,
 )
-from streamcount.metrics import Metrics, RuleSample, ServiceState
-from streamcount.rules import Rule
-from streamcount.sinks import Sink, SinkFanout, build_sinks
-from streamcount.snapshot import EngineStatistics, WindowSnapshot
-from streamcount.sources import FollowedFile, IterableSource, RawRecord, StdinSource
+from streamcount.service.metrics import Metrics, RuleSample, ServiceState
+from streamcount.rules.derive import Rule
+from streamcount.alerts.sinks import Sink, SinkFanout, build_sinks
+from streamcount.engine.snapshot import EngineStatistics, WindowSnapshot
+from streamcount.intake.sources import FollowedFile, IterableSource, RawRecord, StdinSource
 
 __all__ = ["Service", "run_main"]
 
@@ -209,7 +209,7 @@ class Service:
         listen = self.config.server.listen
         if not listen:
             return None
-        from streamcount.server import start_server
+        from streamcount.service.server import start_server
 
         token = None
         if self.config.server.token_env:

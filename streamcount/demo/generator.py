@@ -91,7 +91,7 @@ from typing import TextIO
 
 import numpy as np
 
-from streamcount.catalog import item_name
+from streamcount.demo.shop import item_name
 from streamcount.errors import ConfigError, StreamcountError
 
 __all__ = [
@@ -350,7 +350,7 @@ class SyntheticFeed:
     drifts:
         Planted patterns, applied in order after the base transaction is built.
     names:
-        Maps an item id to its output name; :func:`streamcount.catalog.item_name` (the
+        Maps an item id to its output name; :func:`streamcount.demo.shop.item_name` (the
         invented shop) by default, ``str`` for decimal ids (``--numeric``). Names must be
         distinct and free of whitespace, ',' and '@'.
 
@@ -701,5 +701,5 @@ def _main(argv: list[str] | None = None) -> int:
     return int(args.func(args))
 
 
-if __name__ == "__main__":  # ``python -m streamcount.generator generate ...``
+if __name__ == "__main__":  # ``python -m streamcount.demo.generator generate ...``
     sys.exit(_main())

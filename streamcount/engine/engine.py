@@ -29,12 +29,12 @@ from itertools import pairwise
 import numpy as np
 from sortedcontainers import SortedDict
 
-from streamcount.config import MAX_TIMESTAMP, EngineConfig
-from streamcount.configload import config_from_mapping
-from streamcount.counters import bucket_width
-from streamcount.snapshot import EngineStatistics, WindowSnapshot
-from streamcount.vocab import ItemVocabulary
-from streamcount.window import Pane, PaneSum, combine_panes, merge_sums, subtract_panes, sum_panes
+from streamcount.config.settings import MAX_TIMESTAMP, EngineConfig
+from streamcount.config.load import config_from_mapping
+from streamcount.engine.counters import bucket_width
+from streamcount.engine.snapshot import EngineStatistics, WindowSnapshot
+from streamcount.engine.vocab import ItemVocabulary
+from streamcount.engine.window import Pane, PaneSum, combine_panes, merge_sums, subtract_panes, sum_panes
 
 __all__ = ["STATE_VERSION", "AddResult", "Engine", "Rejection"]
 
@@ -81,7 +81,7 @@ class Engine:
         Examples
         --------
         >>> from streamcount.config import EngineConfig
-    from streamcount.configload import config_from_mapping
+    from streamcount.config.load import config_from_mapping
         >>> eng = Engine(EngineConfig(epsilon=0.0, window_size=4, pane_size=2, max_itemset_size=2))
         >>> _ = eng.add([["tea", "honey"], ["tea"], ["tea", "honey"], ["jam"], ["tea", "jam"]])
         >>> eng.flush()

@@ -25,9 +25,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from streamcount.counters import LossySummary
-from streamcount.keys import lookup, pack, unique_with_sum
-from streamcount.snapshot import LevelCounts, WindowSnapshot
+from streamcount.engine.counters import LossySummary
+from streamcount.engine.keys import lookup, pack, unique_with_sum
+from streamcount.engine.snapshot import LevelCounts, WindowSnapshot
 
 __all__ = ["Pane", "PaneSum", "combine_panes", "merge_sums", "subtract_panes", "sum_panes"]
 

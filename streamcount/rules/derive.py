@@ -35,9 +35,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from streamcount.config import RulesConfig
+from streamcount.config.settings import RulesConfig
 from streamcount.errors import ConfigError
-from streamcount.measures import (
+from streamcount.rules.measures import (
     MEASURE_NAMES,
     CountBounds,
     Measure,
@@ -46,7 +46,7 @@ from streamcount.measures import (
     fisher_greater,
     rule_measures,
 )
-from streamcount.snapshot import WindowSnapshot
+from streamcount.engine.snapshot import WindowSnapshot
 
 __all__ = [
     "THRESHOLD_RTOL",

@@ -84,18 +84,18 @@ from typing import Protocol
 
 import numpy as np
 
-from streamcount.config import AlertsConfig, RulesConfig
+from streamcount.config.settings import AlertsConfig, RulesConfig
 from streamcount.errors import CheckpointError, ConfigError
-from streamcount.keys import pack
-from streamcount.measures import CountBounds, Measure, fisher_greater
-from streamcount.rules import (
+from streamcount.engine.keys import pack
+from streamcount.rules.measures import CountBounds, Measure, fisher_greater
+from streamcount.rules.derive import (
     Rule,
     at_least,
     derive_rules,
     joint_count_threshold,
     measure_rules,
 )
-from streamcount.snapshot import WindowSnapshot
+from streamcount.engine.snapshot import WindowSnapshot
 
 __all__ = ["ALERT_KINDS", "Alert", "RuleMonitor", "Surge", "alert_id"]
 

@@ -36,7 +36,7 @@ from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from typing import IO, Any, Protocol, runtime_checkable
 
-from streamcount.config import SinksConfig, WebhookConfig
+from streamcount.config.settings import SinksConfig, WebhookConfig
 from streamcount.errors import ConfigError, SinkError
 
 __all__ = [

@@ -19,7 +19,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from streamcount.keys import lookup, pack
+from streamcount.engine.keys import lookup, pack
 
 __all__ = ["EngineStatistics", "FrequentItemset", "LevelCounts", "WindowSnapshot"]
 

@@ -1,0 +1,5 @@
+"""streamcount.intake"""
+
+from __future__ import annotations
+
+__all__: list[str] = []
