@@ -20,9 +20,10 @@ replay (a file as fast as possible), generator + catalog + demo (synthetic feeds
 
 from __future__ import annotations
 
-from streamcount.config.settings import Config
 from streamcount.config.load import load_config
+from streamcount.config.settings import Config
 from streamcount.engine.engine import Engine
+from streamcount.engine.snapshot import EngineStatistics, FrequentItemset, WindowSnapshot
 from streamcount.errors import (
     CheckpointError,
     ConfigError,
@@ -31,7 +32,6 @@ from streamcount.errors import (
     SinkError,
     StreamcountError,
 )
-from streamcount.engine.snapshot import EngineStatistics, FrequentItemset, WindowSnapshot
 
 __version__ = "0.1.0"
 

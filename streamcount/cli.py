@@ -70,8 +70,8 @@ def _add_setting_options(parser: argparse.ArgumentParser) -> None:
 
 
 def config_from_args(args: argparse.Namespace, extra: dict[str, object] | None = None) -> Any:
-    from streamcount.config.settings import Config
     from streamcount.config.load import apply_overrides, load_config
+    from streamcount.config.settings import Config
 
     config = load_config(args.config) if getattr(args, "config", None) else Config()
     overrides: dict[str, object] = {}

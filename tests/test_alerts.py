@@ -14,9 +14,9 @@ import pytest
 
 from streamcount.alerts.monitor import ALERT_KINDS, Alert, RuleMonitor, alert_id
 from streamcount.config.settings import AlertsConfig, RulesConfig
+from streamcount.engine.snapshot import LevelCounts, WindowSnapshot
 from streamcount.errors import CheckpointError, ConfigError
 from streamcount.rules.derive import derive_rules
-from streamcount.engine.snapshot import LevelCounts, WindowSnapshot
 
 # An invented tea room's menu (no real products)
 BACKGROUND = [

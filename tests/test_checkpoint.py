@@ -14,6 +14,10 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
+from streamcount.config.load import apply_overrides, fingerprint, fingerprint_settings
+from streamcount.config.settings import Config, EngineConfig
+from streamcount.engine.engine import Engine
+from streamcount.errors import CheckpointError
 from streamcount.service.checkpoint import (
     FORMAT_VERSION,
     MAGIC,
@@ -22,10 +26,6 @@ from streamcount.service.checkpoint import (
     load_latest_checkpoint,
     save_checkpoint,
 )
-from streamcount.config.settings import Config, EngineConfig
-from streamcount.config.load import apply_overrides, fingerprint, fingerprint_settings
-from streamcount.engine.engine import Engine
-from streamcount.errors import CheckpointError
 
 FP = "a" * 64
 

@@ -9,7 +9,6 @@ from pathlib import Path
 import pytest
 import yaml
 
-from streamcount.config.settings import Config, EngineConfig
 from streamcount.config.load import (
     FINGERPRINT_KEYS,
     apply_overrides,
@@ -22,6 +21,7 @@ from streamcount.config.load import (
     load_config,
     parse_listen,
 )
+from streamcount.config.settings import Config, EngineConfig
 from streamcount.errors import ConfigError
 
 CONFIG_DIR = Path(__file__).resolve().parent.parent / "config"

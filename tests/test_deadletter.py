@@ -7,8 +7,8 @@ import logging
 
 import pytest
 
-from streamcount.intake.deadletter import RAW_CHARS, DeadLetterFile
 from streamcount.errors import ParseError
+from streamcount.intake.deadletter import RAW_CHARS, DeadLetterFile
 from streamcount.intake.formats import BasketDecoder, JsonlDecoder
 
 FIELDS = {"time", "source", "offset", "reason", "detail", "raw", "raw_truncated"}

@@ -23,10 +23,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-import streamcount.demo.shop
 import streamcount.demo.generator
-from streamcount.demo.shop import CATALOG, SHOP_NAME, item_index, item_name
-from streamcount.errors import ConfigError
+import streamcount.demo.shop
 from streamcount.demo.generator import (
     DEFAULT_DRIFT_RATE,
     DEFAULT_START_TIME,
@@ -42,6 +40,8 @@ from streamcount.demo.generator import (
     write_csv,
     write_jsonl,
 )
+from streamcount.demo.shop import CATALOG, SHOP_NAME, item_index, item_name
+from streamcount.errors import ConfigError
 
 # Paper defaults, from memory (Agrawal & Srikant 1994, section 2.4.3).
 PAPER_T, PAPER_I, PAPER_L, PAPER_N = 10.0, 4.0, 2000, 1000

@@ -6,6 +6,7 @@ import pytest
 from prometheus_client import REGISTRY, CollectorRegistry, generate_latest
 from prometheus_client.parser import text_string_to_metric_families
 
+from streamcount.engine.snapshot import EngineStatistics
 from streamcount.service.metrics import (
     ALERT_KINDS,
     METRIC_NAMES,
@@ -14,7 +15,6 @@ from streamcount.service.metrics import (
     RuleSample,
     ServiceState,
 )
-from streamcount.engine.snapshot import EngineStatistics
 
 
 def _stats(**changes: object) -> EngineStatistics:

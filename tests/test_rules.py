@@ -11,8 +11,8 @@ import numpy as np
 import pytest
 
 from streamcount.config.settings import RulesConfig
-from streamcount.rules.derive import Rule, derive_rules, joint_count_threshold, measure_rules
 from streamcount.engine.snapshot import LevelCounts, WindowSnapshot
+from streamcount.rules.derive import Rule, derive_rules, joint_count_threshold, measure_rules
 
 
 def make_snapshot(

@@ -12,10 +12,10 @@ import pytest
 from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, generate_latest
 from prometheus_client.parser import text_string_to_metric_families
 
+from streamcount.engine.snapshot import EngineStatistics
 from streamcount.errors import InputError
 from streamcount.service.metrics import Metrics
 from streamcount.service.server import MAX_LIMIT, Response, route, start_server
-from streamcount.engine.snapshot import EngineStatistics
 
 TOKEN = "t0k3n-for-tests"
 

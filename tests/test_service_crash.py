@@ -16,12 +16,12 @@ from typing import Any
 import pytest
 from service_helpers import ServiceProcess, ServiceRunner
 
-from streamcount.service.checkpoint import list_checkpoints, load_latest_checkpoint
-from streamcount.config.settings import Config
 from streamcount.config.load import config_from_mapping, fingerprint, fingerprint_settings
+from streamcount.config.settings import Config
 from streamcount.engine.engine import Engine
-from streamcount.replay import replay_file
 from streamcount.engine.snapshot import WindowSnapshot
+from streamcount.replay import replay_file
+from streamcount.service.checkpoint import list_checkpoints, load_latest_checkpoint
 
 #: Lossy Counting with real deletions (bucket width 100), a window of 4 panes of 5,000 that
 #: slides twice over the 40,000 lines, counted in batches of 1,000

@@ -10,8 +10,6 @@ from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 
 import pytest
 
-from streamcount.config.settings import SinksConfig, WebhookConfig
-from streamcount.errors import ConfigError, SinkError
 from streamcount.alerts.sinks import (
     JsonlSink,
     LogSink,
@@ -22,6 +20,8 @@ from streamcount.alerts.sinks import (
     WebhookSink,
     build_sinks,
 )
+from streamcount.config.settings import SinksConfig, WebhookConfig
+from streamcount.errors import ConfigError, SinkError
 
 
 def record(i: int) -> dict:

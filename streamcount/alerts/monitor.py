@@ -85,9 +85,9 @@ from typing import Protocol
 import numpy as np
 
 from streamcount.config.settings import AlertsConfig, RulesConfig
-from streamcount.errors import CheckpointError, ConfigError
 from streamcount.engine.keys import pack
-from streamcount.rules.measures import CountBounds, Measure, fisher_greater
+from streamcount.engine.snapshot import WindowSnapshot
+from streamcount.errors import CheckpointError, ConfigError
 from streamcount.rules.derive import (
     Rule,
     at_least,
@@ -95,7 +95,7 @@ from streamcount.rules.derive import (
     joint_count_threshold,
     measure_rules,
 )
-from streamcount.engine.snapshot import WindowSnapshot
+from streamcount.rules.measures import CountBounds, Measure, fisher_greater
 
 __all__ = ["ALERT_KINDS", "Alert", "RuleMonitor", "Surge", "alert_id"]
 

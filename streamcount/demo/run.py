@@ -24,7 +24,7 @@ from collections import Counter
 from collections.abc import Iterator
 from typing import Any, TextIO
 
-from streamcount.demo.shop import SHOP_NAME
+from streamcount.alerts.sinks import SinkStats
 from streamcount.config.settings import (
     AlertsConfig,
     CheckpointConfig,
@@ -36,7 +36,7 @@ from streamcount.config.settings import (
     SinksConfig,
 )
 from streamcount.demo.generator import Drift, GeneratorParams, SyntheticFeed
-from streamcount.alerts.sinks import SinkStats
+from streamcount.demo.shop import SHOP_NAME
 from streamcount.intake.sources import RawRecord
 
 __all__ = ["BUNDLE", "DEMO_TRANSACTIONS", "PROMOTION", "demo_config", "demo_main"]

@@ -29,12 +29,19 @@ from itertools import pairwise
 import numpy as np
 from sortedcontainers import SortedDict
 
-from streamcount.config.settings import MAX_TIMESTAMP, EngineConfig
 from streamcount.config.load import config_from_mapping
+from streamcount.config.settings import MAX_TIMESTAMP, EngineConfig
 from streamcount.engine.counters import bucket_width
 from streamcount.engine.snapshot import EngineStatistics, WindowSnapshot
 from streamcount.engine.vocab import ItemVocabulary
-from streamcount.engine.window import Pane, PaneSum, combine_panes, merge_sums, subtract_panes, sum_panes
+from streamcount.engine.window import (
+    Pane,
+    PaneSum,
+    combine_panes,
+    merge_sums,
+    subtract_panes,
+    sum_panes,
+)
 
 __all__ = ["STATE_VERSION", "AddResult", "Engine", "Rejection"]
 

@@ -36,6 +36,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from streamcount.config.settings import RulesConfig
+from streamcount.engine.snapshot import WindowSnapshot
 from streamcount.errors import ConfigError
 from streamcount.rules.measures import (
     MEASURE_NAMES,
@@ -46,7 +47,6 @@ from streamcount.rules.measures import (
     fisher_greater,
     rule_measures,
 )
-from streamcount.engine.snapshot import WindowSnapshot
 
 __all__ = [
     "THRESHOLD_RTOL",

@@ -31,12 +31,13 @@ from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, generate_l
 
 from streamcount import __version__
 from streamcount.alerts.monitor import RuleMonitor
-from streamcount.service.checkpoint import load_latest_checkpoint, save_checkpoint
-from streamcount.config.settings import Config
+from streamcount.alerts.sinks import Sink, SinkFanout, build_sinks
 from streamcount.config.load import describe, fingerprint, fingerprint_settings
-from streamcount.intake.deadletter import DeadLetterFile
+from streamcount.config.settings import Config
 from streamcount.engine.engine import Engine
+from streamcount.engine.snapshot import EngineStatistics, WindowSnapshot
 from streamcount.errors import CheckpointError, InputError, ParseError
+from streamcount.intake.deadletter import DeadLetterFile
 from streamcount.intake.formats import (
     BasketDecoder,
     JsonlDecoder,
@@ -44,11 +45,10 @@ from streamcount.intake.formats import (
     decode_raw,
     make_decoder,
 )
-from streamcount.service.metrics import Metrics, RuleSample, ServiceState
-from streamcount.rules.derive import Rule
-from streamcount.alerts.sinks import Sink, SinkFanout, build_sinks
-from streamcount.engine.snapshot import EngineStatistics, WindowSnapshot
 from streamcount.intake.sources import FollowedFile, IterableSource, RawRecord, StdinSource
+from streamcount.rules.derive import Rule
+from streamcount.service.checkpoint import load_latest_checkpoint, save_checkpoint
+from streamcount.service.metrics import Metrics, RuleSample, ServiceState
 
 __all__ = ["Service", "run_main"]
 
