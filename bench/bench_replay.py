@@ -201,8 +201,8 @@ def run_child(case: dict[str, Any]) -> dict[str, Any]:
             transactions=n,
             seconds=times,
             tps=[n / t for t in times],
-            tracked_entries=list(stats.tracked_entries),
-            bytes_held=stats.bytes_held,
+            tracked_itemsets=list(stats.tracked_itemsets),
+            held_bytes=stats.held_bytes,
             itemsets_reported=len(result.report["itemsets"]),
             window=result.report["window"],
         )
@@ -220,7 +220,7 @@ def run_child(case: dict[str, Any]) -> dict[str, Any]:
             transactions=n,
             seconds=times,
             tps=[n / t for t in times],
-            tracked_entries=list(engine.statistics().tracked_entries),
+            tracked_itemsets=list(engine.statistics().tracked_itemsets),
         )
     elif kind == "naive_counting":
         assert path is not None
@@ -259,17 +259,17 @@ def _flat(case: dict[str, Any]) -> dict[str, Any]:
         fed += len(part)
         stats = engine.statistics()
         if fed >= FLAT_FROM:  # every pane close: catches what the tenths (one period) miss
-            tracked_all.append(sum(stats.tracked_entries))
-            held_all.append(stats.bytes_held)
+            tracked_all.append(sum(stats.tracked_itemsets))
+            held_all.append(stats.held_bytes)
         if fed % step == 0:
             points.append(
                 {
                     "transactions": fed,
-                    "tracked_entries": list(stats.tracked_entries),
-                    "tracked_total": sum(stats.tracked_entries),
-                    "bytes_held": stats.bytes_held,
+                    "tracked_itemsets": list(stats.tracked_itemsets),
+                    "tracked_total": sum(stats.tracked_itemsets),
+                    "held_bytes": stats.held_bytes,
                     "rss_mb": round(machine.current_rss_mb(), 1),
-                    "panes": stats.panes,
+                    "live_panes": stats.live_panes,
                 }
             )
     every_close = {}
@@ -441,14 +441,14 @@ def run_parent(args: argparse.Namespace) -> int:
                     f"{dataset:<11} K={k} eps={eps:<6} {_fmt_tps(tps)} tx/s  "
                     f"x{speedup:.1f} naive{'*' if note else ''}  "
                     f"peak {res['peak_rss_mb']:,.0f} MB  "
-                    f"tracked {_fmt_tracked(res['tracked_entries'])}"
+                    f"tracked {_fmt_tracked(res['tracked_itemsets'])}"
                     f"  | >= {TARGET_TPS[k]:,}/s {v['tps']}, >= 8x {v['speedup']}, "
                     f"<= 200 MB {v['rss']}"
                 )
                 md.append(
                     f"| {dataset} | {k} | {eps} | {_fmt_tps(tps)} | "
                     f"{naive_tps['median']:,.0f}{' *' if note else ''} | {speedup:.1f}x | "
-                    f"{res['peak_rss_mb']:,.0f} | {_fmt_tracked(res['tracked_entries'])} | "
+                    f"{res['peak_rss_mb']:,.0f} | {_fmt_tracked(res['tracked_itemsets'])} | "
                     f"{v['tps']} (>= {TARGET_TPS[k]:,}) | {v['speedup']} | {v['rss']} |"
                 )
     if any(n.get("note") for n in raw["naive"]):
@@ -524,7 +524,7 @@ def run_parent(args: argparse.Namespace) -> int:
     # the target compares 100k..1M: from two windows on, the window is full and stationary
     steady = [p for p in pts if p["transactions"] >= FLAT_FROM] or pts
     tracked = [p["tracked_total"] for p in steady]
-    held = [p["bytes_held"] for p in steady]
+    held = [p["held_bytes"] for p in steady]
     t_ratio = max(tracked) / max(min(tracked), 1)
     b_ratio = max(held) / max(min(held), 1)
     ec = flat["every_close"]
@@ -546,14 +546,14 @@ def run_parent(args: argparse.Namespace) -> int:
     ]
     for p in pts:
         line = (
-            f"{p['transactions']:>9,}  tracked {_fmt_tracked(p['tracked_entries']):<34} "
-            f"total {p['tracked_total']:>8,}  bytes {p['bytes_held']:>11,}  "
+            f"{p['transactions']:>9,}  tracked {_fmt_tracked(p['tracked_itemsets']):<34} "
+            f"total {p['tracked_total']:>8,}  bytes {p['held_bytes']:>11,}  "
             f"RSS {p['rss_mb']:,.0f} MB"
         )
         print(line)
         md.append(
-            f"| {p['transactions']:,} | {_fmt_tracked(p['tracked_entries'])} | "
-            f"{p['tracked_total']:,} | {p['bytes_held']:,} | {p['rss_mb']:,.0f} |"
+            f"| {p['transactions']:,} | {_fmt_tracked(p['tracked_itemsets'])} | "
+            f"{p['tracked_total']:,} | {p['held_bytes']:,} | {p['rss_mb']:,.0f} |"
         )
     summary = (
         f"from {steady[0]['transactions']:,} to {steady[-1]['transactions']:,} transactions "

@@ -111,7 +111,7 @@ def test_statistics_describe_the_window() -> None:
     assert stats.buffered_transactions == 2
     assert stats.window_transactions == 12  # panes 9..16 and 17..20
     assert stats.window_max_error == 2 + 1  # ceil(8/4) + ceil(4/4)
-    assert stats.vocabulary_size == 6
+    assert stats.vocabulary_items == 6
     snap = engine.snapshot()
     assert (snap.first_seq, snap.last_seq, snap.max_error) == (9, 20, 3)
 

@@ -32,7 +32,7 @@ def _baskets(alphabet: int, max_len: int = 5, max_size: int = 80) -> st.SearchSt
 
 def _assert_panes_downward_closed(engine: Engine) -> None:
     """Each pane summary is downward closed (own check from the rows, not check_invariants)."""
-    for pane in engine.panes.values():
+    for pane in engine.window.panes.values():
         levels = pane.summary.levels
         for k in range(2, len(levels) + 1):
             smaller = {tuple(r) for r in levels[k - 2].items.tolist()}

@@ -115,8 +115,9 @@ class EngineMachine(RuleBasedStateMachine):
             "rejected",
             "window_transactions",
             "window_max_error",
-            "tracked_entries",
-            "panes",
+            "tracked_itemsets",
+            "live_panes",
+            "held_bytes",
             "buffered_transactions",
         ):
             assert getattr(after, name) == getattr(stats, name), name

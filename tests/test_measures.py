@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+from fractions import Fraction
 
 import numpy as np
 import pytest
@@ -145,7 +146,8 @@ def exact_values(n, a, r, q):
         "support": a / n,
         "confidence": conf,
         "lift": n * a / (r * q),
-        "leverage": a / n - (r / n) * (q / n),
+        # exact rational arithmetic: the float form a/n - (r/n)(q/n) cancels badly near 1
+        "leverage": float(Fraction(a, n) - Fraction(r * q, n * n)),
         "conviction": math.inf if a == r else (1 - q / n) / (1 - conf),
     }
 

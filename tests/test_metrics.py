@@ -23,12 +23,13 @@ def _stats(**changes: object) -> EngineStatistics:
         "rejected": {"too_many_items": 2},
         "window_transactions": 1000,
         "window_max_error": 4,
-        "tracked_entries": (40, 25, 7),
-        "bytes_held": 65536,
-        "panes": 5,
+        "tracked_itemsets": (40, 25, 7),
+        "held_bytes": 65536,
+        "live_panes": 5,
+        "window_panes": 10,
         "buffered_transactions": 200,
         "max_event_ts": 1_700_000_000.0,
-        "vocabulary_size": 33,
+        "vocabulary_items": 33,
     }
     values.update(changes)
     return EngineStatistics(**values)  # type: ignore[arg-type]
@@ -125,13 +126,13 @@ def test_state_gauges_read_at_scrape_time(registry: CollectorRegistry) -> None:
     assert get("streamcount_tracked_itemsets", {"size": "1"}) == 40
     assert get("streamcount_tracked_itemsets", {"size": "3"}) == 7
     assert get("streamcount_summary_bytes") == 65536
-    assert get("streamcount_window_panes") == 5
+    assert get("streamcount_live_panes") == 5
     assert get("streamcount_buffered_transactions") == 200
     assert get("streamcount_vocabulary_items") == 33
     assert get("streamcount_active_rules") == 4
     assert get("streamcount_event_lag_seconds") == 2.5
     # a new snapshot is picked up by the next scrape without telling the metrics object
-    latest["stats"] = _stats(window_transactions=2000, tracked_entries=(50, 30, 9))
+    latest["stats"] = _stats(window_transactions=2000, tracked_itemsets=(50, 30, 9))
     assert get("streamcount_window_transactions") == 2000
     assert get("streamcount_tracked_itemsets", {"size": "2"}) == 30
 
@@ -189,7 +190,7 @@ def test_exposition_parses_and_covers_metric_names(registry: CollectorRegistry) 
         assert fam.documentation  # type: ignore[attr-defined]
         assert fam.name.startswith("streamcount_")  # type: ignore[attr-defined]
     assert families["streamcount_batch_seconds"].type == "histogram"  # type: ignore[attr-defined]
-    assert families["streamcount_window_panes"].type == "gauge"  # type: ignore[attr-defined]
+    assert families["streamcount_live_panes"].type == "gauge"  # type: ignore[attr-defined]
 
 
 def test_rule_from_rules_module_point_values() -> None:

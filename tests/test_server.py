@@ -34,7 +34,7 @@ class FakeBackend:
 
     @staticmethod
     def _stats() -> EngineStatistics:
-        return EngineStatistics(42, {}, 40, 1, (12, 5), 4096, 3, 2, None, 12)
+        return EngineStatistics(42, {}, 40, 1, (12, 5), 4096, 3, 4, 2, None, 12)
 
     def metrics_payload(self) -> tuple[bytes, str]:
         return generate_latest(self.registry), CONTENT_TYPE_LATEST

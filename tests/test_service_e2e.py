@@ -180,7 +180,7 @@ def test_followed_file_counts_metrics_itemsets_and_rules(
     assert metrics[("streamcount_transactions_total", ())] == 300
     assert metrics[("streamcount_window_transactions", ())] == 200
     assert metrics[("streamcount_window_max_error", ())] == 0
-    assert metrics[("streamcount_window_panes", ())] == 4
+    assert metrics[("streamcount_live_panes", ())] == 4
     assert metrics[("streamcount_buffered_transactions", ())] == 0
     assert metrics[("streamcount_vocabulary_items", ())] == len({i for b in accepted for i in b})
     for size in (1, 2, 3):

@@ -24,24 +24,16 @@ import math
 from collections import Counter
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
-from itertools import pairwise
 
 import numpy as np
-from sortedcontainers import SortedDict
 
 from streamcount.config.load import config_from_mapping
 from streamcount.config.settings import MAX_TIMESTAMP, EngineConfig
 from streamcount.engine.counters import bucket_width
+from streamcount.engine.pane import Pane
 from streamcount.engine.snapshot import EngineStatistics, WindowSnapshot
 from streamcount.engine.vocab import ItemVocabulary
-from streamcount.engine.window import (
-    Pane,
-    PaneSum,
-    combine_panes,
-    merge_sums,
-    subtract_panes,
-    sum_panes,
-)
+from streamcount.engine.window import SlidingWindow
 
 __all__ = ["STATE_VERSION", "AddResult", "Engine", "Rejection"]
 
@@ -128,19 +120,16 @@ class Engine:
         w = self.width
         self.batch_size = max(w, (int(config.batch_size) // w) * w) if w else int(config.batch_size)
         self.vocabulary = ItemVocabulary()
-        #: live panes by index, kept in index order
-        self.panes: SortedDict = SortedDict()
+        self.window = SlidingWindow(
+            self.window_panes,
+            epsilon=self.epsilon,
+            max_itemset_size=self.max_itemset_size,
+            pane_size=self.pane_size,
+        )
         self.next_seq = 1
         self.transactions_seen = 0
         self.rejected: Counter[str] = Counter()
         self.max_event_ts: float | None = None
-        #: highest pane index that has counted transactions (window end)
-        self.newest_index = -1
-        #: lowest pane index ever opened (for the warm-up test of time-based windows)
-        self.first_index: int | None = None
-        self.closed_through = -1  # every pane index <= this is closed
-        #: the window summed at the last split_snapshot(), kept to subtract expired panes from
-        self._window_sum: PaneSum | None = None
 
     # -- intake -------------------------------------------------------------------------------
 
@@ -211,8 +200,8 @@ class Engine:
                 np.floor((running - self.config.allowed_lateness_seconds) / self.pane_seconds) - 1
             )
             late = ok & (
-                (pane_idx <= np.maximum(closed_limit, self.closed_through))
-                | (pane_idx <= self.newest_index - self.window_panes)
+                (pane_idx <= np.maximum(closed_limit, self.window.closed_through))
+                | (pane_idx <= self.window.newest_index - self.window_panes)
             )
             for i in np.flatnonzero(late).tolist():
                 rejections.append(
@@ -300,10 +289,10 @@ class Engine:
             if not math.isfinite(limit):
                 continue
             limit = int(limit)
-            for idx in [i for i, p in self.panes.items() if not p.closed and i <= limit]:
-                self._close(self.panes[idx])
+            for pane in [p for p in self.window.open_panes() if p.index <= limit]:
+                self._close(pane)
                 closes += 1
-            self.closed_through = max(self.closed_through, limit)
+            self.window.closed_through = max(self.window.closed_through, limit)
         return closes
 
     def _append_by_pane(
@@ -335,35 +324,14 @@ class Engine:
             self._count_full_batches(pane)
 
     def _pane(self, idx: int) -> Pane:
-        pane = self.panes.get(idx)
-        if pane is None:
-            pane = Pane(idx, self.epsilon, self.max_itemset_size)
-            self.panes[idx] = pane
-            if self.first_index is None or idx < self.first_index:
-                self.first_index = idx
-        return pane
+        return self.window.pane(idx)
 
     def _count_full_batches(self, pane: Pane) -> None:
         while pane.buffered >= self.batch_size:
-            self._count(pane, self.batch_size)
-
-    def _count(self, pane: Pane, limit: int | None) -> None:
-        if pane.count_buffer(limit) and pane.index > self.newest_index:
-            self.newest_index = pane.index
-            self._expire()
-
-    def _expire(self) -> None:
-        oldest = self.newest_index - self.window_panes + 1
-        # only closed panes leave: an open one is closed (and evaluated) first
-        for idx in [i for i, p in self.panes.items() if i < oldest and p.closed]:
-            del self.panes[idx]
+            self.window.count(pane, self.batch_size)
 
     def _close(self, pane: Pane) -> None:
-        self._count(pane, None)
-        pane.closed = True
-        # panes close in index order, so every index up to this one is now closed (set
-        # before the callback: it asks window_full)
-        self.closed_through = max(self.closed_through, pane.index)
+        self.window.close(pane)
         if self.on_pane_closed is not None:
             self.on_pane_closed(self)
 
@@ -373,18 +341,9 @@ class Engine:
         Open panes stay open. Partial batches keep every guarantee; the untracked bound of
         such a pane becomes ``ceil(n/w)`` instead of ``n/w``.
         """
-        for pane in list(self.panes.values()):
-            if pane.buffered:
-                self._count(pane, None)
+        self.window.flush()
 
     # -- queries ------------------------------------------------------------------------------
-
-    def _window_panes(self, newest: int | None, skip_newest: int) -> list[Pane]:
-        top = self.newest_index - skip_newest
-        bottom = self.newest_index - self.window_panes + 1
-        if newest is not None:
-            bottom = max(bottom, top - newest + 1)
-        return [self.panes[i] for i in self.panes.irange(bottom, top) if self.panes[i].counted]
 
     def snapshot(self, *, newest: int | None = None, skip_newest: int = 0) -> WindowSnapshot:
         """Frozen counts over the window (counted transactions only).
@@ -393,110 +352,50 @@ class Engine:
         ``skip_newest=r`` leaves them out (a baseline that excludes the recent window).
         Cost: one sort over the panes' tracked entries per itemset size.
         """
-        return combine_panes(
-            self._window_panes(newest, skip_newest),
-            item_names=self.vocabulary.names,
-            epsilon=self.epsilon,
-            max_itemset_size=self.max_itemset_size,
-            pane_size=self.pane_size,
-        )
+        return self.window.snapshot(self.vocabulary.names, newest=newest, skip_newest=skip_newest)
 
     def split_snapshot(
         self, recent_panes: int
     ) -> tuple[WindowSnapshot, WindowSnapshot, WindowSnapshot]:
-        """``(window, recent, baseline)``: the ``recent_panes`` newest panes of the window,
-        the rest of it, and the whole window (equal to :meth:`snapshot`).
-
-        Called at every pane close. The baseline is the previous call's window with the panes
-        that left it subtracted exactly (when none of its panes changed since), and the window
-        is the baseline merged with the recent part, so no call re-merges every pane.
-        Cost: one binary search per entry of the expired panes plus two two-run merges.
-        """
-        live = self._window_panes(None, 0)
-        cut = max(len(live) - recent_panes, 0)
-        base_panes, recent_part = live[:cut], live[cut:]
-        shape = {
-            "item_names": self.vocabulary.names,
-            "epsilon": self.epsilon,
-            "max_itemset_size": self.max_itemset_size,
-            "pane_size": self.pane_size,
-        }
-        baseline: PaneSum | None = None
-        cache = self._window_sum
-        if cache is not None:
-            then = {id(p): n for p, n in cache.panes}
-            unchanged = all(p.counted == n for p, n in cache.panes)
-            if unchanged and all(then.get(id(p)) == p.counted for p in base_panes):
-                wanted = {id(p) for p in base_panes}
-                gone = [p for p, _ in cache.panes if id(p) not in wanted]
-                baseline = subtract_panes(cache, gone)
-        if baseline is None:
-            baseline = sum_panes(base_panes, **shape)  # type: ignore[arg-type]
-        recent = sum_panes(recent_part, **shape)  # type: ignore[arg-type]
-        window = merge_sums(baseline, recent)
-        self._window_sum = window
-        return window.snapshot, recent.snapshot, baseline.snapshot
+        """``(window, recent, baseline)``; see :meth:`SlidingWindow.split_snapshot`."""
+        return self.window.split_snapshot(self.vocabulary.names, recent_panes)
 
     @property
     def window_full(self) -> bool:
         """True once a whole window of panes has closed (the end of warm-up)."""
-        if self.first_index is None:
-            return False
-        return self.closed_through - self.first_index + 1 >= self.window_panes
+        return self.window.window_full
 
     def statistics(self) -> EngineStatistics:
-        live = self._window_panes(None, 0)
-        tracked = [0] * self.max_itemset_size
-        for p in self.panes.values():
-            for k, n in enumerate(p.summary.tracked):
-                tracked[k] += n
+        """The engine's counters as a frozen :class:`EngineStatistics` (cheap: no summing of
+        itemsets, one pass over the panes)."""
+        win = self.window
+        live = win.live()
         return EngineStatistics(
             transactions_seen=self.transactions_seen,
             rejected=dict(self.rejected),
             window_transactions=sum(p.counted for p in live),
             window_max_error=sum(p.absent_bound for p in live),
-            tracked_entries=tuple(tracked),
-            bytes_held=sum(p.nbytes for p in self.panes.values()),
-            panes=len(self.panes),
-            buffered_transactions=sum(p.buffered for p in self.panes.values()),
+            tracked_itemsets=win.tracked_itemsets(),
+            held_bytes=win.nbytes,
+            live_panes=len(win.panes),
+            window_panes=self.window_panes,
+            buffered_transactions=win.buffered,
             max_event_ts=self.max_event_ts,
-            vocabulary_size=len(self.vocabulary),
+            vocabulary_items=len(self.vocabulary),
         )
 
     def check_invariants(self) -> None:
         """Assert the engine's invariants (panes, sequence numbers, window span)."""
-        for p in self.panes.values():
-            p.check_invariants()
-            if p.counted:
-                assert int(p.summary.levels[0].items.max(initial=-1)) < len(self.vocabulary)
-        counted = [p for p in self.panes.values() if p.counted]
-        assert all(p.index <= self.newest_index for p in counted), "pane beyond newest_index"
-        live = self._window_panes(None, 0)
-        assert len(live) <= self.window_panes, "more panes than the window holds"
-        total = sum(p.counted + p.buffered for p in self.panes.values())
+        self.window.check_invariants(vocabulary_size=len(self.vocabulary))
+        total = sum(p.counted + p.buffered for p in self.window.panes.values())
         assert total <= self.transactions_seen, "more transactions held than seen"
-        if not self.time_based:
-            assert self.pane_size is not None
-            for p in counted:
-                assert p.counted + p.buffered <= self.pane_size, "pane over pane_size"
-                assert (p.first_seq - 1) // self.pane_size == p.index, "seq outside its pane"
-            spans = sorted((p.first_seq, p.last_seq) for p in live)
-            for (_, a_hi), (b_lo, _) in pairwise(spans):
-                assert a_hi + 1 == b_lo, "count-based window has a gap"
-        if self.width:
-            snap_error = sum(p.absent_bound for p in live)
-            n = sum(p.counted for p in live)
-            assert snap_error <= math.ceil(self.epsilon * n - 1e-9) + len(live), "max_error bound"
 
     # -- persistence --------------------------------------------------------------------------
 
     def state(self) -> tuple[dict[str, object], dict[str, np.ndarray]]:
         """Everything needed to resume: a JSON-able manifest and named numpy arrays."""
-        arrays = self.vocabulary.to_arrays()
-        panes_meta = []
-        for j, pane in enumerate(self.panes.values()):
-            panes_meta.append(pane.meta())
-            arrays.update(pane.to_arrays(f"pane{j}."))
+        window_meta, arrays = self.window.state()
+        arrays.update(self.vocabulary.to_arrays())
         meta: dict[str, object] = {
             "state_version": STATE_VERSION,
             "epsilon": self.epsilon,
@@ -508,10 +407,7 @@ class Engine:
             "transactions_seen": self.transactions_seen,
             "rejected": dict(self.rejected),
             "max_event_ts": self.max_event_ts,
-            "newest_index": self.newest_index,
-            "first_index": self.first_index,
-            "closed_through": self.closed_through,
-            "panes": panes_meta,
+            "window": window_meta,
         }
         return meta, arrays
 
@@ -541,12 +437,7 @@ class Engine:
         eng.transactions_seen = int(meta["transactions_seen"])  # type: ignore[call-overload]
         eng.rejected = Counter(meta["rejected"])  # type: ignore[arg-type]
         eng.max_event_ts = meta["max_event_ts"]  # type: ignore[assignment]
-        eng.newest_index = int(meta["newest_index"])  # type: ignore[call-overload]
-        eng.first_index = meta["first_index"]  # type: ignore[assignment]
-        eng.closed_through = int(meta["closed_through"])  # type: ignore[call-overload]
-        for j, pm in enumerate(meta["panes"]):  # type: ignore[arg-type]
-            pane = Pane.from_state(pm, arrays, f"pane{j}.", eng.epsilon, eng.max_itemset_size)
-            eng.panes[pane.index] = pane
+        eng.window.load_state(meta["window"], arrays)  # type: ignore[arg-type]
         return eng
 
 

@@ -228,15 +228,17 @@ class EngineStatistics:
     window_transactions: int
     #: the window's largest possible undercount
     window_max_error: int
-    #: tracked entries summed over live panes, per itemset size (index 0 is size 1)
-    tracked_entries: tuple[int, ...]
+    #: tracked itemsets summed over the panes held, per itemset size (index 0 is size 1)
+    tracked_itemsets: tuple[int, ...]
     #: bytes held by the panes' numpy arrays and the batch buffers
-    bytes_held: int
-    #: live panes (closed and open)
-    panes: int
+    held_bytes: int
+    #: panes held in memory (open ones and closed ones still in the window)
+    live_panes: int
+    #: panes in a full window (the window's length in panes)
+    window_panes: int
     #: transactions received but not yet counted (waiting for a whole batch)
     buffered_transactions: int
     #: largest event timestamp seen (``None`` without timestamps)
     max_event_ts: float | None
     #: distinct item names interned
-    vocabulary_size: int
+    vocabulary_items: int

@@ -1,439 +1,265 @@
-"""Panes and the sliding window made of them.
+"""The sliding window: a run of consecutive panes, in pane order, with expiry and warm-up.
 
-A window is a run of consecutive panes; each :class:`Pane` keeps its own Lossy Counting
-summary with the same epsilon (so the same bucket width ``w``) plus a buffer of transactions
-received but not yet counted. The window's estimate of an itemset is the sum over its panes
-(ALGORITHMS.md section 2, "pane scheme"): with ``B_j = ceil(n_j / w)`` the bound on anything a
-pane does not track::
+:class:`SlidingWindow` owns the panes (kept by index in a ``SortedDict``), decides which of
+them make up the window, drops the ones that left it, says when the first window is full
+(the end of warm-up) and sums the live panes into frozen snapshots (:mod:`.panesum`). It
+knows nothing of how transactions reach a pane: the engine routes and batches them.
 
-    count(X) = sum_j f_j(X)                      (0 where pane j does not track X)
-    upper(X) = sum_j (f_j + delta_j  if tracked else  B_j)
-    max_error = sum_j B_j  <=  epsilon * N + (panes whose length is not a multiple of w)
+Pane indices: count-based windows number panes ``(seq - 1) // pane_size``; time-based ones
+``floor(ts / pane_seconds)``. The window ends at the newest pane that has counted
+transactions (``newest_index``) and holds ``window_panes`` panes back from it. A pane leaves
+only once it is closed (so rules and alerts have seen it whole).
 
-Splitting the window into panes costs memory, not accuracy. A pane that leaves the window is
-dropped whole, so its transactions are subtracted exactly; nothing is ever decremented.
-
-Worked example (``w = 4``): panes of 10, 10 and 6 transactions give ``B = 3, 3, 2`` and
-``max_error = 8``; an itemset tracked in the first two panes as ``(f, delta) = (5, 1), (7, 0)``
-and absent from the third has ``count = 12`` and ``upper = 6 + 7 + 2 = 15``.
+At every pane close :meth:`SlidingWindow.split_snapshot` gives the whole window, its newest
+panes (the *recent* part) and the rest (the *baseline*); the previous window's sum is cached
+and the expired panes are subtracted from it exactly, so a close never re-sums every pane.
 """
 
 from __future__ import annotations
 
-from collections.abc import Sequence
-from dataclasses import dataclass
+import math
+from collections.abc import Iterator
+from itertools import pairwise
+from typing import Any
 
 import numpy as np
+from sortedcontainers import SortedDict
 
-from streamcount.engine.counters import LossySummary
-from streamcount.engine.keys import lookup, pack, unique_with_sum
-from streamcount.engine.snapshot import LevelCounts, WindowSnapshot
+from streamcount.engine.pane import Pane
+from streamcount.engine.panesum import PaneSum, merge_sums, subtract_panes, sum_panes
+from streamcount.engine.snapshot import WindowSnapshot
 
-__all__ = ["Pane", "PaneSum", "combine_panes", "merge_sums", "subtract_panes", "sum_panes"]
+__all__ = ["SlidingWindow"]
 
 
-class Pane:
-    """One pane: a Lossy Counting summary plus the buffer of not-yet-counted transactions.
+class SlidingWindow:
+    """The panes of a sliding window of ``window_panes`` panes.
 
-    Attributes
+    Parameters
     ----------
-    index:
-        Pane number: ``(seq - 1) // pane_size`` for a count-based window,
-        ``floor(ts / pane_seconds)`` for a time-based one.
-    summary:
-        Counts of the transactions counted so far (``summary.n`` of them).
-    closed:
-        No transaction will be added any more.
+    window_panes:
+        Panes in a full window.
+    epsilon, max_itemset_size:
+        The settings of every pane's summary.
+    pane_size:
+        Transactions per pane for a count-based window (``None`` for a time-based one);
+        written into snapshots.
+
+    Notes
+    -----
+    Memory: the live panes' summaries and buffers, plus one cached window sum (shared arrays
+    with the last snapshot handed out).
     """
 
     __slots__ = (
-        "_buf_flat",
-        "_buf_len",
-        "_buf_seq",
-        "_buf_ts",
-        "buffered",
-        "closed",
-        "first_seq",
-        "index",
-        "last_seq",
-        "max_ts",
-        "min_ts",
-        "summary",
+        "_sum_cache",
+        "closed_through",
+        "epsilon",
+        "first_index",
+        "max_itemset_size",
+        "newest_index",
+        "pane_size",
+        "panes",
+        "window_panes",
     )
 
-    def __init__(self, index: int, epsilon: float, max_itemset_size: int) -> None:
-        self.index = int(index)
-        self.summary = LossySummary(epsilon, max_itemset_size)
-        self.closed = False
-        self.first_seq = 0  # of counted transactions; 0 while none
-        self.last_seq = 0
-        self.min_ts: float | None = None
-        self.max_ts: float | None = None
-        self.buffered = 0
-        self._buf_flat: list[np.ndarray] = []
-        self._buf_len: list[np.ndarray] = []
-        self._buf_seq: list[np.ndarray] = []
-        self._buf_ts: list[np.ndarray] = []
+    def __init__(
+        self,
+        window_panes: int,
+        *,
+        epsilon: float,
+        max_itemset_size: int,
+        pane_size: int | None,
+    ) -> None:
+        self.window_panes = int(window_panes)
+        self.epsilon = float(epsilon)
+        self.max_itemset_size = int(max_itemset_size)
+        self.pane_size = pane_size
+        #: live panes by index, kept in index order
+        self.panes: SortedDict = SortedDict()
+        #: highest pane index that has counted transactions (the window's end)
+        self.newest_index = -1
+        #: lowest pane index ever opened (for the warm-up test of time-based windows)
+        self.first_index: int | None = None
+        #: every pane index <= this is closed
+        self.closed_through = -1
+        #: the window summed at the last split_snapshot(), to subtract expired panes from
+        self._sum_cache: PaneSum | None = None
+
+    # -- panes --------------------------------------------------------------------------------
+
+    def pane(self, index: int) -> Pane:
+        """The pane ``index``, opened if needed."""
+        pane = self.panes.get(index)
+        if pane is None:
+            pane = Pane(index, self.epsilon, self.max_itemset_size)
+            self.panes[index] = pane
+            if self.first_index is None or index < self.first_index:
+                self.first_index = index
+        return pane
+
+    def open_panes(self) -> Iterator[Pane]:
+        """Panes not closed yet, in index order."""
+        return (p for p in self.panes.values() if not p.closed)
+
+    def count(self, pane: Pane, limit: int | None) -> None:
+        """Count up to ``limit`` buffered transactions of ``pane`` (all when ``None``) as one
+        batch; the window moves on when a newer pane gets counted transactions."""
+        if pane.count_buffer(limit) and pane.index > self.newest_index:
+            self.newest_index = pane.index
+            self._expire()
+
+    def _expire(self) -> None:
+        oldest = self.newest_index - self.window_panes + 1
+        # only closed panes leave: an open one is closed (and evaluated) first
+        for idx in [i for i, p in self.panes.items() if i < oldest and p.closed]:
+            del self.panes[idx]
+
+    def close(self, pane: Pane) -> None:
+        """Count what the pane still buffers and close it (panes close in index order)."""
+        self.count(pane, None)
+        pane.closed = True
+        self.closed_through = max(self.closed_through, pane.index)
+
+    def flush(self) -> None:
+        """Count every buffered transaction now (partial batches); open panes stay open."""
+        for pane in list(self.panes.values()):
+            if pane.buffered:
+                self.count(pane, None)
 
     @property
-    def counted(self) -> int:
-        return self.summary.n
+    def window_full(self) -> bool:
+        """True once a whole window of panes has closed (the end of warm-up)."""
+        if self.first_index is None:
+            return False
+        return self.closed_through - self.first_index + 1 >= self.window_panes
+
+    def live(self, newest: int | None = None, skip_newest: int = 0) -> list[Pane]:
+        """Panes of the window that have counted transactions, oldest first.
+
+        ``newest=r`` keeps only the ``r`` most recent panes; ``skip_newest=r`` leaves them out.
+        """
+        top = self.newest_index - skip_newest
+        bottom = self.newest_index - self.window_panes + 1
+        if newest is not None:
+            bottom = max(bottom, top - newest + 1)
+        return [self.panes[i] for i in self.panes.irange(bottom, top) if self.panes[i].counted]
+
+    # -- snapshots ----------------------------------------------------------------------------
+
+    def _shape(self, item_names: Any) -> dict[str, Any]:
+        return {
+            "item_names": item_names,
+            "epsilon": self.epsilon,
+            "max_itemset_size": self.max_itemset_size,
+            "pane_size": self.pane_size,
+        }
+
+    def snapshot(
+        self, item_names: Any, *, newest: int | None = None, skip_newest: int = 0
+    ) -> WindowSnapshot:
+        """Frozen counts over the window's counted transactions (see :meth:`live`).
+
+        Cost: one merge of the panes' sorted entries per itemset size.
+        """
+        return sum_panes(self.live(newest, skip_newest), **self._shape(item_names)).snapshot
+
+    def split_snapshot(
+        self, item_names: Any, recent_panes: int
+    ) -> tuple[WindowSnapshot, WindowSnapshot, WindowSnapshot]:
+        """``(window, recent, baseline)``: the whole window, its ``recent_panes`` newest panes
+        and the rest of it.
+
+        The baseline is the previous call's window with the panes that left it subtracted
+        exactly (when none of its panes changed since), and the window is the baseline merged
+        with the recent part. Cost: one binary search per entry of the expired panes plus two
+        two-run merges.
+        """
+        live = self.live()
+        cut = max(len(live) - recent_panes, 0)
+        base_panes, recent_part = live[:cut], live[cut:]
+        shape = self._shape(item_names)
+        baseline: PaneSum | None = None
+        cache = self._sum_cache
+        if cache is not None:
+            then = {id(p): n for p, n in cache.panes}
+            unchanged = all(p.counted == n for p, n in cache.panes)
+            if unchanged and all(then.get(id(p)) == p.counted for p in base_panes):
+                wanted = {id(p) for p in base_panes}
+                gone = [p for p, _ in cache.panes if id(p) not in wanted]
+                baseline = subtract_panes(cache, gone)
+        if baseline is None:
+            baseline = sum_panes(base_panes, **shape)
+        recent = sum_panes(recent_part, **shape)
+        window = merge_sums(baseline, recent)
+        self._sum_cache = window
+        return window.snapshot, recent.snapshot, baseline.snapshot
+
+    # -- statistics, checks, persistence ------------------------------------------------------
 
     @property
-    def absent_bound(self) -> int:
-        return self.summary.b_current
+    def buffered(self) -> int:
+        """Transactions received by the panes and not yet counted."""
+        return sum(p.buffered for p in self.panes.values())
 
     @property
     def nbytes(self) -> int:
-        parts = self._buf_flat + self._buf_len + self._buf_seq + self._buf_ts
-        return self.summary.nbytes + sum(int(a.nbytes) for a in parts)
+        """Bytes held by the panes' arrays and buffers."""
+        return sum(p.nbytes for p in self.panes.values())
 
-    def append(
-        self, flat: np.ndarray, lengths: np.ndarray, seq: np.ndarray, ts: np.ndarray
-    ) -> None:
-        """Buffer transactions (CSR pieces: ascending distinct ids per transaction)."""
-        if lengths.shape[0] == 0:
-            return
-        self._buf_flat.append(flat)
-        self._buf_len.append(lengths)
-        self._buf_seq.append(seq)
-        self._buf_ts.append(ts)
-        self.buffered += int(lengths.shape[0])
+    def tracked_itemsets(self) -> tuple[int, ...]:
+        """Itemsets tracked per itemset size, over every pane held."""
+        tracked = [0] * self.max_itemset_size
+        for p in self.panes.values():
+            for k, n in enumerate(p.summary.tracked):
+                tracked[k] += n
+        return tuple(tracked)
 
-    def count_buffer(self, limit: int | None = None) -> int:
-        """Count the first ``limit`` buffered transactions (all when ``None``) as one batch."""
-        if self.buffered == 0:
-            return 0
-        flat = np.concatenate(self._buf_flat)
-        lengths = np.concatenate(self._buf_len)
-        seq = np.concatenate(self._buf_seq)
-        ts = np.concatenate(self._buf_ts)
-        take = self.buffered if limit is None else min(limit, self.buffered)
-        cut = int(lengths[:take].sum())
-        indptr = np.zeros(take + 1, dtype=np.int64)
-        np.cumsum(lengths[:take], out=indptr[1:])
-        self.summary.add_batch(indptr, flat[:cut])
-        s = seq[:take]
-        lo, hi = int(s.min()), int(s.max())
-        self.first_seq = lo if self.first_seq == 0 else min(self.first_seq, lo)
-        self.last_seq = max(self.last_seq, hi)
-        t = ts[:take]
-        t = t[~np.isnan(t)]
-        if t.size:
-            tmin, tmax = float(t.min()), float(t.max())
-            self.min_ts = tmin if self.min_ts is None else min(self.min_ts, tmin)
-            self.max_ts = tmax if self.max_ts is None else max(self.max_ts, tmax)
-        rest = self.buffered - take
-        if rest:
-            self._buf_flat = [flat[cut:]]
-            self._buf_len = [lengths[take:]]
-            self._buf_seq = [seq[take:]]
-            self._buf_ts = [ts[take:]]
-        else:
-            self._buf_flat, self._buf_len, self._buf_seq, self._buf_ts = [], [], [], []
-        self.buffered = rest
-        return take
+    def check_invariants(self, *, vocabulary_size: int) -> None:
+        """Assert the window's invariants: pane order, span, the error bound."""
+        for p in self.panes.values():
+            p.check_invariants()
+            if p.counted:
+                assert int(p.summary.levels[0].items.max(initial=-1)) < vocabulary_size
+        counted = [p for p in self.panes.values() if p.counted]
+        assert all(p.index <= self.newest_index for p in counted), "pane beyond newest_index"
+        live = self.live()
+        assert len(live) <= self.window_panes, "more panes than the window holds"
+        if self.pane_size is not None:
+            for p in counted:
+                assert p.counted + p.buffered <= self.pane_size, "pane over pane_size"
+                assert (p.first_seq - 1) // self.pane_size == p.index, "seq outside its pane"
+            spans = sorted((p.first_seq, p.last_seq) for p in live)
+            for (_, a_hi), (b_lo, _) in pairwise(spans):
+                assert a_hi + 1 == b_lo, "count-based window has a gap"
+        if self.epsilon > 0:
+            error = sum(p.absent_bound for p in live)
+            n = sum(p.counted for p in live)
+            assert error <= math.ceil(self.epsilon * n - 1e-9) + len(live), "max_error bound"
 
-    # -- persistence ------------------------------------------------------------------------
-
-    def meta(self) -> dict[str, object]:
-        return {
-            "index": self.index,
-            "n": self.summary.n,
-            "closed": self.closed,
-            "first_seq": self.first_seq,
-            "last_seq": self.last_seq,
-            "min_ts": self.min_ts,
-            "max_ts": self.max_ts,
+    def state(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+        """The panes and positions as a JSON-able manifest plus named arrays."""
+        arrays: dict[str, np.ndarray] = {}
+        panes_meta = []
+        for j, pane in enumerate(self.panes.values()):
+            panes_meta.append(pane.meta())
+            arrays.update(pane.to_arrays(f"pane{j}."))
+        meta = {
+            "newest_index": self.newest_index,
+            "first_index": self.first_index,
+            "closed_through": self.closed_through,
+            "panes": panes_meta,
         }
+        return meta, arrays
 
-    def to_arrays(self, prefix: str) -> dict[str, np.ndarray]:
-        out = self.summary.to_arrays(prefix)
-
-        def cat(parts: list[np.ndarray], dtype: type) -> np.ndarray:
-            return np.concatenate(parts).astype(dtype) if parts else np.zeros(0, dtype=dtype)
-
-        out[f"{prefix}buf.flat"] = cat(self._buf_flat, np.int32)
-        out[f"{prefix}buf.len"] = cat(self._buf_len, np.int64)
-        out[f"{prefix}buf.seq"] = cat(self._buf_seq, np.int64)
-        out[f"{prefix}buf.ts"] = cat(self._buf_ts, np.float64)
-        return out
-
-    @classmethod
-    def from_state(
-        cls,
-        meta: dict[str, object],
-        arrays: dict[str, np.ndarray],
-        prefix: str,
-        epsilon: float,
-        max_itemset_size: int,
-    ) -> Pane:
-        pane = cls(int(meta["index"]), epsilon, max_itemset_size)  # type: ignore[call-overload]
-        pane.summary = LossySummary.from_arrays(
-            epsilon,
-            max_itemset_size,
-            int(meta["n"]),
-            arrays,
-            prefix,  # type: ignore[call-overload]
-        )
-        pane.closed = bool(meta["closed"])
-        pane.first_seq = int(meta["first_seq"])  # type: ignore[call-overload]
-        pane.last_seq = int(meta["last_seq"])  # type: ignore[call-overload]
-        pane.min_ts = meta["min_ts"]  # type: ignore[assignment]
-        pane.max_ts = meta["max_ts"]  # type: ignore[assignment]
-        pane.append(
-            np.asarray(arrays[f"{prefix}buf.flat"], dtype=np.int32),
-            np.asarray(arrays[f"{prefix}buf.len"], dtype=np.int64),
-            np.asarray(arrays[f"{prefix}buf.seq"], dtype=np.int64),
-            np.asarray(arrays[f"{prefix}buf.ts"], dtype=np.float64),
-        )
-        return pane
-
-    def check_invariants(self) -> None:
-        self.summary.check_invariants()
-        assert self.buffered == sum(int(a.shape[0]) for a in self._buf_len), "buffer count"
-        if self.summary.n:
-            assert 1 <= self.first_seq <= self.last_seq, "pane seq range"
-            assert self.last_seq - self.first_seq + 1 >= self.summary.n, "seq span below n"
-        else:
-            assert self.first_seq == self.last_seq == 0, "empty pane with a seq range"
-
-
-_Part = tuple[np.ndarray, np.ndarray, np.ndarray, int, np.ndarray]
-
-
-def _sum_parts(size: int, parts: Sequence[_Part], radix: int) -> tuple[LevelCounts, np.ndarray]:
-    """Sum ``(items, lower, upper, absent bound, presence)`` parts of one itemset size.
-
-    The upper bound of an itemset is its own upper bound in each part that lists it plus the
-    part's absent bound where it is missing: summed as ``sum(upper - absent) + sum(absent)``.
-    ``presence`` counts the panes that track each entry (what a later subtraction needs).
-    """
-    total_absent = sum(p[3] for p in parts)  # every part counts, listed entries or not
-    parts = [p for p in parts if p[0].shape[0]]
-    if not parts:
-        return LevelCounts.empty(size), np.zeros(0, dtype=np.int64)
-    if len(parts) == 1:  # one part: already sorted and unique
-        items, low, high, absent, presence = parts[0]
-        count, upper = low.copy(), high + (total_absent - absent)
-    else:
-        rows = np.concatenate([p[0] for p in parts])
-        low_all = np.concatenate([p[1] for p in parts])
-        extra = np.concatenate([p[2] - p[3] for p in parts])
-        pres_all = np.concatenate([p[4] for p in parts])
-        _, first, (count, upper_extra, presence) = unique_with_sum(
-            pack(rows, radix), low_all, extra, pres_all
-        )
-        items = rows[first]
-        upper = upper_extra + total_absent
-    for arr in (items, count, upper):
-        arr.setflags(write=False)
-    return LevelCounts(size, items, count, upper), presence
-
-
-@dataclass(frozen=True, slots=True)
-class PaneSum:
-    """A window snapshot with what it was summed from, so that panes can later be subtracted
-    from it exactly: the panes (with their transaction counts at the time) and, per level,
-    how many of them track each entry."""
-
-    snapshot: WindowSnapshot
-    presence: tuple[np.ndarray, ...]
-    panes: tuple[tuple[Pane, int], ...]
-
-
-def _snapshot_of(
-    panes: Sequence[Pane],
-    levels: Sequence[LevelCounts],
-    *,
-    item_names: Sequence[str],
-    epsilon: float,
-    pane_size: int | None,
-) -> WindowSnapshot:
-    ts_min = [p.min_ts for p in panes if p.min_ts is not None]
-    ts_max = [p.max_ts for p in panes if p.max_ts is not None]
-    return WindowSnapshot(
-        first_seq=min((p.first_seq for p in panes), default=0),
-        last_seq=max((p.last_seq for p in panes), default=0),
-        transactions=sum(p.counted for p in panes),
-        max_error=sum(p.absent_bound for p in panes),
-        epsilon=epsilon,
-        pane_size=pane_size,
-        panes=len(panes),
-        levels=tuple(levels),
-        item_names=item_names,
-        first_ts=min(ts_min) if ts_min else None,
-        last_ts=max(ts_max) if ts_max else None,
-    )
-
-
-def sum_panes(
-    panes: Sequence[Pane],
-    *,
-    item_names: Sequence[str],
-    epsilon: float,
-    max_itemset_size: int,
-    pane_size: int | None,
-) -> PaneSum:
-    """Sum pane summaries (the pane scheme above) into a :class:`PaneSum`.
-
-    Cost: one concatenation and one stable sort (a merge of the panes' sorted runs) per
-    itemset size over all panes' tracked entries; nothing to merge for a single pane.
-    """
-    live = [p for p in panes if p.counted > 0]
-    radix = max(len(item_names), 1)
-    levels, presence = [], []
-    for k in range(1, max_itemset_size + 1):
-        parts = []
-        for p in live:
-            lv = p.summary.levels[k - 1]
-            ones = np.ones(len(lv), dtype=np.int64)
-            parts.append((lv.items, lv.f, lv.f + lv.delta, p.absent_bound, ones))
-        level, pres = _sum_parts(k, parts, radix)
-        levels.append(level)
-        presence.append(pres)
-    snap = _snapshot_of(live, levels, item_names=item_names, epsilon=epsilon, pane_size=pane_size)
-    return PaneSum(snap, tuple(presence), tuple((p, p.counted) for p in live))
-
-
-def combine_panes(
-    panes: Sequence[Pane],
-    *,
-    item_names: Sequence[str],
-    epsilon: float,
-    max_itemset_size: int,
-    pane_size: int | None,
-) -> WindowSnapshot:
-    """Sum pane summaries into a frozen :class:`WindowSnapshot` (see :func:`sum_panes`)."""
-    return sum_panes(
-        panes,
-        item_names=item_names,
-        epsilon=epsilon,
-        max_itemset_size=max_itemset_size,
-        pane_size=pane_size,
-    ).snapshot
-
-
-def merge_sums(a: PaneSum, b: PaneSum) -> PaneSum:
-    """The sum over the panes of ``a`` and ``b`` (disjoint), from the two sums: the same
-    pane-sum rule, a missing itemset counting 0 below and the part's ``max_error`` above.
-
-    Cost: a merge of two sorted runs per itemset size.
-    """
-    sa, sb = a.snapshot, b.snapshot
-    if sa.transactions == 0:
-        return b
-    if sb.transactions == 0:
-        return a
-    names = sa.item_names if len(sa.item_names) >= len(sb.item_names) else sb.item_names
-    radix = max(len(names), 1)
-    levels, presence = [], []
-    for la, pa, lb, pb in zip(sa.levels, a.presence, sb.levels, b.presence, strict=True):
-        if len(la) < len(lb):  # insert the smaller side into the larger
-            la, pa, lb, pb = lb, pb, la, pa
-            ea, eb = sb.max_error, sa.max_error
-        else:
-            ea, eb = sa.max_error, sb.max_error
-        level, pres = _merge_two(la, pa, ea, lb, pb, eb, radix)
-        levels.append(level)
-        presence.append(pres)
-    panes = a.panes + b.panes
-    snap = _snapshot_of(
-        [p for p, _ in panes],
-        levels,
-        item_names=names,
-        epsilon=sa.epsilon,
-        pane_size=sa.pane_size,
-    )
-    return PaneSum(snap, tuple(presence), panes)
-
-
-def _merge_two(
-    a: LevelCounts,
-    pres_a: np.ndarray,
-    absent_a: int,
-    b: LevelCounts,
-    pres_b: np.ndarray,
-    absent_b: int,
-    radix: int,
-) -> tuple[LevelCounts, np.ndarray]:
-    """Sum two sorted levels by inserting ``b`` into ``a`` (``a`` the larger one).
-
-    Same rule as :func:`_sum_parts`, in O(len(a) + len(b) log len(a)): a binary search of
-    ``b``'s keys in ``a``'s, additions where found, one ordered insertion of the rest.
-    """
-    extra_a = a.upper - absent_a
-    if not len(b):
-        count, extra, pres, items = a.count.copy(), extra_a, pres_a.copy(), a.items
-    else:
-        keys_a = pack(a.items, radix)
-        keys_b = pack(b.items, radix)
-        pos = np.searchsorted(keys_a, keys_b)
-        found = np.zeros(len(b), dtype=bool)
-        inside = pos < len(a)
-        found[inside] = keys_a[pos[inside]] == keys_b[inside]
-        extra_b = b.upper - absent_b
-        count, extra, pres = a.count.copy(), extra_a.copy(), pres_a.copy()
-        hit = pos[found]
-        count[hit] += b.count[found]
-        extra[hit] += extra_b[found]
-        pres[hit] += pres_b[found]
-        new = ~found
-        at = pos[new]
-        items = np.insert(a.items, at, b.items[new], axis=0)
-        count = np.insert(count, at, b.count[new])
-        extra = np.insert(extra, at, extra_b[new])
-        pres = np.insert(pres, at, pres_b[new])
-    upper = extra + absent_a + absent_b
-    for arr in (items, count, upper):
-        arr.setflags(write=False)
-    return LevelCounts(a.size, items, count, upper), pres
-
-
-def subtract_panes(total: PaneSum, gone: Sequence[Pane]) -> PaneSum:
-    """``total`` without the panes ``gone`` (each must be one of its panes, unchanged since):
-    their counts are subtracted exactly and entries no remaining pane tracks are dropped.
-
-    Worked example (``w = 4``): an itemset tracked in two panes of 10 as ``(5, 1)`` and
-    ``(7, 0)`` has ``count 12``, ``upper 6 + 7 = 13`` and presence 2; subtracting the first
-    pane leaves ``count 7``, ``upper 13 - 3 - (6 - 3) = 7`` and presence 1.
-
-    Cost: one binary search per entry of the panes removed, and one pass over the total.
-    """
-    gone_ids = {id(p) for p in gone}
-    keep_panes = tuple((p, n) for p, n in total.panes if id(p) not in gone_ids)
-    snap = total.snapshot
-    names = snap.item_names
-    radix = max(len(names), 1)
-    removed_absent = sum(p.absent_bound for p in gone)
-    levels, presence = [], []
-    for level, pres in zip(snap.levels, total.presence, strict=True):
-        count = level.count.copy()
-        upper = level.upper - removed_absent
-        pres = pres.copy()
-        keys = pack(level.items, radix) if len(level) else None
-        for p in gone:
-            lv = p.summary.levels[level.size - 1]
-            if not len(lv):
-                continue
-            assert keys is not None
-            pos, found = lookup(keys, pack(lv.items, radix))
-            if not found.all():
-                raise ValueError("subtract_panes: a removed pane has entries the total lacks")
-            count[pos] -= lv.f
-            upper[pos] -= lv.f + lv.delta - p.absent_bound
-            pres[pos] -= 1
-        keep = pres > 0
-        items, count, upper, pres = level.items[keep], count[keep], upper[keep], pres[keep]
-        for arr in (items, count, upper):
-            arr.setflags(write=False)
-        levels.append(LevelCounts(level.size, items, count, upper))
-        presence.append(pres)
-    new = _snapshot_of(
-        [p for p, _ in keep_panes],
-        levels,
-        item_names=names,
-        epsilon=snap.epsilon,
-        pane_size=snap.pane_size,
-    )
-    return PaneSum(new, tuple(presence), keep_panes)
+    def load_state(self, meta: dict[str, Any], arrays: dict[str, np.ndarray]) -> None:
+        """Restore what :meth:`state` returned (into an empty window)."""
+        self.newest_index = int(meta["newest_index"])
+        first = meta["first_index"]
+        self.first_index = None if first is None else int(first)
+        self.closed_through = int(meta["closed_through"])
+        self.panes.clear()
+        self._sum_cache = None
+        for j, pm in enumerate(meta["panes"]):
+            pane = Pane.from_state(pm, arrays, f"pane{j}.", self.epsilon, self.max_itemset_size)
+            self.panes[pane.index] = pane

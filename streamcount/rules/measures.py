@@ -304,10 +304,13 @@ def rule_measures(
         _div(n * fua, flr * flq, np.inf),
     )
 
+    # (N a - r q) / N^2: the products of counts are exact integers in float64 (below 2^53
+    # for windows up to ~9e7 transactions), so only the division rounds; a/N - (r/N)(q/N)
+    # would cancel catastrophically when the supports are close to 1
     leverage = MeasureArray(
-        fla / n - flr * flq / nn if transactions else np.zeros_like(fla),
-        fla / n - fur * fuq / nn if transactions else np.zeros_like(fla),
-        fua / n - flr * flq / nn if transactions else np.zeros_like(fla),
+        (n * fla - flr * flq) / nn if transactions else np.zeros_like(fla),
+        (n * fla - fur * fuq) / nn if transactions else np.zeros_like(fla),
+        (n * fua - flr * flq) / nn if transactions else np.zeros_like(fla),
     )
 
     one_minus_lq = 1.0 - _div(flq, n, 0.0)

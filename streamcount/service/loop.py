@@ -421,13 +421,14 @@ class Service:
             "transactions_seen": stats.transactions_seen,
             "rejected": dict(self._rejected_counts),
             "buffered_transactions": stats.buffered_transactions,
-            "tracked_itemsets": {str(k + 1): n for k, n in enumerate(stats.tracked_entries)},
-            "summary_bytes": stats.bytes_held,
-            "panes": stats.panes,
+            "tracked_itemsets": {str(k + 1): n for k, n in enumerate(stats.tracked_itemsets)},
+            "held_bytes": stats.held_bytes,
+            "live_panes": stats.live_panes,
+            "window_panes": stats.window_panes,
             "warm": self.engine.window_full,
             "active_rules": len(rules),
             "alerts": dict(self._alert_counts),
-            "vocabulary_items": stats.vocabulary_size,
+            "vocabulary_items": stats.vocabulary_items,
             "last_checkpoint_unix": self._last_checkpoint_unix,
             "max_event_ts": stats.max_event_ts,
             "rules_window": self._rules_window,
@@ -444,7 +445,7 @@ class Service:
 
     def _window_key(self) -> tuple[tuple[int, int], ...]:
         """What the window's counts depend on: each live pane and how much of it is counted."""
-        return tuple((p.index, p.counted) for p in self.engine.panes.values())
+        return tuple((p.index, p.counted) for p in self.engine.window.panes.values())
 
     def _publish(self, window: WindowSnapshot | None = None) -> None:
         self._view = self._build_view(window)

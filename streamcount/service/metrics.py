@@ -84,7 +84,7 @@ _GAUGES: dict[str, str] = {
         "Wall-clock time minus the largest event timestamp seen (absent without timestamps)."
     ),
     "streamcount_summary_bytes": "Bytes held by the panes' count arrays and batch buffers.",
-    "streamcount_window_panes": "Live panes (closed and open).",
+    "streamcount_live_panes": "Panes held in memory (open ones and closed ones still in the window).",
     "streamcount_buffered_transactions": "Transactions received but not yet counted.",
     "streamcount_vocabulary_items": "Distinct item names interned.",
 }
@@ -169,10 +169,10 @@ class _StateCollector(Collector):
             simple = {
                 "streamcount_window_transactions": "window_transactions",
                 "streamcount_window_max_error": "window_max_error",
-                "streamcount_summary_bytes": "bytes_held",
-                "streamcount_window_panes": "panes",
+                "streamcount_summary_bytes": "held_bytes",
+                "streamcount_live_panes": "live_panes",
                 "streamcount_buffered_transactions": "buffered_transactions",
-                "streamcount_vocabulary_items": "vocabulary_size",
+                "streamcount_vocabulary_items": "vocabulary_items",
             }
             for name, attr in simple.items():
                 family = gauge(name)
@@ -181,7 +181,7 @@ class _StateCollector(Collector):
                 yield family
             tracked = gauge("streamcount_tracked_itemsets", ["size"])
             if stats is not None:
-                for size, entries in enumerate(stats.tracked_entries, start=1):
+                for size, entries in enumerate(stats.tracked_itemsets, start=1):
                     tracked.add_metric([str(size)], float(entries))
             yield tracked
 

@@ -1,0 +1,183 @@
+"""One pane of the sliding window: a counting summary plus the buffer of transactions received
+but not yet counted.
+
+A pane's transactions are counted in batches (whole buckets of ``ceil(1/epsilon)``
+transactions, see :mod:`streamcount.engine.counters`); until a batch is full they wait in the
+buffer, as CSR pieces of ascending, distinct item ids. The buffer is part of the checkpoint,
+so a restart counts exactly the same batches as an uninterrupted run.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from streamcount.engine.counters import LossySummary
+
+__all__ = ["Pane"]
+
+
+class Pane:
+    """One pane: a Lossy Counting summary plus the buffer of not-yet-counted transactions.
+
+    Attributes
+    ----------
+    index:
+        Pane number: ``(seq - 1) // pane_size`` for a count-based window,
+        ``floor(ts / pane_seconds)`` for a time-based one.
+    summary:
+        Counts of the transactions counted so far (``summary.n`` of them).
+    closed:
+        No transaction will be added any more.
+    """
+
+    __slots__ = (
+        "_buf_flat",
+        "_buf_len",
+        "_buf_seq",
+        "_buf_ts",
+        "buffered",
+        "closed",
+        "first_seq",
+        "index",
+        "last_seq",
+        "max_ts",
+        "min_ts",
+        "summary",
+    )
+
+    def __init__(self, index: int, epsilon: float, max_itemset_size: int) -> None:
+        self.index = int(index)
+        self.summary = LossySummary(epsilon, max_itemset_size)
+        self.closed = False
+        self.first_seq = 0  # of counted transactions; 0 while none
+        self.last_seq = 0
+        self.min_ts: float | None = None
+        self.max_ts: float | None = None
+        self.buffered = 0
+        self._buf_flat: list[np.ndarray] = []
+        self._buf_len: list[np.ndarray] = []
+        self._buf_seq: list[np.ndarray] = []
+        self._buf_ts: list[np.ndarray] = []
+
+    @property
+    def counted(self) -> int:
+        return self.summary.n
+
+    @property
+    def absent_bound(self) -> int:
+        return self.summary.b_current
+
+    @property
+    def nbytes(self) -> int:
+        parts = self._buf_flat + self._buf_len + self._buf_seq + self._buf_ts
+        return self.summary.nbytes + sum(int(a.nbytes) for a in parts)
+
+    def append(
+        self, flat: np.ndarray, lengths: np.ndarray, seq: np.ndarray, ts: np.ndarray
+    ) -> None:
+        """Buffer transactions (CSR pieces: ascending distinct ids per transaction)."""
+        if lengths.shape[0] == 0:
+            return
+        self._buf_flat.append(flat)
+        self._buf_len.append(lengths)
+        self._buf_seq.append(seq)
+        self._buf_ts.append(ts)
+        self.buffered += int(lengths.shape[0])
+
+    def count_buffer(self, limit: int | None = None) -> int:
+        """Count the first ``limit`` buffered transactions (all when ``None``) as one batch."""
+        if self.buffered == 0:
+            return 0
+        flat = np.concatenate(self._buf_flat)
+        lengths = np.concatenate(self._buf_len)
+        seq = np.concatenate(self._buf_seq)
+        ts = np.concatenate(self._buf_ts)
+        take = self.buffered if limit is None else min(limit, self.buffered)
+        cut = int(lengths[:take].sum())
+        indptr = np.zeros(take + 1, dtype=np.int64)
+        np.cumsum(lengths[:take], out=indptr[1:])
+        self.summary.add_batch(indptr, flat[:cut])
+        s = seq[:take]
+        lo, hi = int(s.min()), int(s.max())
+        self.first_seq = lo if self.first_seq == 0 else min(self.first_seq, lo)
+        self.last_seq = max(self.last_seq, hi)
+        t = ts[:take]
+        t = t[~np.isnan(t)]
+        if t.size:
+            tmin, tmax = float(t.min()), float(t.max())
+            self.min_ts = tmin if self.min_ts is None else min(self.min_ts, tmin)
+            self.max_ts = tmax if self.max_ts is None else max(self.max_ts, tmax)
+        rest = self.buffered - take
+        if rest:
+            self._buf_flat = [flat[cut:]]
+            self._buf_len = [lengths[take:]]
+            self._buf_seq = [seq[take:]]
+            self._buf_ts = [ts[take:]]
+        else:
+            self._buf_flat, self._buf_len, self._buf_seq, self._buf_ts = [], [], [], []
+        self.buffered = rest
+        return take
+
+    # -- persistence ------------------------------------------------------------------------
+
+    def meta(self) -> dict[str, object]:
+        return {
+            "index": self.index,
+            "n": self.summary.n,
+            "closed": self.closed,
+            "first_seq": self.first_seq,
+            "last_seq": self.last_seq,
+            "min_ts": self.min_ts,
+            "max_ts": self.max_ts,
+        }
+
+    def to_arrays(self, prefix: str) -> dict[str, np.ndarray]:
+        out = self.summary.to_arrays(prefix)
+
+        def cat(parts: list[np.ndarray], dtype: type) -> np.ndarray:
+            return np.concatenate(parts).astype(dtype) if parts else np.zeros(0, dtype=dtype)
+
+        out[f"{prefix}buf.flat"] = cat(self._buf_flat, np.int32)
+        out[f"{prefix}buf.len"] = cat(self._buf_len, np.int64)
+        out[f"{prefix}buf.seq"] = cat(self._buf_seq, np.int64)
+        out[f"{prefix}buf.ts"] = cat(self._buf_ts, np.float64)
+        return out
+
+    @classmethod
+    def from_state(
+        cls,
+        meta: dict[str, object],
+        arrays: dict[str, np.ndarray],
+        prefix: str,
+        epsilon: float,
+        max_itemset_size: int,
+    ) -> Pane:
+        pane = cls(int(meta["index"]), epsilon, max_itemset_size)  # type: ignore[call-overload]
+        pane.summary = LossySummary.from_arrays(
+            epsilon,
+            max_itemset_size,
+            int(meta["n"]),
+            arrays,
+            prefix,  # type: ignore[call-overload]
+        )
+        pane.closed = bool(meta["closed"])
+        pane.first_seq = int(meta["first_seq"])  # type: ignore[call-overload]
+        pane.last_seq = int(meta["last_seq"])  # type: ignore[call-overload]
+        pane.min_ts = meta["min_ts"]  # type: ignore[assignment]
+        pane.max_ts = meta["max_ts"]  # type: ignore[assignment]
+        pane.append(
+            np.asarray(arrays[f"{prefix}buf.flat"], dtype=np.int32),
+            np.asarray(arrays[f"{prefix}buf.len"], dtype=np.int64),
+            np.asarray(arrays[f"{prefix}buf.seq"], dtype=np.int64),
+            np.asarray(arrays[f"{prefix}buf.ts"], dtype=np.float64),
+        )
+        return pane
+
+    def check_invariants(self) -> None:
+        self.summary.check_invariants()
+        assert self.buffered == sum(int(a.shape[0]) for a in self._buf_len), "buffer count"
+        if self.summary.n:
+            assert 1 <= self.first_seq <= self.last_seq, "pane seq range"
+            assert self.last_seq - self.first_seq + 1 >= self.summary.n, "seq span below n"
+        else:
+            assert self.first_seq == self.last_seq == 0, "empty pane with a seq range"
