@@ -84,7 +84,7 @@ _GAUGES: dict[str, str] = {
         "Wall-clock time minus the largest event timestamp seen (absent without timestamps)."
     ),
     "streamcount_summary_bytes": "Bytes held by the panes' count arrays and batch buffers.",
-    "streamcount_live_panes": "Panes held in memory (open ones and closed ones still in the window).",
+    "streamcount_live_panes": "Panes held (open ones, and closed ones still in the window).",
     "streamcount_buffered_transactions": "Transactions received but not yet counted.",
     "streamcount_vocabulary_items": "Distinct item names interned.",
 }
