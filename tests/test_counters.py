@@ -226,7 +226,7 @@ def test_check_invariants_detects_a_broken_closure() -> None:
     summary.add_baskets([[0, 1], [0, 1, 2]])
     level1 = summary.levels[0]
     keep = level1.items[:, 0] != 1  # forget item 1 while {0,1} and {1,2} stay tracked
-    summary.levels[0] = Level(level1.items[keep], level1.f[keep], level1.delta[keep])
+    summary._levels[0] = Level(level1.items[keep], level1.f[keep], level1.delta[keep])
     with pytest.raises(AssertionError, match="downward closed"):
         summary.check_invariants()
 

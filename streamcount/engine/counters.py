@@ -39,12 +39,13 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 from functools import lru_cache
+from typing import Protocol
 
 import numpy as np
 
 from streamcount.engine.keys import combination_table, fits_int64, lookup, pack, unpack
 
-__all__ = ["Level", "LossySummary", "bucket_width"]
+__all__ = ["Level", "LossySummary", "Summary", "bucket_width"]
 
 # Rows of combinations materialised at once while enumerating a batch (bounds peak memory:
 # about 8 bytes x k per row plus the packed key).
@@ -93,6 +94,57 @@ class Level:
         return int(self.items.nbytes + self.f.nbytes + self.delta.nbytes)
 
 
+class Summary(Protocol):
+    """What a pane asks of a counting summary, so that another kernel can be dropped in.
+
+    A summary counts the itemsets of size ``1..max_itemset_size`` of the transactions it was
+    given (``n`` of them) with Lossy Counting's guarantee: a tracked itemset's true count lies
+    in ``[f, f + delta]``, an untracked one's in ``[0, b_current]``. :class:`LossySummary` is
+    the kernel in use; a replacement must keep every invariant :meth:`check_invariants` states.
+    """
+
+    @property
+    def n(self) -> int:
+        """Transactions counted."""
+        ...
+
+    @property
+    def b_current(self) -> int:
+        """Bound on the true count of any untracked itemset."""
+        ...
+
+    @property
+    def levels(self) -> tuple[Level, ...]:
+        """Tracked entries per itemset size, read-only (sorted rows of item ids)."""
+        ...
+
+    @property
+    def tracked(self) -> tuple[int, ...]:
+        """Entries per itemset size."""
+        ...
+
+    @property
+    def nbytes(self) -> int:
+        """Bytes held by the entries' arrays."""
+        ...
+
+    def add_batch(self, indptr: np.ndarray, items: np.ndarray) -> None:
+        """Count one batch (CSR of ascending, distinct ids per transaction)."""
+        ...
+
+    def bounds(self, items: list[int]) -> tuple[int, int]:
+        """``(lower, upper)`` bounds of one itemset's true count."""
+        ...
+
+    def to_arrays(self, prefix: str) -> dict[str, np.ndarray]:
+        """The entries as named arrays (for checkpoints); :meth:`from_arrays` reverses it."""
+        ...
+
+    def check_invariants(self) -> None:
+        """Assert every structural invariant."""
+        ...
+
+
 class LossySummary:
     """Lossy Counting summary of the itemsets of size ``1..max_itemset_size`` in one pane.
 
@@ -120,7 +172,7 @@ class LossySummary:
     Manku, G. S. & Motwani, R. (2002). Approximate Frequency Counts over Data Streams. VLDB.
     """
 
-    __slots__ = ("epsilon", "levels", "max_itemset_size", "n", "width")
+    __slots__ = ("_levels", "epsilon", "max_itemset_size", "n", "width")
 
     def __init__(self, epsilon: float, max_itemset_size: int) -> None:
         if max_itemset_size < 1:
@@ -129,7 +181,7 @@ class LossySummary:
         self.width = bucket_width(epsilon)
         self.max_itemset_size = int(max_itemset_size)
         self.n = 0
-        self.levels: list[Level] = [Level.empty(k) for k in range(1, max_itemset_size + 1)]
+        self._levels: list[Level] = [Level.empty(k) for k in range(1, max_itemset_size + 1)]
 
     # -- bounds ----------------------------------------------------------------------------
 
@@ -137,6 +189,12 @@ class LossySummary:
     def b_current(self) -> int:
         """``ceil(n / w)``: the bound on the count of any untracked itemset (0 when exact)."""
         return -(-self.n // self.width) if self.width else 0
+
+    @property
+    def levels(self) -> tuple[Level, ...]:
+        """The tracked entries of each itemset size (index 0 is size 1), read-only: rows of
+        ascending item ids in lexicographic order, with ``f`` and ``delta``."""
+        return tuple(self._levels)
 
     @property
     def tracked(self) -> tuple[int, ...]:
@@ -149,7 +207,7 @@ class LossySummary:
     def bounds(self, items: list[int]) -> tuple[int, int]:
         """``(f, f + delta)`` of one itemset, or ``(0, b_current)`` when untracked. O(log n)."""
         row = np.array([sorted(set(items))], dtype=np.int32)
-        level = self.levels[row.shape[1] - 1]
+        level = self._levels[row.shape[1] - 1]
         if len(level):
             radix = int(max(level.items.max(), row.max())) + 1
             pos, found = lookup(pack(level.items, radix), pack(row, radix))
@@ -198,7 +256,7 @@ class LossySummary:
         # ---- level 1 -------------------------------------------------------------------
         lengths = np.diff(indptr)
         top = int(items.max()) + 1 if items.size else 0
-        old = self.levels[0]
+        old = self._levels[0]
         if len(old):
             top = max(top, int(old.items[:, 0].max()) + 1)
         counts = np.bincount(items, minlength=top).astype(np.int64)
@@ -212,12 +270,12 @@ class LossySummary:
         f = np.concatenate((f_old[keep_old], counts[new_ids]))
         d = np.concatenate((old.delta[keep_old], np.full(new_ids.shape[0], b0, dtype=np.int64)))
         order = np.argsort(ids, kind="stable")
-        self.levels[0] = Level(ids[order].reshape(-1, 1), f[order], d[order])
+        self._levels[0] = Level(ids[order].reshape(-1, 1), f[order], d[order])
         if self.max_itemset_size == 1:
             return
 
         # ---- batch-local dense ids of the surviving items (order preserving) ----------------
-        survivors = self.levels[0].items[:, 0]
+        survivors = self._levels[0].items[:, 0]
         m = int(survivors.shape[0])
         local = np.full(top, -1, dtype=np.int64)
         local[survivors] = np.arange(m, dtype=np.int64)
@@ -229,9 +287,9 @@ class LossySummary:
         prev_keys = np.arange(m, dtype=np.int64)  # level-1 survivors in local radix
 
         for k in range(2, self.max_itemset_size + 1):
-            old = self.levels[k - 1]
+            old = self._levels[k - 1]
             if m == 0:
-                self.levels[k - 1] = Level.empty(k)
+                self._levels[k - 1] = Level.empty(k)
                 continue
             # Items that belong to some tracked (k-1)-set are the only ones a k-set can use.
             if k >= 3:
@@ -268,11 +326,11 @@ class LossySummary:
             order = np.argsort(keys, kind="stable")
             keys = keys[order]
             rows_local = _unpack_local(keys, m, k)
-            self.levels[k - 1] = Level(survivors[rows_local].astype(np.int32), f[order], d[order])
+            self._levels[k - 1] = Level(survivors[rows_local].astype(np.int32), f[order], d[order])
             prev_keys = keys
             if keys.shape[0] == 0:  # nothing of size k is tracked, so nothing larger can be
                 for j in range(k + 1, self.max_itemset_size + 1):
-                    self.levels[j - 1] = Level.empty(j)
+                    self._levels[j - 1] = Level.empty(j)
                 return
 
     # -- merging, persistence, checks -----------------------------------------------------
@@ -297,7 +355,7 @@ class LossySummary:
         s = cls(epsilon, max_itemset_size)
         s.n = int(n)
         for k in range(1, max_itemset_size + 1):
-            s.levels[k - 1] = Level(
+            s._levels[k - 1] = Level(
                 np.asarray(arrays[f"{prefix}L{k}.items"], dtype=np.int32).reshape(-1, k),
                 np.asarray(arrays[f"{prefix}L{k}.f"], dtype=np.int64),
                 np.asarray(arrays[f"{prefix}L{k}.delta"], dtype=np.int64),
@@ -323,13 +381,13 @@ class LossySummary:
             if k > 1:
                 assert (np.diff(level.items, axis=1) > 0).all(), f"L{k}: row not ascending"
             # one radix for this level and the one below, so their keys are comparable
-            radix = max(int(lv.items.max(initial=0)) for lv in self.levels[max(k - 2, 0) : k]) + 1
+            radix = max(int(lv.items.max(initial=0)) for lv in self._levels[max(k - 2, 0) : k]) + 1
             keys = pack(level.items, radix)
             order = np.lexsort(level.items.T[::-1])
             assert (order == np.arange(len(level))).all(), f"L{k}: rows not in order"
             assert (keys[1:] != keys[:-1]).all(), f"L{k}: duplicate rows"
             if k > 1:
-                prev = self.levels[k - 2]
+                prev = self._levels[k - 2]
                 prev_keys = pack(prev.items, radix) if len(prev) else prev.f[:0]
                 for drop in range(k):
                     sub = np.delete(level.items, drop, axis=1)

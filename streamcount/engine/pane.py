@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from streamcount.engine.counters import LossySummary
+from streamcount.engine.counters import LossySummary, Summary
 
 __all__ = ["Pane"]
 
@@ -47,7 +47,7 @@ class Pane:
 
     def __init__(self, index: int, epsilon: float, max_itemset_size: int) -> None:
         self.index = int(index)
-        self.summary = LossySummary(epsilon, max_itemset_size)
+        self.summary: Summary = LossySummary(epsilon, max_itemset_size)
         self.closed = False
         self.first_seq = 0  # of counted transactions; 0 while none
         self.last_seq = 0
