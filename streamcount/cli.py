@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import logging
 import sys
 import typing
 from collections.abc import Sequence
@@ -17,7 +18,7 @@ from typing import Any
 from streamcount import __version__
 from streamcount.errors import StreamcountError
 
-__all__ = ["format_from_path", "main"]
+__all__ = ["build_parser", "main", "setup_logging"]
 
 #: (section, key, type) of every setting that has a command-line option
 SETTING_OPTIONS: tuple[tuple[str, str, type], ...] = (
@@ -83,25 +84,38 @@ def config_from_args(args: argparse.Namespace, extra: dict[str, object] | None =
     return apply_overrides(config, overrides) if overrides else config
 
 
-_SUFFIX_FORMATS = {".jsonl": "jsonl", ".ndjson": "jsonl", ".json": "jsonl", ".csv": "csv"}
+class _JsonFormatter(logging.Formatter):
+    def format(self, record: logging.LogRecord) -> str:
+        return json.dumps(
+            {
+                "time": self.formatTime(record),
+                "level": record.levelname,
+                "logger": record.name,
+                "message": record.getMessage(),
+            }
+        )
 
 
-def format_from_path(path: str) -> str | None:
-    """The format a file name implies (``orders.jsonl.gz`` is JSON lines), or ``None``.
-
-    >>> format_from_path("orders.jsonl.gz"), format_from_path("lines.csv"), format_from_path("x")
-    ('jsonl', 'csv', None)
-    """
-    name = path.lower().removesuffix(".gz")
-    return next((fmt for suffix, fmt in _SUFFIX_FORMATS.items() if name.endswith(suffix)), None)
+def setup_logging(level: str, fmt: str) -> None:
+    """Log to stderr (``text`` or ``json`` lines); the one place handlers are installed."""
+    handler = logging.StreamHandler(sys.stderr)
+    if fmt == "json":
+        handler.setFormatter(_JsonFormatter())
+    else:
+        handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
+    root = logging.getLogger("streamcount")
+    root.handlers[:] = [handler]
+    root.setLevel(level)
+    root.propagate = False
 
 
 def _cmd_replay(args: argparse.Namespace) -> int:
+    from streamcount.intake.formats import format_for_path
     from streamcount.replay import replay_file
 
     extra: dict[str, object] = {}
     if args.set__input__format is None and not args.config:
-        implied = format_from_path(args.path)
+        implied = format_for_path(args.path)
         if implied is not None:  # without --format, a .jsonl or .csv name decides
             extra["input.format"] = implied
     config = config_from_args(args, extra)
@@ -123,9 +137,23 @@ def _cmd_check_config(args: argparse.Namespace) -> int:
 
 
 def _cmd_run(args: argparse.Namespace) -> int:
-    from streamcount.service.loop import run_main
+    """``streamcount run``: build the config from the file and flags, then run."""
+    from streamcount.service.loop import Service
 
-    return run_main(args)
+    extra: dict[str, object] = {}
+    if args.source is not None:
+        extra["input.source"] = [s.strip() for s in args.source.split(",") if s.strip()]
+    if args.input is not None:
+        extra["input.path"] = args.input
+    if args.listen is not None:
+        extra["server.listen"] = args.listen
+    if args.checkpoint_dir is not None:
+        extra["checkpoint.checkpoint_dir"] = args.checkpoint_dir
+    if args.no_follow:
+        extra["input.follow"] = False
+    config = config_from_args(args, extra)
+    setup_logging(config.logging.level, config.logging.format)
+    return Service(config, fresh=args.fresh).run()
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
@@ -166,7 +194,12 @@ def build_parser() -> argparse.ArgumentParser:
     rp.set_defaults(func=_cmd_replay)
 
     run = sub.add_parser("run", help="the long-running service")
-    run.add_argument("--input", metavar="PATH", help="file to follow, or - for stdin (input.path)")
+    run.add_argument(
+        "--source",
+        metavar="NAMES",
+        help="where records come from, comma-separated: file, stdin, http (input.source)",
+    )
+    run.add_argument("--input", metavar="PATH", help="the file to follow (input.path)")
     run.add_argument("--listen", metavar="HOST:PORT", help="HTTP listener (server.listen)")
     run.add_argument("--checkpoint-dir", metavar="DIR", help="checkpoint.checkpoint_dir")
     run.add_argument(

@@ -16,6 +16,7 @@ Messages name what was wrong (the dotted key, argument or record position), show
 from __future__ import annotations
 
 __all__ = [
+    "REASONS",
     "CheckpointError",
     "ConfigError",
     "InputError",
@@ -23,6 +24,21 @@ __all__ = [
     "SinkError",
     "StreamcountError",
 ]
+
+
+#: Every reason a record or transaction is set aside, with what it means: the one list read by
+#: the decoders, the engine, the dead-letter file, the metric's ``reason`` label and the docs.
+REASONS: dict[str, str] = {
+    "malformed": "not valid JSON or CSV",
+    "bad_encoding": "bytes that are not valid text in input.encoding",
+    "too_long": "a record longer than input.max_record_bytes",
+    "too_many_items": "more distinct items than engine.max_basket_items",
+    "missing_field": "a required field or column is missing",
+    "wrong_type": "a field of the wrong type (items not a list, a bad timestamp...)",
+    "empty": "a transaction with no items (a blank basket line is not a record)",
+    "too_late": "an event time whose pane has already closed",
+    "too_early": "an event time more than input.max_future_seconds ahead of the clock",
+}
 
 
 class StreamcountError(Exception):
@@ -60,9 +76,7 @@ class ParseError(InputError):
     ----------
     reason:
         A short machine-readable reason, used as the ``reason`` label of
-        ``streamcount_records_rejected_total`` (``malformed``, ``bad_encoding``, ``too_long``,
-        ``too_many_items``, ``missing_field``, ``wrong_type``, ``too_late``, ``too_early``,
-        ``empty``).
+        ``streamcount_records_rejected_total``: one of :data:`REASONS`.
     offset:
         Where the record starts in its source (byte offset for files, line number for others),
         or ``None`` when unknown.
@@ -73,6 +87,8 @@ class ParseError(InputError):
     def __init__(
         self, reason: str, detail: str, *, offset: int | None = None, raw: bytes | str = b""
     ) -> None:
+        if reason not in REASONS:
+            raise ValueError(f"ParseError reason {reason!r} is not one of {sorted(REASONS)}")
         self.reason = reason
         self.detail = detail
         self.offset = offset

@@ -19,24 +19,34 @@ from __future__ import annotations
 import gc
 import sys
 import time
-from collections import Counter
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from typing import Any, TextIO
 
 from streamcount.config.settings import Config
 from streamcount.engine.engine import Engine
+from streamcount.intake.bulk import iter_batches
+from streamcount.intake.formats import make_decoder
+from streamcount.intake.records import Decoded
+from streamcount.pipeline import Pipeline
+from streamcount.rules.derive import derive_rules
 
-__all__ = ["REPORT_PARTS", "ReplayResult", "replay_chunks", "replay_file"]
+__all__ = ["REPORT_PARTS", "ReplayResult", "replay_decoded", "replay_file"]
 
 REPORT_PARTS = ("itemsets", "rules", "alerts")
 
 
 @dataclass
 class ReplayResult:
+    """The JSON report, the pipeline that produced it and the alerts raised, in order."""
+
     report: dict[str, Any]
-    engine: Engine
+    pipeline: Pipeline
     alerts: list[dict[str, Any]] = field(default_factory=list)
+
+    @property
+    def engine(self) -> Engine:
+        return self.pipeline.engine
 
 
 class _Progress:
@@ -61,41 +71,30 @@ class _Progress:
         self.stream.flush()
 
 
-def replay_chunks(
-    chunks: Iterable[Any],
+def replay_decoded(
+    parts_in: Iterable[Decoded],
     config: Config,
     *,
     report: Iterable[str] = ("itemsets",),
     progress: TextIO | None = None,
     on_alert: Callable[[dict[str, Any]], None] | None = None,
 ) -> ReplayResult:
-    """Run the engine (and, if asked, rules and alerts) over parsed chunks.
-
-    Each chunk has ``items`` (list of baskets), ``ts`` (list or ``None``) and ``errors``
-    (records the parser rejected, each with a ``reason``).
-    """
+    """Run the pipeline (with rules and alerts when the report asks for them) over decoded
+    transactions, then report on the final window."""
     parts = set(report)
     unknown = parts - set(REPORT_PARTS)
     if unknown:
         raise ValueError(f"--report: unknown part(s) {sorted(unknown)}; choose from {REPORT_PARTS}")
+    pipeline = Pipeline(config, alerts="alerts" in parts)
     alerts: list[dict[str, Any]] = []
-    if "alerts" in parts:
-        from streamcount.alerts.monitor import RuleMonitor
 
-        monitor = RuleMonitor(config.rules, config.alerts)
+    def collect(records: list[dict[str, Any]]) -> None:
+        alerts.extend(records)
+        if on_alert is not None:
+            for record in records:
+                on_alert(record)
 
-        def on_close(eng: Engine) -> None:
-            fired, _ = monitor.evaluate_close(eng, recent_panes=config.alerts.recent_panes)
-            for alert in fired:
-                record = alert.as_dict()
-                alerts.append(record)
-                if on_alert is not None:
-                    on_alert(record)
-
-        engine = Engine(config.engine, on_pane_closed=on_close)
-    else:
-        engine = Engine(config.engine)
-    rejected: Counter[str] = Counter()
+    pipeline.on_alerts(collect)
     bar = _Progress(progress)
     # The loop builds short-lived lists of strings (no reference cycles: parse errors come
     # without tracebacks); the cyclic collector would only rescan them, at about a fifth of
@@ -103,32 +102,45 @@ def replay_chunks(
     collecting = gc.isenabled()
     gc.disable()
     try:
-        for chunk in chunks:
-            for err in chunk.errors:
-                rejected[err.reason] += 1
-            if chunk.items:
-                result = engine.add(chunk.items, chunk.ts)
-                rejected.update(result.rejected_by_reason)
-            bar.update(engine.transactions_seen)
+        for decoded in parts_in:
+            pipeline.add(decoded)
+            bar.update(pipeline.engine.transactions_seen)
     finally:
         if collecting:
             gc.enable()
-    engine.flush()
+    pipeline.flush()
+    engine = pipeline.engine
     bar.update(engine.transactions_seen, final=True)
     snap = engine.snapshot()
     out: dict[str, Any] = {"window": snap.window_dict()}
     if "itemsets" in parts:
         out["itemsets"] = [s.as_dict() for s in snap.frequent(config.rules.min_support)]
     if "rules" in parts:
-        # the rules that hold on the reported window (the alert state machine's confirmation
-        # and hysteresis are about changes over time; the report is about this window)
-        from streamcount.rules.derive import derive_rules
-
+        # the rules that hold on the reported window (the alert state machine is about
+        # changes over time; the report is about this window)
         out["rules"] = [r.as_dict() for r in derive_rules(snap, config.rules)]
     if "alerts" in parts:
         out["alerts"] = alerts
-    out["input"] = {"transactions": engine.transactions_seen, "rejected": dict(rejected)}
-    return ReplayResult(out, engine, alerts)
+    out["input"] = {
+        "transactions": engine.transactions_seen,
+        "rejected": dict(pipeline.rejected_counts),
+    }
+    return ReplayResult(out, pipeline, alerts)
+
+
+def decode_file(path: str, config: Config) -> Iterable[Decoded]:
+    """``path`` decoded in ``config.input.format``, batch by batch; orders still open at the
+    end of the file (CSV) close into the last part."""
+    decoder = make_decoder(
+        config.input,
+        config.engine.max_basket_items,
+        require_ts=config.engine.window_seconds is not None,
+    )
+    for batch in iter_batches(path, max_record_bytes=config.input.max_record_bytes):
+        yield decoder.decode(batch)
+    tail = decoder.close_all()
+    if tail:
+        yield Decoded.from_transactions(tail, source="file", timed=True)
 
 
 def replay_file(
@@ -139,9 +151,4 @@ def replay_file(
     progress: TextIO | None = sys.stderr,
 ) -> ReplayResult:
     """Read ``path`` (``.gz`` transparently, ``-`` for stdin) in ``config.input.format``."""
-    from streamcount.intake.formats import iter_file_chunks
-
-    chunks = iter_file_chunks(
-        path, config.input.format, config.input, config.engine.max_basket_items
-    )
-    return replay_chunks(chunks, config, report=report, progress=progress)
+    return replay_decoded(decode_file(path, config), config, report=report, progress=progress)

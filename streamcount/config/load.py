@@ -46,6 +46,7 @@ from streamcount.errors import ConfigError
 
 __all__ = [
     "FINGERPRINT_KEYS",
+    "RETIRED_KEYS",
     "apply_overrides",
     "check_config_main",
     "config_from_mapping",
@@ -141,11 +142,35 @@ def _listen_ok(listen: str) -> bool:
     return True
 
 
+def _source_names() -> tuple[str, ...]:
+    from streamcount.intake.sources import SOURCES  # the registry imports the settings
+
+    return tuple(SOURCES)
+
+
+def _format_names() -> tuple[str, ...]:
+    from streamcount.intake.formats import FORMATS
+
+    return tuple(FORMATS)
+
+
 _NON_EMPTY: _Check = (lambda v: v != "", "must not be empty")
 
 _RULES: dict[str, tuple[_Check, ...]] = {
-    "input.path": (_NON_EMPTY,),
-    "input.format": (_one_of("basket", "jsonl", "csv"),),
+    "input.source": (
+        (
+            lambda v: all(name in _source_names() for name in v),
+            "each must be one of " + ", ".join(repr(n) for n in _source_names()),
+        ),
+    ),
+    "input.path": (
+        _NON_EMPTY,
+        (
+            lambda v: v != "-",
+            "standard input is a source of its own: set input.source: stdin (--source stdin)",
+        ),
+    ),
+    "input.format": (_one_of(*_format_names()),),
     "input.start_at": (_one_of("beginning", "end"),),
     "input.poll_interval_seconds": (_above(0),),
     "input.max_record_bytes": (_at_least(1),),
@@ -233,6 +258,8 @@ _NORMALISE: dict[str, Callable[[Any], Any]] = {"logging.level": str.upper}
 
 
 def _type_name(tp: Any) -> str:
+    if typing.get_origin(tp) is tuple:
+        return "a list of names"
     return "null" if tp is type(None) else getattr(tp, "__name__", str(tp))
 
 
@@ -248,6 +275,16 @@ def _check_type(key: str, value: Any, hint: Any) -> Any:
             return None
         return _fail(key, value, f"must not be null (expected {wanted})")
     for tp in options:
+        if typing.get_origin(tp) is tuple:
+            # a list of names; one name alone stands for a list of one
+            items = [value] if isinstance(value, str) else value
+            if not isinstance(items, list | tuple) or not all(isinstance(v, str) for v in items):
+                return _fail(key, value, "must be a name or a list of names")
+            if not items:
+                return _fail(key, value, "must name at least one")
+            if len(set(items)) != len(items):
+                return _fail(key, value, "names each one once")
+            return tuple(items)
         if tp is bool and isinstance(value, bool):
             return value
         if tp is int and isinstance(value, int) and not isinstance(value, bool):
@@ -301,6 +338,14 @@ def _unknown_key_rule(path: str, known: list[str]) -> str:
     return "unknown key; known keys here: " + ", ".join(known)
 
 
+#: Keys that existed once, with what replaced them: an old config gets a message naming the
+#: new key instead of "unknown key". Every entry is also listed in CHANGELOG.md.
+RETIRED_KEYS: dict[str, str] = {
+    "input.http_ingest": "was replaced by input.source: add 'http' to it, e.g. "
+    "input.source: [file, http] (or input.source: http for HTTP ingest alone)",
+}
+
+
 def _build(cls: type, data: object, prefix: str) -> Any:
     section = prefix.rstrip(".") or "<top level>"
     if data is None:
@@ -312,6 +357,8 @@ def _build(cls: type, data: object, prefix: str) -> Any:
     for key in data:
         if not isinstance(key, str) or key not in names:
             path = f"{prefix}{key}"
+            if path in RETIRED_KEYS:
+                _fail(path, data[key], RETIRED_KEYS[path])
             _fail(path, data[key], _unknown_key_rule(path, names))
     values: dict[str, Any] = {}
     for name in names:
@@ -393,12 +440,14 @@ def _cross_checks(cfg: Config) -> None:
             hook.max_backoff_seconds,
             f"must be >= sinks.webhook.backoff_seconds ({hook.backoff_seconds:g})",
         )
-    if cfg.input.http_ingest and cfg.server.listen is None:
+    if "http" in cfg.input.source and cfg.server.listen is None:
         _fail(
-            "input.http_ingest",
-            True,
-            "needs server.listen set (HTTP ingest is served by the listener)",
+            "input.source",
+            list(cfg.input.source),
+            "'http' needs server.listen set (HTTP ingest is served by the listener)",
         )
+    if "file" in cfg.input.source and cfg.input.path is None:
+        _fail("input.path", None, "input.source 'file' needs the path of the file to follow")
 
 
 def _window_panes(cfg: Config) -> int:
@@ -543,6 +592,8 @@ def apply_overrides(config: Config, overrides: Mapping[str, object]) -> Config:
     data = config_to_mapping(config)
     known = _all_keys(Config)
     for path, value in overrides.items():
+        if path in RETIRED_KEYS:
+            raise ConfigError(path, value, RETIRED_KEYS[path])
         if path not in known:
             close = difflib.get_close_matches(path, known, n=1, cutoff=0.6)
             hint = f"did you mean {close[0]!r}?" if close else "see config/default.yaml"
@@ -580,9 +631,7 @@ def fingerprint(config: Config) -> str:
 def describe(config: Config) -> str:
     """One line for the start-up log: source, window, derived error bound, thresholds, outputs."""
     inp, eng, rules = config.input, config.engine, config.rules
-    source = inp.path if inp.path is not None else "none"
-    if inp.http_ingest:
-        source += " + HTTP ingest"
+    source = " + ".join(f"file {inp.path}" if name == "file" else name for name in inp.source)
     if eng.window_seconds is not None and eng.pane_seconds is not None:
         window = (
             f"window {eng.window_seconds:g}s in {_window_panes(config)} panes "

@@ -66,7 +66,10 @@ class CsvConfig:
 class InputConfig:
     """Where transactions come from and how they are read."""
 
-    #: a file to follow, ``-`` for standard input, or ``null`` for HTTP ingest only
+    #: where records come from: one name or a list of them (file | stdin | http); several
+    #: run at once, each with its own position in the checkpoint
+    source: tuple[str, ...] = ("file",)
+    #: the file the ``file`` source follows
     path: str | None = None
     format: str = "basket"  # basket | jsonl | csv
     #: keep reading appended lines (``false``: stop at end of file)
@@ -76,8 +79,7 @@ class InputConfig:
     poll_interval_seconds: float = 0.2
     max_record_bytes: int = 65536
     encoding: str = "utf-8"
-    #: accept transactions over HTTP at POST /v1/transactions
-    http_ingest: bool = False
+    #: largest body POST /v1/transactions accepts (the ``http`` source)
     max_body_bytes: int = 1048576
     #: events stamped more than this many seconds ahead of the wall clock are set aside
     #: (too_early) so one bad clock cannot close every pane; null: no check

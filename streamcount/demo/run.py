@@ -37,7 +37,7 @@ from streamcount.config.settings import (
 )
 from streamcount.demo.generator import Drift, GeneratorParams, SyntheticFeed
 from streamcount.demo.shop import SHOP_NAME
-from streamcount.intake.sources import RawRecord
+from streamcount.intake.records import RecordBatch
 
 __all__ = ["BUNDLE", "DEMO_TRANSACTIONS", "PROMOTION", "demo_config", "demo_main"]
 
@@ -95,6 +95,9 @@ class PacedFeedSource:
     Event timestamps are the release times, so the service's event lag stays near zero.
     """
 
+    name = "demo"
+    ingest = None
+
     def __init__(self, feed: SyntheticFeed, rate: float, *, clock: Any = time.monotonic) -> None:
         self._it: Iterator[tuple[str, ...]] = feed.transactions()
         self.rate = rate
@@ -104,17 +107,20 @@ class PacedFeedSource:
         self.released = 0
         self.offset = 0
         self.exhausted = False
+        self.caught_up = False
 
-    def read(self, max_records: int = 10000, timeout: float = 0.0) -> list[RawRecord]:
+    def read(self, max_records: int = 10000, timeout: float = 0.0) -> list[RecordBatch]:
         if self.exhausted:
             return []
         due = max_records
         if self.rate > 0:
             due = min(max_records, int((self.clock() - self.started) * self.rate) - self.released)
             if due <= 0:
+                self.caught_up = True
                 time.sleep(min(timeout, 1.0 / self.rate))
                 return []
-        out: list[RawRecord] = []
+        self.caught_up = False
+        out: list[bytes] = []
         for _ in range(due):
             try:
                 items = next(self._it)
@@ -126,13 +132,21 @@ class PacedFeedSource:
             line = json.dumps(
                 {"id": f"q-{self.released:07d}", "ts": round(ts, 3), "items": list(items)}
             ).encode()
-            end = self.offset + len(line) + 1
-            out.append(RawRecord(line, self.offset, end))
-            self.offset = end
-        return out
+            out.append(line)
+        if not out:
+            return []
+        batch = RecordBatch.from_lines(out, start=self.offset, source=self.name)
+        self.offset = int(batch.end_offset or self.offset)
+        return [batch]
 
-    def position(self) -> dict[str, Any]:
-        return {"offset": self.offset}
+    def position(self) -> Any:
+        return None  # a generated feed is not resumed
+
+    def acknowledge(self, position: object) -> None:
+        return None
+
+    def drain(self) -> list[RecordBatch]:
+        return []
 
     def close(self) -> None:
         self.exhausted = True
@@ -213,7 +227,7 @@ def demo_main(args: argparse.Namespace) -> int:
     config = demo_config(args.listen)
     source = PacedFeedSource(demo_feed(args.seed, total), rate)
     console = ConsoleSink(out, as_json=args.json, status_line=tty)
-    service = Service(config, source=source, extra_sinks=(console,))
+    service = Service(config, sources=[source], extra_sinks=(console,))
     bound = service.start_server()
     say = (lambda text: print(text, file=sys.stderr)) if args.json else print
     pace = f"{rate:,.0f} orders/s" if rate > 0 else "as fast as it goes"
@@ -229,29 +243,23 @@ def demo_main(args: argparse.Namespace) -> int:
     say("Warm-up: no alerts until the first window (6,000 orders) is full.")
     started = time.monotonic()
     last_status = 0.0
-    try:
-        import signal
 
-        signal.signal(signal.SIGTERM, service.request_stop)
-        signal.signal(signal.SIGINT, service.request_stop)
-        service._ready = True
-        while not service._stop.is_set():
-            service.turn(timeout=0.05)
-            now = time.monotonic()
-            if source.exhausted:
-                break
-            if not args.forever and now - started > args.duration + 30:
-                break  # a slow machine: stop anyway, the summary says how far it got
-            if now - last_status >= (0.25 if tty else 5.0):
-                last_status = now
-                line = _status_line(service, now - started)
-                if tty:
-                    out.write("\r\033[K" + line)
-                    out.flush()
-                elif not args.json:
-                    print(line)
-    finally:
-        service.shutdown()
+    def on_turn(svc: Service) -> bool:
+        nonlocal last_status
+        now = time.monotonic()
+        if not args.forever and now - started > args.duration + 30:
+            return False  # a slow machine: stop anyway, the summary says how far it got
+        if now - last_status >= (0.25 if tty else 5.0):
+            last_status = now
+            line = _status_line(svc, now - started)
+            if tty:
+                out.write("\r\033[K" + line)
+                out.flush()
+            elif not args.json:
+                print(line)
+        return True
+
+    service.run(on_turn=on_turn, turn_timeout=0.05)
     if tty:
         out.write("\r\033[K")
     _summary(service, console, time.monotonic() - started, say)
@@ -259,7 +267,7 @@ def demo_main(args: argparse.Namespace) -> int:
 
 
 def _status_line(service: Any, elapsed: float) -> str:
-    st = service.status()
+    st = service.api.status()
     window = st["window"]
     fill = window["transactions"] / service.config.engine.window_size
     rate = st["transactions_seen"] / max(elapsed, 1e-9)
@@ -270,8 +278,7 @@ def _status_line(service: Any, elapsed: float) -> str:
 
 
 def _summary(service: Any, console: ConsoleSink, elapsed: float, say: Any) -> None:
-    service._publish()
-    st = service.status()
+    st = service.api.status()
     w = st["window"]
     kinds = Counter(r["kind"] for r in console.records)
     say(
@@ -280,7 +287,7 @@ def _summary(service: Any, console: ConsoleSink, elapsed: float, say: Any) -> No
         f"{w['max_error']} orders."
     )
     say("Alerts: " + ", ".join(f"{kinds.get(k, 0)} {k}" for k in ("emerged", "surged", "faded")))
-    rules = service.rules("lift", 5, None, None, None)["rules"]
+    rules = service.api.rules("lift", 5, None, None, None)["rules"]
     if rules:
         say("Active rules now (top 5 by lift):")
         for r in rules:

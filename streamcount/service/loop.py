@@ -1,84 +1,81 @@
-"""The long-running service: source -> decoder -> engine -> rules/alerts -> sinks, with the
-HTTP listener, metrics, dead-letter file and checkpoints around it. Wiring only.
+"""The long-running service: sources -> decoders -> pipeline -> sinks, with the HTTP listener,
+metrics, dead-letter file and checkpoints around it. Wiring only.
 
-One loop owns all mutable state. Each turn reads what the source has (up to a batch),
-decodes it (bad records go to the dead-letter file and ``streamcount_records_rejected_total``),
-hands the transactions to the engine in one call, and publishes an immutable view for the HTTP
-threads. Rules and alerts are evaluated inside the engine's pane-close callback, so they see
-the window exactly at each close. A checkpoint (engine, decoder, rule states, source offset,
-all taken between two turns, so consistent) is written every ``checkpoint_interval_seconds``
-and at shutdown; after a crash the service resumes at the saved offset, so a followed file is
-counted exactly once.
+One loop owns all mutable state. Each turn reads what the sources have, decodes it (one
+decoder per source), hands it to the :class:`~streamcount.pipeline.Pipeline` (bad records go
+to the dead-letter file and ``streamcount_records_rejected_total``) and publishes an immutable
+view for the HTTP threads. Rules and alerts are evaluated inside the pipeline at each pane
+close. A checkpoint (pipeline, decoders, every source's position, all taken between two turns,
+so consistent) is written every ``checkpoint_interval_seconds`` and at shutdown; after it, each
+source is told it may acknowledge what the checkpoint holds. After a crash the service resumes
+at the saved positions, so a followed file is counted exactly once.
 """
 
 from __future__ import annotations
 
-import argparse
-import json
 import logging
-import os
-import queue
 import signal
-import sys
 import threading
 import time
-from collections import Counter, deque
+from collections import Counter
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
 from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, generate_latest
 
 from streamcount import __version__
-from streamcount.alerts.monitor import RuleMonitor
 from streamcount.alerts.sinks import Sink, SinkFanout, build_sinks
 from streamcount.config.load import describe, fingerprint, fingerprint_settings
 from streamcount.config.settings import Config
-from streamcount.engine.engine import Engine
-from streamcount.engine.snapshot import EngineStatistics, WindowSnapshot
-from streamcount.errors import CheckpointError, InputError, ParseError
+from streamcount.engine.snapshot import WindowSnapshot
+from streamcount.errors import CheckpointError, InputError
 from streamcount.intake.deadletter import DeadLetterFile
-from streamcount.intake.formats import (
-    BasketDecoder,
-    JsonlDecoder,
-    decode_basket_records,
-    decode_raw,
-    make_decoder,
-)
-from streamcount.intake.sources import FollowedFile, IterableSource, RawRecord, StdinSource
-from streamcount.rules.derive import Rule
+from streamcount.intake.formats import Decoder, make_decoder
+from streamcount.intake.records import Decoded, RecordBatch
+from streamcount.intake.sources import SOURCES, Source, build_sources
+from streamcount.pipeline import Pipeline
+from streamcount.service.api import ServiceApi, View
 from streamcount.service.checkpoint import load_latest_checkpoint, save_checkpoint
 from streamcount.service.metrics import Metrics, RuleSample, ServiceState
 
-__all__ = ["Service", "run_main"]
+__all__ = ["STATE_VERSION", "Service"]
 
 logger = logging.getLogger(__name__)
 
-_READ_RECORDS = 20000  # records taken from the source per turn
+#: version of the checkpoint's contents (the container has its own format version)
+STATE_VERSION = 2
+
+_READ_RECORDS = 20000  # records taken from the sources per turn
 _PUBLISH_SECONDS = 0.5  # the HTTP view is refreshed at most this often (and at pane close)
 
 
-@dataclass(frozen=True, slots=True)
-class _View:
-    """What the HTTP threads read: built by the loop, never changed afterwards."""
+@dataclass(slots=True)
+class _Input:
+    """One source with its own decoder."""
 
-    window: WindowSnapshot
-    statistics: EngineStatistics
-    rules: tuple[Rule, ...]
-    alerts: tuple[dict[str, Any], ...]
-    status: dict[str, Any] = field(default_factory=dict)
-    #: the window the rules were last evaluated on (at the last pane close)
-    rules_window: dict[str, Any] | None = None
-    #: the panes (index, counted) the window was summed from
-    window_key: tuple[tuple[int, int], ...] = ()
+    source: Source
+    decoder: Decoder
 
 
 class Service:
     """streamcount's service: build it from a :class:`Config`, then :meth:`run` (blocking).
 
-    ``source`` replaces the configured input (tests and the demo pass an in-memory one);
-    ``extra_sinks`` receive every alert record too; ``clock`` gives wall time (event lag,
-    checkpoint timing) and is the only place wall time is read.
+    Parameters
+    ----------
+    config:
+        The validated configuration.
+    fresh:
+        Ignore existing checkpoints and start over.
+    registry:
+        Where the metrics are registered (a new one by default).
+    sources:
+        Replace the configured sources (the demo and tests pass in-memory ones).
+    extra_sinks:
+        Receive every alert record too.
+    clock:
+        Wall time (event lag, the future-time guard, checkpoint stamps); the only place it
+        is read.
     """
 
     def __init__(
@@ -87,7 +84,7 @@ class Service:
         *,
         fresh: bool = False,
         registry: CollectorRegistry | None = None,
-        source: Any | None = None,
+        sources: list[Source] | None = None,
         extra_sinks: tuple[Sink, ...] = (),
         clock: Callable[[], float] = time.time,
     ) -> None:
@@ -95,52 +92,53 @@ class Service:
         self.clock = clock
         self.registry = registry if registry is not None else CollectorRegistry()
         self._stop = threading.Event()
-        # HTTP ingest -> loop: (baskets, timestamps, records the HTTP decoder rejected)
-        self._ingest: queue.Queue[tuple[list[list[str]], list[float | None], list[ParseError]]] = (
-            queue.Queue(maxsize=1000)
-        )
         self._fingerprint = fingerprint(config)
         self._last_checkpoint_unix: float | None = None
         self._last_checkpoint_mono = time.monotonic()
         self._last_publish = 0.0
         self._unpublished = False  # counted since the view was last built
-        self._last_turn = time.monotonic()
-        self._alerts: deque[dict[str, Any]] = deque(maxlen=max(1, config.alerts.history))
-        self._alert_counts: Counter[str] = Counter()
-        #: records set aside since the state began, by reason (decoder and engine alike)
-        self._rejected_counts: Counter[str] = Counter()
-        self._ready = False
-        self._rules_window: dict[str, Any] | None = None
         self.turns = 0
 
-        self.decoder = make_decoder(
-            config.input,
-            config.engine.max_basket_items,
-            require_ts=config.engine.window_seconds is not None,
-        )
-        self.monitor = RuleMonitor(config.rules, config.alerts)
-        self.engine = Engine(config.engine, on_pane_closed=self._on_pane_closed)
+        self.sinks = SinkFanout((*build_sinks(config.sinks).sinks, *extra_sinks))
+        self.pipeline = Pipeline(config, sinks=self.sinks, clock=clock)
+        self.pipeline.on_alerts(self._alerts_raised)
         restored = None if fresh else self._restore()
-        self.source = source if source is not None else self._open_source(restored)
-        self.source_name = (
-            "memory" if source is not None else ("stdin" if config.input.path == "-" else "file")
-        )
+        positions = (restored or {}).get("sources") or {}
+        built = sources if sources is not None else build_sources(config, positions)
+        self.inputs = [_Input(s, self._decoder_for(s.name)) for s in built]
+        for item in self.inputs:
+            state = ((restored or {}).get("decoders") or {}).get(item.source.name)
+            if state:
+                item.decoder.load_state(state)
         self.dead_letter = DeadLetterFile(config.input.dead_letter_path)
-
-        configured = build_sinks(config.sinks)
-        self.sinks = SinkFanout((*configured.sinks, *extra_sinks))
-
         self.metrics = Metrics(
             self.registry,
-            statistics=lambda: self._view.statistics,
+            statistics=lambda: self.api.view.statistics,
             state=self._service_state,
             top_rules=config.metrics.top_rules,
         )
-        self._view = self._build_view()
+        ingest = next((i.source.ingest for i in self.inputs if i.source.ingest), None)
+        self.api = ServiceApi(
+            self._build_view(None),
+            metrics_payload=lambda: (generate_latest(self.registry), CONTENT_TYPE_LATEST),
+            min_support=config.rules.min_support,
+            ingest=ingest,
+            ingest_timeout_seconds=config.server.request_timeout_seconds,
+            stale_seconds=30.0 + config.input.poll_interval_seconds,
+        )
         self.server: Any = None
-        self._server_thread: threading.Thread | None = None
 
     # -- set-up ------------------------------------------------------------------------------
+
+    def _decoder_for(self, source_name: str) -> Decoder:
+        spec = SOURCES.get(source_name)
+        fmt = spec.format if spec is not None else None  # e.g. HTTP ingest is JSON lines
+        return make_decoder(
+            self.config.input,
+            self.config.engine.max_basket_items,
+            require_ts=self.config.engine.window_seconds is not None,
+            fmt=fmt,
+        )
 
     def _restore(self) -> dict[str, Any] | None:
         directory = self.config.checkpoint.checkpoint_dir
@@ -153,51 +151,29 @@ class Service:
             logger.info("no checkpoint in %s; starting fresh", directory)
             return None
         meta, arrays = loaded
-        try:
-            self.engine = Engine.from_state(
-                self.config.engine, meta["engine"], arrays, on_pane_closed=self._on_pane_closed
+        if meta.get("state_version") != STATE_VERSION:
+            found = meta.get("state_version", 1)
+            raise CheckpointError(
+                f"the checkpoint in {directory} holds state version {found!r} (written by an "
+                f"earlier streamcount); this version reads state version {STATE_VERSION}. "
+                "Start with --fresh to discard it (counting starts again from the next record), "
+                "or keep running the version that wrote it"
             )
-            self.decoder.load_state(meta.get("decoder") or {})
-            self.monitor.load_state(meta.get("monitor") or {})
+        try:
+            self.pipeline.load_state(meta["pipeline"], arrays)
         except (KeyError, ValueError, TypeError) as exc:
             raise CheckpointError(
                 f"checkpoint in {directory} cannot be restored: {exc}; start with --fresh to "
                 "discard it"
             ) from exc
-        self._alert_counts.update(meta.get("alert_counts", {}))
-        self._rejected_counts.update(meta.get("rejected_counts", {}))
-        for record in meta.get("alerts", []):
-            self._alerts.append(record)
         self._last_checkpoint_unix = float(meta.get("written_at", self.clock()))
         logger.info(
             "checkpoint restored from %s: %d transactions seen, resuming at %s",
             directory,
-            self.engine.transactions_seen,
-            meta.get("source"),
+            self.pipeline.engine.transactions_seen,
+            meta.get("sources"),
         )
         return meta
-
-    def _open_source(self, restored: Mapping[str, Any] | None) -> Any:
-        cfg = self.config.input
-        if cfg.path is None:
-            if not cfg.http_ingest:
-                raise InputError(
-                    "input.path = None: no input; set input.path (a file or -) or "
-                    "input.http_ingest: true"
-                )
-            return IterableSource([])
-        if cfg.path == "-":
-            return StdinSource(max_record_bytes=cfg.max_record_bytes)
-        kwargs: dict[str, Any] = {
-            "poll_interval_seconds": cfg.poll_interval_seconds,
-            "max_record_bytes": cfg.max_record_bytes,
-            "start_at": cfg.start_at,
-            "follow": cfg.follow,
-        }
-        position = (restored or {}).get("source")
-        if position:
-            return FollowedFile.from_position(cfg.path, position, **kwargs)
-        return FollowedFile(cfg.path, **kwargs)
 
     # -- the loop ----------------------------------------------------------------------------
 
@@ -206,9 +182,12 @@ class Service:
         self._stop.set()
 
     def start_server(self) -> tuple[str, int] | None:
+        """Start the HTTP listener (``server.listen``); returns the bound address."""
         listen = self.config.server.listen
         if not listen:
             return None
+        import os
+
         from streamcount.service.server import start_server
 
         token = None
@@ -220,12 +199,12 @@ class Service:
                     "variable is not set or empty"
                 )
         limit = self.config.server.max_request_bytes
-        if self.config.input.http_ingest:
+        if self.api.ingest_enabled():
             # input.max_body_bytes caps the bodies of POST /v1/transactions
             limit = min(limit, self.config.input.max_body_bytes)
-        self.server, self._server_thread = start_server(
+        self.server, _ = start_server(
             listen,
-            self,
+            self.api,
             token=token,
             max_request_bytes=limit,
             request_timeout_seconds=self.config.server.request_timeout_seconds,
@@ -234,111 +213,66 @@ class Service:
         logger.info("listening on http://%s:%d (metrics at /metrics)", host, port)
         return str(host), int(port)
 
-    def run(self, *, install_signals: bool = True) -> int:
-        """Run until stopped (signal, :meth:`request_stop`) or a finite input ends."""
+    def run(
+        self,
+        *,
+        install_signals: bool = True,
+        on_turn: Callable[[Service], bool] | None = None,
+        turn_timeout: float | None = None,
+    ) -> int:
+        """Run until stopped (signal, :meth:`request_stop`, ``on_turn`` returning False) or
+        every source has ended; then count what is pending and write the final checkpoint.
+
+        ``on_turn`` is called after every turn (the demo draws its status line there);
+        ``turn_timeout`` replaces ``input.poll_interval_seconds`` as the wait for records.
+        """
+        timeout = self.config.input.poll_interval_seconds if turn_timeout is None else turn_timeout
         if install_signals and threading.current_thread() is threading.main_thread():
             signal.signal(signal.SIGTERM, self.request_stop)
             signal.signal(signal.SIGINT, self.request_stop)
         if self.server is None:
             self.start_server()
         logger.info("streamcount %s started: %s", __version__, describe(self.config))
-        self._ready = True
+        self.api.set_ready(True)
         clean = False
         try:
             while not self._stop.is_set():
-                self.turn(timeout=self.config.input.poll_interval_seconds)
-                if self._finished():
-                    # count the last partial batch, as replay does at the end of a file
-                    self.engine.flush()
+                self.turn(timeout=timeout)
+                if all(i.source.exhausted for i in self.inputs):
+                    self._finish_inputs()
                     logger.info("input exhausted; stopping")
+                    break
+                if on_turn is not None and not on_turn(self):
                     break
             clean = True
         finally:
             self.shutdown(clean=clean)
         return 0
 
-    def _finished(self) -> bool:
-        if not getattr(self.source, "exhausted", False) or not self._ingest.empty():
-            return False
-        return not self.config.input.follow or self.source_name == "stdin"
+    def turn(self, timeout: float = 0.0) -> int:
+        """One turn of the loop: read every source, decode, count, publish, maybe checkpoint.
 
-    def turn(self, timeout: float = 0.0, *, read_source: bool = True) -> int:
-        """One turn of the loop: read, decode, count, publish, maybe checkpoint."""
+        With one source, waits up to ``timeout`` seconds for records; with several, polls
+        each and waits only when none had anything.
+        """
         started = time.perf_counter()
-        self._last_turn = time.monotonic()
-        records: list[RawRecord] = (
-            self.source.read(max_records=_READ_RECORDS, timeout=timeout) if read_source else []
-        )
-        baskets: list[list[str]] = []
-        stamps: list[float | None] = []
-        origin: list[RawRecord | None] = []
-        rejected: Counter[str] = Counter()
-        if isinstance(self.decoder, BasketDecoder):
-            # stateless and timestamp-free: decode the whole read in one pass
-            baskets, origins, errors = decode_basket_records(self.decoder, records)
-            origin.extend(origins)
-            stamps = [None] * len(baskets)
-            for exc in errors:
-                self._reject(exc, rejected)
-        else:
-            for rec in records:
-                try:
-                    txs = decode_raw(self.decoder, rec, self.config.input.max_record_bytes)
-                except ParseError as exc:
-                    self._reject(exc, rejected)
-                    continue
-                for tx in txs:
-                    baskets.append(list(tx.items))
-                    stamps.append(tx.ts)
-                    origin.append(rec)
-        if self.config.input.format == "csv":
-            latest = max((s for s in stamps if s is not None), default=None)
-            due = self.decoder.flush_due(latest) if latest is not None else []
-            if getattr(self.source, "exhausted", False) and not self.config.input.follow:
-                due = due + self.decoder.flush_all()
-            for tx in due:
-                baskets.append(list(tx.items))
-                stamps.append(tx.ts)
-                origin.append(None)
-        # an exhausted source (HTTP ingest only) returns at once: wait on the ingest queue
-        # instead, or the loop would spin
-        exhausted = not records and getattr(self.source, "exhausted", False)
-        wait = timeout if exhausted and self.config.input.http_ingest else 0.0
-        while True:
-            try:
-                if wait > 0:
-                    more, more_ts, more_errors = self._ingest.get(timeout=wait)
-                    wait = 0.0
-                else:
-                    more, more_ts, more_errors = self._ingest.get_nowait()
-            except queue.Empty:
-                break
-            for exc in more_errors:
-                self._reject(exc, rejected, source="http")
-            baskets.extend(more)
-            stamps.extend(more_ts)
-            origin.extend([None] * len(more))
-        accepted = 0
-        limit = self.config.input.max_future_seconds
-        if baskets and limit is not None and any(t is not None for t in stamps):
-            baskets, stamps, origin = self._drop_future(baskets, stamps, origin, limit, rejected)
-        if baskets:
-            result = self.engine.add(baskets, stamps)
-            accepted = result.accepted
-            for rej in result.rejections:
-                rec = origin[rej.index]
-                raw = rec.data if rec is not None else " ".join(baskets[rej.index]).encode()
-                self._reject(
-                    ParseError(rej.reason, rej.detail, offset=rec.offset if rec else None, raw=raw),
-                    rejected,
-                )
-        if records or baskets or rejected:
+        self.api.beat()
+        accepted, rejected, seen = 0, Counter[str](), 0
+        wait = timeout if len(self.inputs) == 1 else 0.0
+        for item in self.inputs:
+            for batch in item.source.read(max_records=_READ_RECORDS, timeout=wait):
+                seen += len(batch)
+                a, r = self._count(item, batch)
+                accepted += a
+                rejected.update(r)
+        if not seen and len(self.inputs) > 1 and timeout > 0:
+            self._stop.wait(timeout)
+        if seen or rejected:
             self.dead_letter.flush()
             self.metrics.observe_batch(accepted, rejected, time.perf_counter() - started)
+            self._unpublished = True
         self.turns += 1
         now = time.monotonic()
-        if baskets or rejected:
-            self._unpublished = True
         if self._unpublished and now - self._last_publish >= _PUBLISH_SECONDS:
             self._publish()
         self._observe_sinks()
@@ -347,53 +281,37 @@ class Service:
             self.checkpoint()
         return accepted
 
-    def _drop_future(
-        self,
-        baskets: list[list[str]],
-        stamps: list[float | None],
-        origin: list[RawRecord | None],
-        limit: float,
-        rejected: Counter[str],
-    ) -> tuple[list[list[str]], list[float | None], list[RawRecord | None]]:
-        """Set aside transactions stamped more than ``limit`` seconds ahead of the clock."""
-        horizon = self.clock() + limit
-        ahead = [i for i, t in enumerate(stamps) if t is not None and t > horizon]
-        if not ahead:
-            return baskets, stamps, origin
-        for i in ahead:
-            rec = origin[i]
-            self._reject(
-                ParseError(
-                    "too_early",
-                    f"event time {stamps[i]!r} is more than input.max_future_seconds={limit:g} "
-                    f"ahead of the clock ({horizon - limit:.0f}); check the sender's clock",
-                    offset=rec.offset if rec is not None else None,
-                    raw=rec.data if rec is not None else " ".join(baskets[i]).encode(),
-                ),
-                rejected,
-            )
-        drop = set(ahead)
-        keep = [i for i in range(len(baskets)) if i not in drop]
-        return [baskets[i] for i in keep], [stamps[i] for i in keep], [origin[i] for i in keep]
+    def _count(self, item: _Input, batch: RecordBatch) -> tuple[int, Counter[str]]:
+        """Decode one batch, release the orders it closes, count; dead-letter what is set
+        aside; tell the batch's sender (HTTP ingest) what became of it."""
+        decoded = item.decoder.decode(batch)
+        if decoded.ts is not None:
+            latest = max((t for t in decoded.ts if t is not None), default=None)
+            if latest is not None:
+                due = item.decoder.close_due(latest)
+                if due:
+                    decoded.extend(Decoded.from_transactions(due, source=batch.source))
+        intake = self.pipeline.add(decoded)
+        for error in intake.rejected:
+            self.dead_letter.write(error, source=batch.source)
+        if batch.on_done is not None:
+            batch.on_done(intake.accepted, intake.rejected)
+        return intake.accepted, intake.by_reason()
 
-    def _reject(self, exc: ParseError, rejected: Counter[str], source: str | None = None) -> None:
-        rejected[exc.reason] += 1
-        self._rejected_counts[exc.reason] += 1
-        self.dead_letter.write(exc, source=source or self.source_name)
+    def _finish_inputs(self) -> None:
+        """Every source has ended: close what the decoders hold and count the last batch."""
+        for item in self.inputs:
+            tail = item.decoder.close_all()
+            if tail:
+                decoded = Decoded.from_transactions(tail, source=item.source.name)
+                for error in self.pipeline.add(decoded).rejected:
+                    self.dead_letter.write(error, source=item.source.name)
+        self.pipeline.flush()
+        self._unpublished = True
 
-    def _on_pane_closed(self, engine: Engine) -> None:
-        fired, window = self.monitor.evaluate_close(
-            engine, recent_panes=self.config.alerts.recent_panes
-        )
-        self._rules_window = window.window_dict()
-        records = [a.as_dict() for a in fired]
-        if records:
-            self._alerts.extend(records)
-            counts = Counter(str(r["kind"]) for r in records)
-            self._alert_counts.update(counts)
-            self.metrics.observe_alerts(counts)
-            self.sinks.emit_all(records)
-        self._publish(window)
+    def _alerts_raised(self, records: list[dict[str, Any]]) -> None:
+        self.metrics.observe_alerts(Counter(str(r["kind"]) for r in records))
+        self._publish(self.pipeline.last_close)
 
     def _observe_sinks(self) -> None:
         stats = self.sinks.stats_by_sink()
@@ -404,56 +322,53 @@ class Service:
 
     # -- published view ----------------------------------------------------------------------
 
-    def _build_view(self, window: WindowSnapshot | None = None) -> _View:
+    def _build_view(self, previous: View | None, window: WindowSnapshot | None = None) -> View:
+        engine = self.pipeline.engine
+        key = self._window_key()
         if window is None:
             # the window changes only when a batch is counted; statistics change with every
             # transaction buffered, so a view is rebuilt without re-summing unchanged panes
-            previous = getattr(self, "_view", None)
-            if previous is not None and previous.window_key == self._window_key():
+            if previous is not None and previous.window_key == key:
                 window = previous.window
             else:
-                window = self.engine.snapshot()
-        stats = self.engine.statistics()
-        rules = tuple(self.monitor.active_rules)
+                window = engine.snapshot()
+        stats = engine.statistics()
+        monitor = self.pipeline.monitor
+        rules = tuple(monitor.active_rules) if monitor is not None else ()
+        rules_window = self.pipeline.rules_window
         status = {
             "version": __version__,
             "window": window.window_dict(),
             "transactions_seen": stats.transactions_seen,
-            "rejected": dict(self._rejected_counts),
+            "rejected": dict(self.pipeline.rejected_counts),
             "buffered_transactions": stats.buffered_transactions,
             "tracked_itemsets": {str(k + 1): n for k, n in enumerate(stats.tracked_itemsets)},
             "held_bytes": stats.held_bytes,
             "live_panes": stats.live_panes,
             "window_panes": stats.window_panes,
-            "warm": self.engine.window_full,
+            "warm": engine.window_full,
             "active_rules": len(rules),
-            "alerts": dict(self._alert_counts),
+            "alerts": dict(self.pipeline.alert_counts),
             "vocabulary_items": stats.vocabulary_items,
             "last_checkpoint_unix": self._last_checkpoint_unix,
             "max_event_ts": stats.max_event_ts,
-            "rules_window": self._rules_window,
+            "rules_window": rules_window,
+            "sources": [i.source.name for i in self.inputs],
         }
-        return _View(
-            window,
-            stats,
-            rules,
-            tuple(self._alerts),
-            status,
-            self._rules_window,
-            self._window_key(),
-        )
+        alerts = tuple(self.pipeline.alert_history)
+        return View(window, stats, rules, alerts, status, rules_window, key)
 
     def _window_key(self) -> tuple[tuple[int, int], ...]:
         """What the window's counts depend on: each live pane and how much of it is counted."""
-        return tuple((p.index, p.counted) for p in self.engine.window.panes.values())
+        return tuple((p.index, p.counted) for p in self.pipeline.engine.window.panes.values())
 
     def _publish(self, window: WindowSnapshot | None = None) -> None:
-        self._view = self._build_view(window)
+        self.api.publish(self._build_view(self.api.view, window))
         self._last_publish = time.monotonic()
         self._unpublished = False
 
     def _service_state(self) -> ServiceState:
-        view = self._view
+        view = self.api.view
         lag = None
         if view.statistics.max_event_ts is not None:
             lag = max(0.0, self.clock() - view.statistics.max_event_ts)
@@ -468,23 +383,25 @@ class Service:
 
     # -- checkpoints and shutdown -------------------------------------------------------------
 
-    def checkpoint(self) -> None:
-        """Write the whole state atomically; a failure is logged and counted, never fatal."""
+    def checkpoint(self) -> bool:
+        """Write the whole state atomically; then let each source acknowledge what it holds.
+
+        A failure is logged and counted, never fatal while running; returns whether it worked.
+        """
         directory = self.config.checkpoint.checkpoint_dir
         if not directory:
-            return
-        engine_meta, arrays = self.engine.state()
+            return True
+        pipeline_meta, arrays = self.pipeline.state()
         now = self.clock()
+        positions = {i.source.name: i.source.position() for i in self.inputs}
         meta = {
-            "engine": engine_meta,
-            "decoder": self.decoder.state_dict(),
-            "monitor": self.monitor.state_dict(),
-            "source": self.source.position() if self.source_name == "file" else None,
-            "alerts": list(self._alerts)[-100:],
-            "alert_counts": dict(self._alert_counts),
-            "rejected_counts": dict(self._rejected_counts),
+            "state_version": STATE_VERSION,
+            "pipeline": pipeline_meta,
+            "decoders": {i.source.name: i.decoder.state_dict() for i in self.inputs},
+            "sources": positions,
             "written_at": now,
         }
+        ok = False
         try:
             path = save_checkpoint(
                 directory,
@@ -497,178 +414,46 @@ class Service:
             logger.warning("checkpoint to %s failed: %s", directory, exc)
             self.metrics.observe_checkpoint(False, now)
         else:
+            ok = True
             self._last_checkpoint_unix = now
             self.metrics.observe_checkpoint(True, now)
             self._unpublished = True  # /v1/status shows the checkpoint time
-            logger.info("checkpoint written: %s (seq %d)", path, self.engine.next_seq - 1)
+            logger.info("checkpoint written: %s (seq %d)", path, self.pipeline.engine.next_seq - 1)
+            for item in self.inputs:
+                item.source.acknowledge(positions[item.source.name])
         self._last_checkpoint_mono = time.monotonic()
+        return ok
 
     def shutdown(self, *, clean: bool = True) -> None:
-        """Stop serving, count what HTTP ingest already acknowledged, write the final
-        checkpoint and release everything.
+        """Stop serving, count what the sources already accepted from outside (HTTP ingest
+        bodies), write the final checkpoint and release everything.
 
         After an unexpected error (``clean=False``) no checkpoint is written: the state may be
         half-updated, so the last good checkpoint is kept and a restart re-reads from it.
         """
-        self._ready = False
-        if self.server is not None:  # no new ingest from here on
+        self.api.set_ready(False)
+        if self.server is not None:  # no new requests from here on
             self.server.shutdown()
             self.server.server_close()
         if clean:
-            while not self._ingest.empty():
-                self.turn(read_source=False)
+            self._drain()
             self.checkpoint()
-            self._publish()
         else:
             logger.warning("stopping after an error; the last good checkpoint is kept")
+        self._publish()
         self.sinks.close(timeout=5.0)
         self.dead_letter.close()
-        self.source.close()
-        logger.info("stopped after %d transactions", self.engine.transactions_seen)
+        for item in self.inputs:
+            item.source.close()
+        logger.info("stopped after %d transactions", self.pipeline.engine.transactions_seen)
 
-    # -- ApiBackend (called from HTTP threads; reads only the published view) ------------------
+    def _drain(self) -> None:
+        """Count the batches sources hold for senders already answered or waiting."""
+        for item in self.inputs:
+            for batch in item.source.drain():
+                self._count(item, batch)
+        self.dead_letter.flush()
 
-    def ingest_enabled(self) -> bool:
-        return bool(self.config.input.http_ingest)
-
-    def metrics_payload(self) -> tuple[bytes, str]:
-        return generate_latest(self.registry), CONTENT_TYPE_LATEST
-
-    def healthy(self) -> bool:
-        return time.monotonic() - self._last_turn < 30.0 + self.config.input.poll_interval_seconds
-
-    def ready(self) -> bool:
-        return self._ready
-
-    def status(self) -> dict[str, Any]:
-        return self._view.status
-
-    def itemsets(self, min_support: float | None, size: int | None, limit: int) -> dict[str, Any]:
-        view = self._view
-        support = self.config.rules.min_support if min_support is None else min_support
-        out = []
-        for s in view.window.frequent(support, sizes=None if size is None else [size]):
-            out.append(s.as_dict())
-            if len(out) >= limit:
-                break
-        return {"window": view.window.window_dict(), "min_support": support, "itemsets": out}
-
-    def rules(
-        self,
-        sort: str,
-        limit: int,
-        min_confidence: float | None,
-        min_lift: float | None,
-        min_support: float | None,
-    ) -> dict[str, Any]:
-        view = self._view
-        chosen = [
-            r
-            for r in view.rules
-            if (min_confidence is None or r.confidence.value >= min_confidence)
-            and (min_lift is None or r.lift.value >= min_lift)
-            and (min_support is None or r.support.value >= min_support)
-        ]
-        keys = {
-            "lift": lambda r: r.lift.value,
-            "confidence": lambda r: r.confidence.value,
-            "support": lambda r: r.support.value,
-        }
-        if sort not in keys:
-            raise InputError(f"sort = {sort!r}: must be one of {sorted(keys)}")
-        chosen.sort(key=keys[sort], reverse=True)
-        return {
-            # rules are evaluated at pane close: this is the window they were measured on
-            "window": view.rules_window or view.window.window_dict(),
-            "rules": [r.as_dict() for r in chosen[:limit]],
-        }
-
-    def alerts(self, since: int | None, limit: int) -> dict[str, Any]:
-        items = [a for a in self._view.alerts if since is None or int(a["seq"]) > since]
-        return {"alerts": items[-limit:]}
-
-    def ingest(self, body: bytes, content_type: str) -> dict[str, Any]:
-        """Decode a JSON object or NDJSON body now (in the HTTP thread); count it next turn.
-
-        Rejected lines go to the loop too, which dead-letters and counts them (the HTTP
-        threads never write the dead-letter file themselves).
-        """
-        if not self.ingest_enabled():
-            raise InputError("HTTP ingest is off (input.http_ingest: false)")
-        decoder = JsonlDecoder(
-            self.config.input.jsonl,
-            self.config.engine.max_basket_items,
-            self.config.input.max_record_bytes,
-            self.config.input.encoding,
-        )
-        lines = [ln for ln in body.splitlines() if ln.strip()]
-        if not lines:
-            raise InputError("empty body: send one JSON object or NDJSON lines")
-        baskets: list[list[str]] = []
-        stamps: list[float | None] = []
-        errors = []
-        rejected: list[ParseError] = []
-        offset = 0
-        for n, line in enumerate(lines, start=1):
-            try:
-                for tx in decoder.feed(line, offset, offset + len(line)):
-                    baskets.append(list(tx.items))
-                    stamps.append(tx.ts)
-            except ParseError as exc:
-                errors.append({"line": n, "reason": exc.reason, "detail": exc.detail})
-                rejected.append(exc)
-            offset += len(line) + 1
-        try:
-            self._ingest.put((baskets, stamps, rejected), timeout=5.0)
-        except queue.Full:
-            raise InputError("ingest queue is full; retry later") from None
-        if errors and not baskets:
-            first = errors[0]
-            raise InputError(
-                f"no valid transaction in the body; line {first['line']}: {first['reason']}: "
-                f"{first['detail']}"
-            )
-        return {"accepted": len(baskets), "rejected": errors}
-
-
-class _JsonFormatter(logging.Formatter):
-    def format(self, record: logging.LogRecord) -> str:
-        return json.dumps(
-            {
-                "time": self.formatTime(record),
-                "level": record.levelname,
-                "logger": record.name,
-                "message": record.getMessage(),
-            }
-        )
-
-
-def setup_logging(level: str, fmt: str) -> None:
-    handler = logging.StreamHandler(sys.stderr)
-    if fmt == "json":
-        handler.setFormatter(_JsonFormatter())
-    else:
-        handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
-    root = logging.getLogger("streamcount")
-    root.handlers[:] = [handler]
-    root.setLevel(level)
-    root.propagate = False
-
-
-def run_main(args: argparse.Namespace) -> int:
-    """``streamcount run``: build the config from the file and flags, then run."""
-    from streamcount.cli import config_from_args
-
-    extra: dict[str, object] = {}
-    if args.input is not None:
-        extra["input.path"] = args.input
-    if args.listen is not None:
-        extra["server.listen"] = args.listen
-    if args.checkpoint_dir is not None:
-        extra["checkpoint.checkpoint_dir"] = args.checkpoint_dir
-    if args.no_follow:
-        extra["input.follow"] = False
-    config = config_from_args(args, extra)
-    setup_logging(config.logging.level, config.logging.format)
-    service = Service(config, fresh=args.fresh)
-    return service.run()
+    def positions(self) -> Mapping[str, Any]:
+        """Every source's current position, by name."""
+        return {i.source.name: i.source.position() for i in self.inputs}

@@ -1,0 +1,198 @@
+"""What flows from a source to a decoder, and from a decoder to the counting pipeline.
+
+A source hands out :class:`RecordBatch` objects: consecutive records (one line each, without
+its newline) read together, with where each starts in the source. A decoder turns a batch into
+:class:`Decoded` transactions plus the records it set aside. The same two types serve the live
+service, ``streamcount replay`` and the tests, so there is one decoding path per format.
+
+Offsets are positions in the source: byte offsets for files and standard input (of the
+decompressed stream for ``.gz`` files), and ``None`` where a source has no byte positions
+(an HTTP request body); a message-bus source numbers its messages instead.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from streamcount.errors import ParseError
+
+__all__ = ["Decoded", "RecordBatch", "Transaction", "line_offsets"]
+
+
+def line_offsets(lines: Sequence[bytes], start: int) -> np.ndarray:
+    """Start offsets of consecutive newline-terminated ``lines`` beginning at ``start``.
+
+    >>> line_offsets([b"tea jam", b"", b"scone"], 10).tolist()
+    [10, 18, 19]
+    """
+    out = np.empty(len(lines), dtype=np.int64)
+    if len(lines):
+        lengths = np.fromiter(map(len, lines), dtype=np.int64, count=len(lines))
+        out[0] = start
+        np.cumsum(lengths[:-1] + 1, out=out[1:])
+        out[1:] += start
+    return out
+
+
+@dataclass(slots=True)
+class RecordBatch:
+    """Records read together from one source, in source order.
+
+    Attributes
+    ----------
+    lines:
+        The records, each without its newline. A record cut short by the source (longer than
+        ``input.max_record_bytes``) holds its first bytes only, and ``too_long`` marks it.
+    offsets:
+        Where each record starts in the source (int64, one per record), or ``None`` when the
+        source has no positions.
+    end_offset:
+        Just after the last record (after its newline), or ``None``.
+    too_long:
+        Per record, whether the source cut it short (``None``: none was).
+    source:
+        The source's name (``file``, ``stdin``, ``http``...), written into dead letters.
+    on_done:
+        Called once the batch has been decoded and counted, with the transactions accepted
+        and the records set aside (HTTP ingest answers its request from it).
+    """
+
+    lines: list[bytes]
+    offsets: np.ndarray | None = None
+    end_offset: int | None = None
+    too_long: np.ndarray | None = None
+    source: str = "memory"
+    on_done: Callable[[int, list[ParseError]], None] | None = field(default=None, repr=False)
+
+    def __len__(self) -> int:
+        return len(self.lines)
+
+    def offset(self, i: int) -> int | None:
+        """Where record ``i`` starts, or ``None``."""
+        return None if self.offsets is None else int(self.offsets[i])
+
+    def end_of(self, i: int) -> int | None:
+        """Just after record ``i`` (after its newline), or ``None``."""
+        if self.offsets is None:
+            return None
+        if i + 1 < len(self.lines):
+            return int(self.offsets[i + 1])
+        return self.end_offset
+
+    @classmethod
+    def from_lines(
+        cls,
+        lines: Sequence[bytes | str],
+        *,
+        start: int = 0,
+        source: str = "memory",
+        max_record_bytes: int | None = None,
+    ) -> RecordBatch:
+        """A batch of whole records (tests, examples, in-memory feeds); offsets count bytes as
+        if the records were written one per line from ``start``.
+
+        >>> b = RecordBatch.from_lines(["tea jam", b"scone"])
+        >>> b.lines, b.offsets.tolist(), b.end_offset
+        ([b'tea jam', b'scone'], [0, 8], 14)
+        """
+        data = [x.encode("utf-8") if isinstance(x, str) else bytes(x) for x in lines]
+        data = [d[:-1] if d.endswith(b"\n") else d for d in data]
+        offsets = line_offsets(data, start)
+        end = start + sum(map(len, data)) + len(data)
+        too_long = None
+        if max_record_bytes is not None and any(len(d) > max_record_bytes for d in data):
+            too_long = np.array([len(d) > max_record_bytes for d in data], dtype=bool)
+            data = [d[:max_record_bytes] for d in data]
+        return cls(data, offsets, end, too_long, source)
+
+
+@dataclass(frozen=True, slots=True)
+class Transaction:
+    """One basket: the distinct items bought together, with optional time and id.
+
+    Attributes
+    ----------
+    items:
+        Distinct item names in order of first appearance.
+    ts:
+        Event time in epoch seconds, or ``None`` when the record has none.
+    id:
+        The record's id (JSON ``id_field`` or the CSV order id), always a string.
+    offset:
+        Where the record (for CSV, the first row of the order) starts in the source.
+    end_offset:
+        Just after the record (for CSV, after the last row of the order).
+    """
+
+    items: tuple[str, ...]
+    ts: float | None = None
+    id: str | None = None
+    offset: int | None = None
+    end_offset: int | None = None
+
+
+@dataclass(slots=True)
+class Decoded:
+    """Transactions decoded from one or more batches, in order, and the records set aside.
+
+    Attributes
+    ----------
+    baskets:
+        One list of distinct item names per transaction.
+    ts:
+        Per transaction event time, or ``None`` for a format without times (basket lines).
+    offsets:
+        Per transaction, where its (first) record starts in the source, or ``None`` when
+        unknown; used to dead-letter a transaction the engine sets aside.
+    errors:
+        Records set aside, each a :class:`~streamcount.errors.ParseError` with its offset.
+    source:
+        The source's name.
+    """
+
+    baskets: list[list[str]] = field(default_factory=list)
+    ts: list[float | None] | None = None
+    offsets: list[int | None] | None = None
+    errors: list[ParseError] = field(default_factory=list)
+    source: str = "memory"
+
+    def __len__(self) -> int:
+        return len(self.baskets)
+
+    @classmethod
+    def from_transactions(
+        cls, txs: Sequence[Transaction], *, source: str = "memory", timed: bool = True
+    ) -> Decoded:
+        """Transactions as a :class:`Decoded` (``timed=False`` drops the times)."""
+        return cls(
+            [list(t.items) for t in txs],
+            [t.ts for t in txs] if timed else None,
+            [t.offset for t in txs],
+            [],
+            source,
+        )
+
+    def extend(self, other: Decoded) -> None:
+        """Append ``other`` (which must agree on having times) in place."""
+        n = len(self.baskets)
+        self.baskets.extend(other.baskets)
+        if other.ts is not None or self.ts is not None:
+            self.ts = (self.ts or [None] * n) + (other.ts or [None] * len(other.baskets))
+        if other.offsets is not None or self.offsets is not None:
+            self.offsets = (self.offsets or [None] * n) + (
+                other.offsets or [None] * len(other.baskets)
+            )
+        self.errors.extend(other.errors)
+
+    def transactions(self) -> list[Transaction]:
+        """The decoded transactions as :class:`Transaction` objects."""
+        n = len(self.baskets)
+        ts = self.ts if self.ts is not None else [None] * n
+        offsets = self.offsets if self.offsets is not None else [None] * n
+        return [
+            Transaction(tuple(b), t, None, o)
+            for b, t, o in zip(self.baskets, ts, offsets, strict=True)
+        ]

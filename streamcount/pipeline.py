@@ -1,0 +1,226 @@
+"""The counting pipeline: decoded transactions in; window counts, rules and alerts out.
+
+One :class:`Pipeline` owns the engine, the rule monitor and the alert sinks, and evaluates
+every pane close the same way wherever it runs: the live service, ``streamcount replay`` and
+the demo differ only in their sources and sinks. At each pane close the monitor sees the
+window exactly as it is at that moment; the alerts it raises go to the sinks, into a bounded
+history for the API, and to the listeners registered with :meth:`Pipeline.on_alerts`.
+
+Rejections are collected in one place: :meth:`Pipeline.add` returns every record or
+transaction set aside (by the decoder, by the future-time guard, by the engine) as a
+:class:`~streamcount.errors.ParseError`, and keeps the counts by reason.
+"""
+
+from __future__ import annotations
+
+import logging
+from collections import Counter, deque
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from streamcount.alerts.monitor import RuleMonitor
+from streamcount.alerts.sinks import Sink
+from streamcount.config.settings import Config
+from streamcount.engine.engine import Engine
+from streamcount.engine.snapshot import WindowSnapshot
+from streamcount.errors import ParseError
+from streamcount.intake.records import Decoded
+
+__all__ = ["Intake", "Pipeline"]
+
+logger = logging.getLogger(__name__)
+
+#: alert records kept in a checkpoint (the API's history restarts from them)
+_CHECKPOINT_ALERTS = 100
+
+AlertListener = Callable[[list[dict[str, Any]]], None]
+
+
+@dataclass(slots=True)
+class Intake:
+    """What became of one :meth:`Pipeline.add`: transactions accepted and every record or
+    transaction set aside (each with its reason, offset and raw bytes)."""
+
+    accepted: int = 0
+    rejected: list[ParseError] = field(default_factory=list)
+    panes_closed: int = 0
+
+    def by_reason(self) -> Counter[str]:
+        """The rejections counted by reason."""
+        return Counter(e.reason for e in self.rejected)
+
+
+class Pipeline:
+    """Engine + rule monitor + alert sinks, and what happens at each pane close.
+
+    Parameters
+    ----------
+    config:
+        The whole configuration (engine, rules, alerts, input guards).
+    sinks:
+        Where alert records go (any :class:`~streamcount.alerts.sinks.Sink`, e.g. a
+        ``SinkFanout``); ``None`` keeps them in the history only.
+    alerts:
+        Evaluate rules and alerts at pane closes (``False``: counting only, as a plain
+        ``replay`` of itemsets).
+    clock:
+        Wall clock for the future-time guard (``input.max_future_seconds``); ``None`` turns
+        the guard off (replay of old files).
+    """
+
+    def __init__(
+        self,
+        config: Config,
+        *,
+        sinks: Sink | None = None,
+        alerts: bool = True,
+        clock: Callable[[], float] | None = None,
+    ) -> None:
+        self.config = config
+        self.sinks = sinks
+        self.clock = clock
+        self.engine = Engine(config.engine, on_pane_closed=self._on_pane_closed)
+        self.monitor = RuleMonitor(config.rules, config.alerts) if alerts else None
+        #: the most recent alert records, oldest first (``alerts.history`` of them)
+        self.alert_history: deque[dict[str, Any]] = deque(maxlen=max(1, config.alerts.history))
+        self.alert_counts: Counter[str] = Counter()
+        #: records and transactions set aside since the state began, by reason
+        self.rejected_counts: Counter[str] = Counter()
+        #: the window the rules were last evaluated on (at the last pane close)
+        self.last_close: WindowSnapshot | None = None
+        self._listeners: list[AlertListener] = []
+
+    # -- intake -------------------------------------------------------------------------------
+
+    def on_alerts(self, listener: AlertListener) -> None:
+        """Call ``listener`` with the records raised at each pane close that raises some."""
+        self._listeners.append(listener)
+
+    def add(self, decoded: Decoded) -> Intake:
+        """Count decoded transactions; returns what was accepted and everything set aside."""
+        out = Intake(rejected=list(decoded.errors))
+        baskets, stamps, offsets = decoded.baskets, decoded.ts, decoded.offsets
+        limit = self.config.input.max_future_seconds
+        if baskets and stamps is not None and limit is not None and self.clock is not None:
+            baskets, stamps, offsets = self._drop_future(decoded, limit, out.rejected)
+        if baskets:
+            result = self.engine.add(baskets, stamps)
+            out.accepted = result.accepted
+            out.panes_closed = result.panes_closed
+            for rej in result.rejections:
+                out.rejected.append(
+                    ParseError(
+                        rej.reason,
+                        rej.detail,
+                        offset=None if offsets is None else offsets[rej.index],
+                        raw=" ".join(baskets[rej.index]).encode("utf-8"),
+                    )
+                )
+        self.rejected_counts.update(out.by_reason())
+        return out
+
+    def _drop_future(
+        self, decoded: Decoded, limit: float, rejected: list[ParseError]
+    ) -> tuple[list[list[str]], list[float | None], list[int | None] | None]:
+        """Set aside transactions stamped more than ``limit`` seconds ahead of the clock."""
+        assert self.clock is not None and decoded.ts is not None
+        now = self.clock()
+        horizon = now + limit
+        ts = np.array(decoded.ts, dtype=np.float64)  # None becomes NaN, never ahead
+        with np.errstate(invalid="ignore"):
+            ahead = ts > horizon
+        if not ahead.any():
+            return decoded.baskets, decoded.ts, decoded.offsets
+        offsets = decoded.offsets
+        for i in np.flatnonzero(ahead).tolist():
+            rejected.append(
+                ParseError(
+                    "too_early",
+                    f"event time {decoded.ts[i]!r} is more than input.max_future_seconds="
+                    f"{limit:g} ahead of the clock ({now:.0f}); check the sender's clock",
+                    offset=None if offsets is None else offsets[i],
+                    raw=" ".join(decoded.baskets[i]).encode("utf-8"),
+                )
+            )
+        keep = np.flatnonzero(~ahead).tolist()
+        return (
+            [decoded.baskets[i] for i in keep],
+            [decoded.ts[i] for i in keep],
+            None if offsets is None else [offsets[i] for i in keep],
+        )
+
+    def count_rejected(self, errors: list[ParseError]) -> None:
+        """Count records set aside before they reached :meth:`add` (e.g. by a source)."""
+        self.rejected_counts.update(e.reason for e in errors)
+
+    def flush(self) -> None:
+        """Count every buffered transaction now (end of a finite input)."""
+        self.engine.flush()
+
+    # -- pane close ---------------------------------------------------------------------------
+
+    def _on_pane_closed(self, engine: Engine) -> None:
+        if self.monitor is None:
+            return
+        fired, window = self.monitor.evaluate_close(
+            engine, recent_panes=self.config.alerts.recent_panes
+        )
+        self.last_close = window
+        if not fired:
+            return
+        records = [a.as_dict() for a in fired]
+        self.alert_history.extend(records)
+        self.alert_counts.update(str(r["kind"]) for r in records)
+        if self.sinks is not None:
+            for record in records:
+                self.sinks.emit(record)
+        for listener in self._listeners:
+            listener(records)
+
+    # -- views --------------------------------------------------------------------------------
+
+    @property
+    def rules_window(self) -> dict[str, Any] | None:
+        """The window the rules were last evaluated on, as in every API answer."""
+        return None if self.last_close is None else self.last_close.window_dict()
+
+    def window(self) -> WindowSnapshot:
+        """The current window's counts (counted transactions)."""
+        return self.engine.snapshot()
+
+    # -- persistence --------------------------------------------------------------------------
+
+    def state(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+        """The whole counting state: engine, monitor, alert history and counts."""
+        engine_meta, arrays = self.engine.state()
+        meta = {
+            "engine": engine_meta,
+            "monitor": None if self.monitor is None else self.monitor.state_dict(),
+            "alerts": list(self.alert_history)[-_CHECKPOINT_ALERTS:],
+            "alert_counts": dict(self.alert_counts),
+            "rejected_counts": dict(self.rejected_counts),
+        }
+        return meta, arrays
+
+    def load_state(self, meta: Mapping[str, Any], arrays: dict[str, np.ndarray]) -> None:
+        """Restore what :meth:`state` returned (into a fresh pipeline of the same settings).
+
+        Raises ``KeyError``, ``ValueError`` or ``TypeError`` (or a
+        :class:`~streamcount.errors.CheckpointError`) when the state does not fit.
+        """
+        self.engine = Engine.from_state(
+            self.config.engine, meta["engine"], arrays, on_pane_closed=self._on_pane_closed
+        )
+        if self.monitor is not None:
+            self.monitor.load_state(meta.get("monitor") or {})
+        self.alert_history.clear()
+        self.alert_history.extend(meta.get("alerts", []))
+        self.alert_counts = Counter(meta.get("alert_counts", {}))
+        self.rejected_counts = Counter(meta.get("rejected_counts", {}))
+
+    def check_invariants(self) -> None:
+        """Assert the engine's invariants (the monitor's own come with the detectors)."""
+        self.engine.check_invariants()
