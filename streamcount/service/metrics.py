@@ -83,7 +83,7 @@ _GAUGES: dict[str, str] = {
     "streamcount_event_lag_seconds": (
         "Wall-clock time minus the largest event timestamp seen (absent without timestamps)."
     ),
-    "streamcount_summary_bytes": "Bytes held by the panes' count arrays and batch buffers.",
+    "streamcount_held_bytes": "Bytes held by the panes' count arrays and batch buffers.",
     "streamcount_window_panes": "Live panes (closed and open).",
     "streamcount_buffered_transactions": "Transactions received but not yet counted.",
     "streamcount_vocabulary_items": "Distinct item names interned.",
@@ -169,7 +169,7 @@ class _StateCollector(Collector):
             simple = {
                 "streamcount_window_transactions": "window_transactions",
                 "streamcount_window_max_error": "window_max_error",
-                "streamcount_summary_bytes": "bytes_held",
+                "streamcount_held_bytes": "bytes_held",
                 "streamcount_window_panes": "panes",
                 "streamcount_buffered_transactions": "buffered_transactions",
                 "streamcount_vocabulary_items": "vocabulary_size",
