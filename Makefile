@@ -5,7 +5,12 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 
-.PHONY: demo test test-fast lint fmt bench clean
+.PHONY: demo test test-fast lint fmt bench clean tools
+
+# The external programs the tests drive, each as program=Debian package. tests/tools.py holds
+# the same table (tests/test_tools.py checks the two agree).
+TOOLS := promtool=prometheus nats-server=nats-server chromium=chromium chromedriver=chromium-driver
+APT   := apt-get -o DPkg::Lock::Timeout=300 -qq
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -17,8 +22,24 @@ $(STAMP): pyproject.toml
 demo: $(STAMP)
 	$(BIN)/streamcount demo
 
+## tools: install the external programs the tests drive from Debian's packages (as root with
+## apt-get; otherwise say what is missing and carry on: those tests skip, or fail under CI=true)
+tools:
+	@PATH="$$PATH:/usr/sbin:/sbin"; missing=""; \
+	for pair in $(TOOLS); do \
+	  command -v "$${pair%%=*}" >/dev/null 2>&1 || missing="$$missing $${pair#*=}"; \
+	done; \
+	if [ -z "$$missing" ]; then exit 0; fi; \
+	if [ "$$(id -u)" = 0 ] && command -v apt-get >/dev/null 2>&1; then \
+	  echo "tools: installing Debian packages:$$missing"; \
+	  { $(APT) update && DEBIAN_FRONTEND=noninteractive $(APT) install -y --no-install-recommends $$missing; } \
+	    || echo "tools: apt-get could not install$$missing; the tests needing them will say so"; \
+	else \
+	  echo "tools: missing Debian packages:$$missing (run 'make tools' as root to install them)"; \
+	fi
+
 ## test: the whole suite, slow dataset checks included (what CI runs)
-test: $(STAMP)
+test: $(STAMP) tools
 	$(BIN)/ruff check streamcount tests bench examples
 	$(BIN)/ruff format --check streamcount tests bench examples
 	$(BIN)/python -m pytest -q

@@ -1,7 +1,9 @@
-"""Shared test settings: hypothesis profiles.
+"""Shared test settings: hypothesis profiles, the external-tool rule, the service fixture.
 
 ``STREAMCOUNT_HYPOTHESIS_PROFILE=ci`` runs more examples without a deadline; the default
-``dev`` profile keeps the suite quick on a laptop.
+``dev`` profile keeps the suite quick on a laptop. External programs (promtool, nats-server,
+Chromium) are found through :mod:`tools`, registered here as a plugin so the
+``requires_tool`` marker works everywhere.
 """
 
 from __future__ import annotations
@@ -13,6 +15,7 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
+import tools
 from hypothesis import HealthCheck, settings
 from service_helpers import ServiceRunner, service_runner
 
@@ -39,6 +42,12 @@ settings.register_profile(
     suppress_health_check=[HealthCheck.too_slow],
 )
 settings.load_profile(os.environ.get("STREAMCOUNT_HYPOTHESIS_PROFILE", "dev"))
+
+
+def pytest_configure(config: pytest.Config) -> None:
+    # the requires_tool marker and its skip-by-hand / fail-under-CI rule (tests/tools.py)
+    if not config.pluginmanager.is_registered(tools):
+        config.pluginmanager.register(tools, "streamcount-tools")
 
 
 @pytest.fixture

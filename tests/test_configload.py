@@ -21,7 +21,7 @@ from streamcount.config.load import (
     load_config,
     parse_listen,
 )
-from streamcount.config.settings import Config, EngineConfig
+from streamcount.config.settings import DEFAULT_LISTEN, DEFAULT_PORT, Config, EngineConfig
 from streamcount.errors import ConfigError
 
 CONFIG_DIR = Path(__file__).resolve().parent.parent / "config"
@@ -317,8 +317,9 @@ def test_describe_mentions_the_derived_error_bound() -> None:
 
 def test_parse_listen() -> None:
     assert parse_listen("0.0.0.0:0") == ("0.0.0.0", 0)
-    assert parse_listen("[::1]:9464") == ("::1", 9464)
-    for bad in ("9464", ":9464", "host:", "::1:80", "h:99999"):
+    assert parse_listen(f"[::1]:{DEFAULT_PORT}") == ("::1", DEFAULT_PORT)
+    assert parse_listen(DEFAULT_LISTEN) == ("127.0.0.1", DEFAULT_PORT)
+    for bad in (str(DEFAULT_PORT), f":{DEFAULT_PORT}", "host:", "::1:80", "h:99999"):
         with pytest.raises(ValueError, match=r"host:port|IPv6"):
             parse_listen(bad)
 

@@ -125,7 +125,7 @@ def test_state_gauges_read_at_scrape_time(registry: CollectorRegistry) -> None:
     assert get("streamcount_window_max_error") == 4
     assert get("streamcount_tracked_itemsets", {"size": "1"}) == 40
     assert get("streamcount_tracked_itemsets", {"size": "3"}) == 7
-    assert get("streamcount_summary_bytes") == 65536
+    assert get("streamcount_held_bytes") == 65536
     assert get("streamcount_live_panes") == 5
     assert get("streamcount_buffered_transactions") == 200
     assert get("streamcount_vocabulary_items") == 33

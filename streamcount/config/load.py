@@ -41,7 +41,7 @@ from urllib.parse import urlsplit
 
 import yaml
 
-from streamcount.config.settings import Config
+from streamcount.config.settings import DEFAULT_LISTEN, DEFAULT_PORT, Config
 from streamcount.errors import ConfigError
 
 __all__ = [
@@ -118,8 +118,10 @@ def parse_listen(listen: str) -> tuple[str, int]:
 
     Examples
     --------
-    >>> parse_listen("127.0.0.1:9464"), parse_listen("[::1]:0")
-    (('127.0.0.1', 9464), ('::1', 0))
+    >>> parse_listen(DEFAULT_LISTEN) == ("127.0.0.1", DEFAULT_PORT)
+    True
+    >>> parse_listen("[::1]:0")
+    ('::1', 0)
     """
     host, sep, port = listen.rpartition(":")
     if not sep or not host or not port.isdigit():
@@ -127,7 +129,9 @@ def parse_listen(listen: str) -> tuple[str, int]:
     if host.startswith("[") and host.endswith("]"):
         host = host[1:-1]
     elif ":" in host:
-        raise ValueError(f"write an IPv6 address in brackets, e.g. [::1]:9464, got {listen!r}")
+        raise ValueError(
+            f"write an IPv6 address in brackets, e.g. [::1]:{DEFAULT_PORT}, got {listen!r}"
+        )
     number = int(port)
     if not host or number > 65535:
         raise ValueError(f"expected host:port with port 0..65535, got {listen!r}")
@@ -226,7 +230,9 @@ _RULES: dict[str, tuple[_Check, ...]] = {
     "sinks.webhook.backoff_seconds": (_at_least(0),),
     "sinks.webhook.max_backoff_seconds": (_at_least(0),),
     "sinks.webhook.queue_size": (_at_least(1),),
-    "server.listen": ((_listen_ok, "must be host:port with port 0..65535, e.g. '127.0.0.1:9464'"),),
+    "server.listen": (
+        (_listen_ok, f"must be host:port with port 0..65535, e.g. {DEFAULT_LISTEN!r}"),
+    ),
     "server.token_env": (
         (
             lambda v: bool(_ENV_NAME.match(v)),

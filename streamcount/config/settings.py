@@ -15,6 +15,8 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 __all__ = [
+    "DEFAULT_LISTEN",
+    "DEFAULT_PORT",
     "MAX_TIMESTAMP",
     "AlertsConfig",
     "CheckpointConfig",
@@ -34,6 +36,14 @@ __all__ = [
 
 #: event timestamps are epoch seconds; one this large is in another unit (ms, us, ns) or garbage
 MAX_TIMESTAMP = 1e11
+
+#: streamcount's own default TCP port for /metrics and the JSON API. Unassigned in the IANA
+#: registry (10632-10799), absent from nmap's port-frequency list, outside the Prometheus
+#: exporter range 9100-9999 (fully allocated) and below the ephemeral ranges; the reasons are
+#: in CHANGELOG.md. Every config, example and doc quotes this value (tests/test_default_port.py).
+DEFAULT_PORT = 10697
+#: the default ``server.listen``: loopback only, so nothing is exposed until configured
+DEFAULT_LISTEN = f"127.0.0.1:{DEFAULT_PORT}"
 
 
 @dataclass(frozen=True, slots=True)
@@ -181,7 +191,7 @@ class ServerConfig:
     """HTTP listener for /metrics and the JSON API."""
 
     #: host:port; null disables the listener
-    listen: str | None = "127.0.0.1:9464"
+    listen: str | None = DEFAULT_LISTEN
     #: name of the environment variable holding the bearer token (the token never goes here)
     token_env: str | None = None
     max_request_bytes: int = 1048576

@@ -83,7 +83,7 @@ _GAUGES: dict[str, str] = {
     "streamcount_event_lag_seconds": (
         "Wall-clock time minus the largest event timestamp seen (absent without timestamps)."
     ),
-    "streamcount_summary_bytes": "Bytes held by the panes' count arrays and batch buffers.",
+    "streamcount_held_bytes": "Bytes held by the panes' count arrays and batch buffers.",
     "streamcount_live_panes": "Panes held (open ones, and closed ones still in the window).",
     "streamcount_buffered_transactions": "Transactions received but not yet counted.",
     "streamcount_vocabulary_items": "Distinct item names interned.",
@@ -169,7 +169,7 @@ class _StateCollector(Collector):
             simple = {
                 "streamcount_window_transactions": "window_transactions",
                 "streamcount_window_max_error": "window_max_error",
-                "streamcount_summary_bytes": "held_bytes",
+                "streamcount_held_bytes": "held_bytes",
                 "streamcount_live_panes": "live_panes",
                 "streamcount_buffered_transactions": "buffered_transactions",
                 "streamcount_vocabulary_items": "vocabulary_items",
