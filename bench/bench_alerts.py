@@ -88,7 +88,7 @@ def _overhead_child(case: dict[str, Any]) -> dict[str, Any]:
     from streamcount.intake.formats import iter_file_chunks
     from streamcount.replay import replay_chunks, replay_file
 
-    path = str(machine.DATA_DIR / "T10I4D100K.dat.gz")
+    path = str(machine.data_path("T10I4D100K.dat.gz"))
     cfg = _config(min_support=OVERHEAD_MIN_SUPPORT)
     report = tuple(case["report"])
     size = case.get("size")

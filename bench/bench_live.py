@@ -124,7 +124,8 @@ def run_parent(args: argparse.Namespace) -> int:
     tmpdir = Path(tempfile.mkdtemp(prefix="streamcount-bench-"))
     try:
         path = tmpdir / "T10I4D100K.dat"
-        with gzip.open(machine.DATA_DIR / "T10I4D100K.dat.gz", "rb") as src, path.open("wb") as dst:
+        source = machine.data_path("T10I4D100K.dat.gz")
+        with gzip.open(source, "rb") as src, path.open("wb") as dst:
             if args.size is None:
                 shutil.copyfileobj(src, dst)
             else:
@@ -196,12 +197,21 @@ def run_parent(args: argparse.Namespace) -> int:
         ]
         raw = {
             "machine": info,
-            "settings": {"size": args.size, "repeat": args.repeat},
+            "settings": {
+                "size": args.size,
+                "repeat": args.repeat,
+                "input": "tests/data/T10I4D100K.dat.gz written decompressed to "
+                "<tmpdir>/T10I4D100K.dat (a fresh temporary folder per run)",
+            },
             "results": results,
             "target": verdict,
         }
         md_path, json_path = machine.record(
-            "live", "live path vs replay (bench_live.py)", "\n".join(md), raw
+            "live",
+            "live path vs replay (bench_live.py)",
+            "\n".join(md),
+            raw,
+            places={tmpdir: "<tmpdir>"},
         )
         print(f"recorded: {md_path} and {json_path}")
     return 0

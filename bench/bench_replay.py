@@ -70,7 +70,8 @@ NAIVE_RETAIL_K3_SIZE = 20_000
 
 
 def data_path(dataset: str) -> Path:
-    return machine.DATA_DIR / f"{dataset}.dat.gz"
+    """``tests/data/<dataset>.dat.gz`` (FileNotFoundError, naming it, if it is missing)."""
+    return machine.data_path(f"{dataset}.dat.gz")
 
 
 # ---------------------------------------------------------------------------------------------

@@ -13,6 +13,7 @@ warms a cache the measured child would profit from.
 from __future__ import annotations
 
 import datetime as _dt
+import importlib.util
 import json
 import os
 import platform
@@ -31,10 +32,12 @@ __all__ = [
     "RESULTS_DIR",
     "RESULTS_MD",
     "current_rss_mb",
+    "data_path",
     "format_machine",
     "load_average",
     "machine_info",
     "peak_rss_mb",
+    "portable",
     "record",
     "run_case",
     "spread",
@@ -43,8 +46,30 @@ __all__ = [
 
 BENCH_DIR = Path(__file__).resolve().parent
 REPO_DIR = BENCH_DIR.parent
-#: the shared datasets (``T10I4D100K.dat.gz``, ``retail.dat.gz``); overridable for other hosts
-DATA_DIR = Path(os.environ.get("STREAMCOUNT_DATA_DIR") or REPO_DIR.parent / "shared" / "data")
+
+
+def _load_data_files() -> Any:
+    """``tests/data_files.py``, the one place that locates the datasets, loaded by path.
+
+    ``tests/`` is not a package and the benchmarks should not put it on ``sys.path``, so the
+    module is loaded from its file; it imports nothing from streamcount.
+    """
+    name = "_streamcount_bench_data_files"
+    spec = importlib.util.spec_from_file_location(name, REPO_DIR / "tests" / "data_files.py")
+    if spec is None or spec.loader is None:
+        raise ImportError(f"cannot load {REPO_DIR / 'tests' / 'data_files.py'}")
+    module = importlib.util.module_from_spec(spec)
+    sys.modules[name] = module
+    spec.loader.exec_module(module)
+    return module
+
+
+_data_files = _load_data_files()
+#: ``tests/data`` in this repository (``T10I4D100K.dat.gz``, ``retail.dat.gz``, ...; see its
+#: README.md for provenance and terms)
+DATA_DIR: Path = _data_files.DATA_DIR
+#: ``data_path(name)``: the path of one dataset file; a missing file raises FileNotFoundError
+data_path = _data_files.data_path
 RESULTS_MD = BENCH_DIR / "RESULTS.md"
 RESULTS_DIR = BENCH_DIR / "results"
 #: a 1-minute load average above this marks a recorded run as disturbed (2 shared cores: one
@@ -200,11 +225,77 @@ def run_case(script: Path, case: dict[str, Any], *, timeout: float | None = None
     return json.loads(lines[-1])
 
 
-def record(kind: str, title: str, body_md: str, raw: dict[str, Any]) -> tuple[Path, Path]:
+def _looks_absolute(text: str) -> bool:
+    return text.startswith(("/", "\\")) or (len(text) > 2 and text[1] == ":" and text[2] in "/\\")
+
+
+def portable(obj: Any, places: dict[Path, str] | None = None) -> Any:
+    """A copy of ``obj`` (JSON-like) with no absolute path of this machine left in its strings.
+
+    A string naming a path inside the repository becomes relative to its root
+    (``tests/data/retail.dat.gz``); one inside a key of ``places`` gets that key replaced by
+    its placeholder (e.g. a temporary folder by ``"<tmpdir>"``). Recorded results are
+    committed, and a path into one machine's home or temporary folder means nothing on another.
+
+    Parameters
+    ----------
+    obj : Any
+        Dicts, lists, tuples, strings and scalars, as recorded by :func:`record`.
+    places : dict of pathlib.Path to str, optional
+        Further folders to hide, each with the placeholder written instead.
+
+    Returns
+    -------
+    Any
+        The rewritten copy; strings that are not paths are unchanged.
+    """
+    prefixes = [(q, tag) for p, tag in (places or {}).items() for q in (p, p.resolve())]
+    prefixes += [(REPO_DIR, ""), (REPO_DIR.resolve(), "")]
+
+    def fix(value: Any) -> Any:
+        if isinstance(value, dict):
+            return {k: fix(v) for k, v in value.items()}
+        if isinstance(value, list | tuple):
+            return [fix(v) for v in value]
+        if not isinstance(value, str) or not _looks_absolute(value):
+            return value
+        path = Path(value)
+        for prefix, tag in prefixes:
+            if path == prefix or prefix in path.parents:
+                rel = path.relative_to(prefix).as_posix()
+                return f"{tag}/{rel}" if tag else rel
+        return value
+
+    return fix(obj)
+
+
+def _absolute_strings(obj: Any, where: str = "") -> list[str]:
+    if isinstance(obj, dict):
+        return [s for k, v in obj.items() for s in _absolute_strings(v, f"{where}.{k}")]
+    if isinstance(obj, list | tuple):
+        return [s for i, v in enumerate(obj) for s in _absolute_strings(v, f"{where}[{i}]")]
+    return (
+        [f"{where.lstrip('.')} = {obj!r}"] if isinstance(obj, str) and _looks_absolute(obj) else []
+    )
+
+
+def record(
+    kind: str,
+    title: str,
+    body_md: str,
+    raw: dict[str, Any],
+    places: dict[Path, str] | None = None,
+) -> tuple[Path, Path]:
     """Append a dated section to RESULTS.md and write raw JSON to results/<date>-<kind>.json.
 
-    A second run on the same day gets ``-2``, ``-3``, ... so nothing is overwritten.
+    A second run on the same day gets ``-2``, ``-3``, ... so nothing is overwritten. Paths in
+    ``raw`` are made portable first (see :func:`portable`, which ``places`` is passed to); an
+    absolute path left after that is written anyway (the figures are not thrown away) but
+    named on stderr, and ``tests/test_standalone.py`` fails until it is fixed.
     """
+    raw = portable(raw, places)
+    for leftover in _absolute_strings(raw):
+        print(f"warning: absolute path recorded in {kind} results: {leftover}", file=sys.stderr)
     info = raw.get("machine", {})
     day = _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%d")
     RESULTS_DIR.mkdir(parents=True, exist_ok=True)

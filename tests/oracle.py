@@ -9,26 +9,18 @@ Nothing here uses streamcount. Each transaction is read as a set; every ``k``-su
 from __future__ import annotations
 
 import gzip
-import os
 from collections import Counter
 from collections.abc import Hashable, Iterable, Sequence
 from itertools import combinations
-from pathlib import Path
+
+from data_files import data_path
 
 __all__ = [
-    "DATA_DIR",
     "count_itemset",
     "exact_counts",
     "exact_window_counts",
     "read_transactions",
 ]
-
-#: The shared open datasets (see its README.md): ``shared/data`` beside the repository's
-#: folder, as laid out for development and CI; ``STREAMCOUNT_DATA_DIR`` overrides it.
-DATA_DIR = Path(
-    os.environ.get("STREAMCOUNT_DATA_DIR")
-    or Path(__file__).resolve().parents[2] / "shared" / "data"
-)
 
 
 def exact_counts(
@@ -68,8 +60,8 @@ def count_itemset(baskets: Iterable[Iterable[Hashable]], itemset: Iterable[Hasha
 
 
 def read_transactions(name: str) -> list[list[str]]:
-    """A gzip basket file of the shared data: one transaction per line, whitespace split."""
-    with gzip.open(DATA_DIR / name, "rt", encoding="ascii") as fh:
+    """A gzip basket file of ``tests/data``: one transaction per line, whitespace split."""
+    with gzip.open(data_path(name), "rt", encoding="ascii") as fh:
         return [line.split() for line in fh if line.strip()]
 
 

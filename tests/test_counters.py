@@ -1,7 +1,9 @@
 """LossySummary (one pane's Lossy Counting of itemsets) against brute-force exact counts.
 
 Method: Manku & Motwani, "Approximate Frequency Counts over Data Streams", VLDB 2002; the
-batch rules and check values as restated in /work/shared/ALGORITHMS.md sections 1.1-1.3.
+batch rules and check values as restated in the team's algorithm notes (ALGORITHMS.md sections
+1.1-1.3; those notes are not part of this repository, so each check below also names the paper
+or says that it was computed).
 """
 
 from __future__ import annotations

@@ -1,7 +1,7 @@
-"""The open FIMI datasets in /work/shared/data (provenance in its README.md).
+"""The open FIMI datasets in tests/data (provenance, terms and checksums in its README.md).
 
 * whole retail / T10I4D100K in exact mode reproduce reference_counts.json (exact counts
-  computed by full enumeration, see the data README);
+  computed by full enumeration, see tests/data/README.md);
 * chess / mushroom in exact mode equal the brute-force recount of tests/oracle.py;
 * epsilon 0.001 over a 50,000-transaction window of 5,000-transaction panes keeps every
   Lossy Counting guarantee against the exact counts of that same window.
@@ -19,12 +19,13 @@ from functools import lru_cache
 
 import numpy as np
 import pytest
-from oracle import DATA_DIR, count_itemset, exact_counts, read_transactions
+from data_files import data_path
+from oracle import count_itemset, exact_counts, read_transactions
 
 from streamcount.config.settings import EngineConfig
 from streamcount.engine.engine import Engine
 
-REFERENCE = DATA_DIR / "reference_counts.json"
+REFERENCE = data_path("reference_counts.json")
 
 
 @lru_cache(maxsize=2)
@@ -106,12 +107,12 @@ def test_whole_file_exact_mode_reproduces_reference_counts(dataset: str) -> None
     ref = json.loads(REFERENCE.read_text())["datasets"][dataset]
     baskets = _data(ref["file"])
     n = len(baskets)
-    assert n == ref["transactions"]  # reference_counts.json (data README)
+    assert n == ref["transactions"]  # reference_counts.json (tests/data/README.md)
     # sizes 1-2 on the raw file
     raw = _exact_engine(baskets, 2)
     # size 3 on the file restricted to the items of pairs at >= 0.5 %: exact for every
     # itemset that can be frequent at 0.5 % or 1 % (all its pairs are frequent), and keeps
-    # the triple enumeration affordable (52.5M triple occurrences in retail, data README)
+    # the triple enumeration affordable (52.5M triple occurrences in retail, tests/data/README.md)
     pairs = raw.levels[1]
     frequent_pairs = pairs.items[pairs.count >= ref["min_count"]["0.5%"]]
     keep = {raw.item_names[j] for j in np.unique(frequent_pairs).tolist()}

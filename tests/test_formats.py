@@ -13,7 +13,7 @@ from datetime import UTC, datetime, timedelta, timezone
 from pathlib import Path
 
 import pytest
-from oracle import DATA_DIR
+from data_files import data_path
 
 from streamcount.config.settings import CsvConfig, InputConfig, JsonlConfig
 from streamcount.errors import ConfigError, InputError, ParseError
@@ -28,8 +28,6 @@ from streamcount.intake.formats import (
     make_decoder,
 )
 from streamcount.intake.sources import RawRecord
-
-DATA = DATA_DIR
 
 
 def feed_lines(decoder, lines: list[bytes]) -> tuple[list[Transaction], list[ParseError], int]:
@@ -450,9 +448,9 @@ def collect(path, fmt="basket", cfg=None, max_items=200, chunk_size=8192):
 
 
 def test_chess_has_3196_transactions_of_37_items():
-    # /work/shared/data/README.md (chess): 3,196 transactions, every one exactly 37 items,
+    # tests/data/README.md (chess): 3,196 transactions, every one exactly 37 items,
     # 75 distinct items (ids 1-75)
-    items, _, _, errors, _ = collect(DATA / "chess.dat.gz")
+    items, _, _, errors, _ = collect(data_path("chess.dat.gz"))
     assert errors == []
     assert len(items) == 3196
     assert {len(x) for x in items} == {37}
@@ -460,26 +458,26 @@ def test_chess_has_3196_transactions_of_37_items():
 
 
 def test_retail_has_88162_transactions_and_908576_occurrences():
-    # /work/shared/data/README.md (retail): 88,162 transactions, 908,576 item occurrences,
+    # tests/data/README.md (retail): 88,162 transactions, 908,576 item occurrences,
     # 16,470 distinct items, longest 76
-    items, _, _, errors, end = collect(DATA / "retail.dat.gz")
+    items, _, _, errors, end = collect(data_path("retail.dat.gz"))
     assert errors == []
     assert len(items) == 88162
     assert sum(map(len, items)) == 908576
     assert len({i for x in items for i in x}) == 16470
     assert max(map(len, items)) == 76
-    with gzip.open(DATA / "retail.dat.gz", "rb") as f:
+    with gzip.open(data_path("retail.dat.gz"), "rb") as f:
         assert end == len(f.read())
 
 
 def test_kosarak_repeat_is_read_once():
-    # /work/shared/data/README.md (kosarak_prefix): 36,682 transactions, 294,008 item
+    # tests/data/README.md (kosarak_prefix): 36,682 transactions, 294,008 item
     # occurrences counting repeats once (line 10,102 names item 86 twice), longest 699
-    items, _, _, errors, _ = collect(DATA / "kosarak_prefix.dat.gz", max_items=1000)
+    items, _, _, errors, _ = collect(data_path("kosarak_prefix.dat.gz"), max_items=1000)
     assert errors == []
     assert len(items) == 36682
     assert sum(map(len, items)) == 294008
-    with gzip.open(DATA / "kosarak_prefix.dat.gz", "rb") as f:
+    with gzip.open(data_path("kosarak_prefix.dat.gz"), "rb") as f:
         raw_line = f.read().split(b"\n")[10101].split()
     assert raw_line.count(b"86") == 2
     assert items[10101].count("86") == 1
