@@ -102,38 +102,35 @@ class Pipeline:
     def add(self, decoded: Decoded) -> Intake:
         """Count decoded transactions; returns what was accepted and everything set aside."""
         out = Intake(rejected=list(decoded.errors))
-        baskets, stamps, offsets = decoded.baskets, decoded.ts, decoded.offsets
         limit = self.config.input.max_future_seconds
-        if baskets and stamps is not None and limit is not None and self.clock is not None:
-            baskets, stamps, offsets = self._drop_future(decoded, limit, out.rejected)
-        if baskets:
-            result = self.engine.add(baskets, stamps)
+        if decoded.baskets and decoded.ts is not None and limit is not None and self.clock:
+            decoded = self._drop_future(decoded, limit, out.rejected)
+        if decoded.baskets:
+            result = self.engine.add(decoded.baskets, decoded.ts)
             out.accepted = result.accepted
             out.panes_closed = result.panes_closed
+            offsets = decoded.offsets
             for rej in result.rejections:
                 out.rejected.append(
                     ParseError(
                         rej.reason,
                         rej.detail,
                         offset=None if offsets is None else offsets[rej.index],
-                        raw=" ".join(baskets[rej.index]).encode("utf-8"),
+                        raw=decoded.raw(rej.index),
                     )
                 )
         self.rejected_counts.update(out.by_reason())
         return out
 
-    def _drop_future(
-        self, decoded: Decoded, limit: float, rejected: list[ParseError]
-    ) -> tuple[list[list[str]], list[float | None], list[int | None] | None]:
+    def _drop_future(self, decoded: Decoded, limit: float, rejected: list[ParseError]) -> Decoded:
         """Set aside transactions stamped more than ``limit`` seconds ahead of the clock."""
         assert self.clock is not None and decoded.ts is not None
         now = self.clock()
-        horizon = now + limit
         ts = np.array(decoded.ts, dtype=np.float64)  # None becomes NaN, never ahead
         with np.errstate(invalid="ignore"):
-            ahead = ts > horizon
+            ahead = ts > now + limit
         if not ahead.any():
-            return decoded.baskets, decoded.ts, decoded.offsets
+            return decoded
         offsets = decoded.offsets
         for i in np.flatnonzero(ahead).tolist():
             rejected.append(
@@ -142,14 +139,21 @@ class Pipeline:
                     f"event time {decoded.ts[i]!r} is more than input.max_future_seconds="
                     f"{limit:g} ahead of the clock ({now:.0f}); check the sender's clock",
                     offset=None if offsets is None else offsets[i],
-                    raw=" ".join(decoded.baskets[i]).encode("utf-8"),
+                    raw=decoded.raw(i),
                 )
             )
         keep = np.flatnonzero(~ahead).tolist()
-        return (
+
+        def pick(values: list[Any] | None) -> list[Any] | None:
+            return None if values is None else [values[i] for i in keep]
+
+        return Decoded(
             [decoded.baskets[i] for i in keep],
-            [decoded.ts[i] for i in keep],
-            None if offsets is None else [offsets[i] for i in keep],
+            pick(decoded.ts),
+            pick(decoded.offsets),
+            [],
+            decoded.source,
+            pick(decoded.raws),
         )
 
     def count_rejected(self, errors: list[ParseError]) -> None:

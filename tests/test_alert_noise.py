@@ -9,11 +9,10 @@ to it.
 
 from __future__ import annotations
 
-from types import SimpleNamespace
-
 from streamcount.config.settings import Config, EngineConfig
 from streamcount.demo.generator import Drift, GeneratorParams, SyntheticFeed
-from streamcount.replay import replay_chunks
+from streamcount.intake.records import Decoded
+from streamcount.replay import replay_decoded
 
 WINDOW, PANE = 50_000, 5_000
 N = 200_000
@@ -24,13 +23,11 @@ PAIR = ("item-0163", "item-0859")  # two items the seeded feed sells, rarely tog
 def _replay(drifts: tuple[Drift, ...]) -> list[dict[str, object]]:
     feed = SyntheticFeed(GeneratorParams(transactions=N, seed=1), drifts)
     baskets = [list(b) for b in feed.transactions()]
-    chunks = [
-        SimpleNamespace(items=baskets[i : i + 5000], ts=None, errors=[]) for i in range(0, N, 5000)
-    ]
+    chunks = [Decoded(baskets[i : i + 5000]) for i in range(0, N, 5000)]
     config = Config(
         engine=EngineConfig(epsilon=0.001, window_size=WINDOW, pane_size=PANE, batch_size=PANE)
     )
-    return replay_chunks(chunks, config, report=["alerts"]).report["alerts"]  # type: ignore[no-any-return]
+    return replay_decoded(chunks, config, report=["alerts"]).report["alerts"]  # type: ignore[no-any-return]
 
 
 def test_stationary_feed_raises_almost_no_alerts() -> None:

@@ -3,14 +3,15 @@
 from __future__ import annotations
 
 import json
-from dataclasses import dataclass, field
 
 import pytest
 from oracle import exact_counts, exact_window_counts
 
 from streamcount.config.settings import Config, EngineConfig, RulesConfig
 from streamcount.engine.engine import Engine
-from streamcount.replay import replay_chunks
+from streamcount.errors import ParseError
+from streamcount.intake.records import Decoded
+from streamcount.replay import replay_decoded
 
 
 def _counts(snap) -> dict[tuple[str, ...], int]:
@@ -116,27 +117,15 @@ def test_statistics_describe_the_window() -> None:
     assert (snap.first_seq, snap.last_seq, snap.max_error) == (9, 20, 3)
 
 
-# -- replay_chunks --------------------------------------------------------------------------
+# -- replay_decoded -------------------------------------------------------------------------
 
 
-@dataclass
-class _Error:
-    reason: str
-
-
-@dataclass
-class _Chunk:
-    items: list[list[str]]
-    ts: list[float] | None = None
-    errors: list[_Error] = field(default_factory=list)
-
-
-def test_replay_chunks_reports_the_last_panes() -> None:
+def test_replay_decoded_reports_the_last_panes() -> None:
     baskets = _stream(23)
     chunks = [
-        _Chunk(baskets[:7], errors=[_Error("bad_record")]),
-        _Chunk([*baskets[7:15], []]),
-        _Chunk(baskets[15:]),
+        Decoded(baskets[:7], errors=[ParseError("malformed", "a bad record")]),
+        Decoded([*baskets[7:15], []]),
+        Decoded(baskets[15:]),
     ]
     config = Config(
         engine=EngineConfig(
@@ -144,7 +133,7 @@ def test_replay_chunks_reports_the_last_panes() -> None:
         ),
         rules=RulesConfig(min_support=0.25),
     )
-    result = replay_chunks(chunks, config)
+    result = replay_decoded(chunks, config)
     report = json.loads(json.dumps(result.report))
     # 23 accepted; newest pane holds 21..23, so the window is panes 16..20 and 21..23
     assert report["window"] == {
@@ -166,5 +155,5 @@ def test_replay_chunks_reports_the_last_panes() -> None:
         assert s["support"] == pytest.approx(s["count"] / 8)
     assert report["input"] == {
         "transactions": 23,
-        "rejected": {"bad_record": 1, "empty": 1},
+        "rejected": {"malformed": 1, "empty": 1},
     }

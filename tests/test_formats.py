@@ -12,22 +12,22 @@ from dataclasses import replace
 from datetime import UTC, datetime, timedelta, timezone
 from pathlib import Path
 
+import numpy as np
 import pytest
 from data_files import data_path
 
 from streamcount.config.settings import CsvConfig, InputConfig, JsonlConfig
-from streamcount.errors import ConfigError, InputError, ParseError
+from streamcount.errors import REASONS, ConfigError, InputError, ParseError
+from streamcount.intake.bulk import BLOCK_BYTES, iter_batches
 from streamcount.intake.formats import (
-    REASONS,
+    FORMATS,
     BasketDecoder,
     CsvOrderDecoder,
     JsonlDecoder,
-    Transaction,
-    decode_raw,
-    iter_file_chunks,
+    format_for_path,
     make_decoder,
 )
-from streamcount.intake.sources import RawRecord
+from streamcount.intake.records import Decoded, RecordBatch, Transaction
 
 
 def feed_lines(decoder, lines: list[bytes]) -> tuple[list[Transaction], list[ParseError], int]:
@@ -57,13 +57,19 @@ def reason_of(decoder, record: bytes) -> ParseError:
 
 
 def test_basket_separators_duplicates_and_blank_lines():
+    # the documented rule: a line of only whitespace is not a record (skipped, not counted);
+    # a line of separators without an item is a record with no items (``empty``)
     d = BasketDecoder(max_basket_items=10)
-    out, errors, _ = feed_lines(
-        d, [b"tea,scone jam", b"", b"  , ,\t", b"jam\tjam, tea,,tea", b"milk\r"]
-    )
-    assert errors == []
+    lines = [b"tea,scone jam", b"", b"  , ,\t", b"jam\tjam, tea,,tea", b"milk\r", b" \t"]
+    out, errors, _ = feed_lines(d, lines)
+    assert [(e.reason, e.offset) for e in errors] == [("empty", 15)]
     assert [t.items for t in out] == [("tea", "scone", "jam"), ("jam", "tea"), ("milk",)]
     assert [(t.offset, t.end_offset) for t in out] == [(0, 14), (22, 40), (40, 46)]
+    # the whole-batch path gives the same transactions and the same rejection
+    whole = d.decode(RecordBatch.from_lines(lines))
+    assert whole.baskets == [list(t.items) for t in out]
+    assert whole.offsets == [0, 22, 40]
+    assert [(e.reason, e.offset) for e in whole.errors] == [("empty", 15)]
 
 
 def test_basket_too_many_items_is_never_truncated():
@@ -93,15 +99,26 @@ def test_byte_order_mark_at_start_of_file_is_dropped():
     assert d.feed("\ufefftea jam".encode(), 0, 10)[0].items == ("tea", "jam")
 
 
-def test_decode_raw_reports_records_cut_by_the_source():
-    d = BasketDecoder()
-    raw = RawRecord(b"abcd", 10, 10 + 101, too_long=True)
-    with pytest.raises(ParseError) as info:
-        decode_raw(d, raw, 4)
-    assert info.value.reason == "too_long"
-    assert info.value.offset == 10
-    assert info.value.raw == b"abcd"
-    assert decode_raw(d, RawRecord(b"tea", 0, 4), 4)[0].items == ("tea",)
+@pytest.mark.parametrize("fmt", sorted(FORMATS))
+def test_records_cut_by_the_source_are_too_long_in_every_format(fmt):
+    d = make_decoder(
+        InputConfig(
+            format=fmt, csv=CsvConfig(header=False, order_field="0", item_field="1", ts_field="2")
+        ),
+        10,
+    )
+    batch = RecordBatch(
+        [b"abcd", b"tea"],
+        np.array([10, 111], dtype=np.int64),
+        115,
+        np.array([True, False]),
+        "file",
+    )
+    out = d.decode(batch)
+    (err,) = [e for e in out.errors if e.reason == "too_long"]
+    assert err.offset == 10
+    assert err.raw == b"abcd"
+    assert "100 bytes or more" in err.detail
 
 
 # ----------------------------------------------------------------------------------- jsonl
@@ -244,9 +261,9 @@ def test_csv_groups_rows_by_order_with_header_and_quantity():
     ]
     # A starts at the first data row (after the 21-byte header) and ends after its last row
     assert (out[0].offset, out[0].end_offset) == (21, 21 + 12 + 12 + 12)
-    assert d.open_orders == 1
+    assert d.held == 1
     assert d.safe_offset(end) == end - len(b"104,C,1,milk\n")
-    (last,) = d.flush_all()
+    (last,) = d.close_all()
     assert (last.id, last.items) == ("C", ("milk",))
     assert d.safe_offset(end) == end
 
@@ -258,7 +275,7 @@ def test_csv_quantity_rules():
     assert reason_of(d, b"A,tea,1,-2").reason == "empty"
     err = reason_of(d, b"A,tea,1,two")
     assert (err.reason, "'two'" in err.detail) == ("wrong_type", True)
-    assert d.open_orders == 0  # rejected rows join no order
+    assert d.held == 0  # rejected rows join no order
 
 
 def test_csv_interleaved_orders_close_by_event_time():
@@ -277,11 +294,11 @@ def test_csv_interleaved_orders_close_by_event_time():
     )
     assert errors == []
     assert [(t.id, t.items) for t in out] == [("A", ("tea", "scone"))]
-    assert d.open_orders == 2
-    assert d.flush_due(49.0) == []
-    due = d.flush_due(50.0)
+    assert d.held == 2
+    assert d.close_due(49.0) == []
+    due = d.close_due(50.0)
     assert [(t.id, t.items, t.ts) for t in due] == [("B", ("jam", "milk"), 20.0)]
-    assert [t.id for t in d.flush_all()] == ["C"]
+    assert [t.id for t in d.close_all()] == ["C"]
 
 
 def test_csv_rows_without_time_close_on_id_change():
@@ -322,7 +339,7 @@ def test_csv_without_header_uses_column_numbers():
     d = CsvOrderDecoder(cfg)
     out, _, _ = feed_lines(d, [b"tea,1,A", b"jam,2,A"])
     assert out == []
-    assert d.flush_all()[0].items == ("tea", "jam")
+    assert d.close_all()[0].items == ("tea", "jam")
     with pytest.raises(ConfigError) as info:
         CsvOrderDecoder(CsvConfig(header=False))
     assert "input.csv.order_field" in str(info.value)
@@ -343,7 +360,7 @@ def test_csv_too_many_items_sets_the_whole_order_aside():
     )
     assert [e.reason for e in errors] == ["too_many_items", "too_many_items"]
     assert out == []  # A is dropped whole, never truncated to two items
-    assert [t.id for t in d.flush_all()] == ["B"]
+    assert [t.id for t in d.close_all()] == ["B"]
 
 
 def _csv_stream(seed: int, n_rows: int) -> list[bytes]:
@@ -369,7 +386,7 @@ def test_csv_checkpoint_by_state_dict_is_exact():
     lines = _csv_stream(seed=3, n_rows=400)
     d = CsvOrderDecoder(cfg)
     whole, _, _ = feed_lines(d, lines)
-    reference = whole + d.flush_all()
+    reference = whole + d.close_all()
 
     cut = 150
     first = CsvOrderDecoder(cfg)
@@ -383,7 +400,7 @@ def test_csv_checkpoint_by_state_dict_is_exact():
         with contextlib.suppress(ParseError):
             out += second.feed(line, pos, end)
         pos = end
-    out += second.flush_all()
+    out += second.close_all()
     assert out == reference
 
 
@@ -393,7 +410,7 @@ def test_csv_replay_from_safe_offset_reproduces_pending_orders():
     lines = [b"order_id,item,ts"] + [f"o{i // 3},p{(i * 7) % 5},{i}".encode() for i in range(30)]
     d = CsvOrderDecoder(cfg)
     whole, _, _ = feed_lines(d, lines)
-    reference = whole + d.flush_all()
+    reference = whole + d.close_all()
 
     cut = 12  # in the middle of an order
     first = CsvOrderDecoder(cfg)
@@ -409,7 +426,7 @@ def test_csv_replay_from_safe_offset_reproduces_pending_orders():
         if pos >= safe:
             out += second.feed(line, pos, end)
         pos = end
-    out += second.flush_all()
+    out += second.close_all()
     assert out == reference
 
 
@@ -431,26 +448,29 @@ def test_make_decoder_chooses_by_format_and_rejects_others():
     assert reason_of(d, b'{"items": ["abc"]}').reason == "too_long"
 
 
-# ------------------------------------------------------------------------ iter_file_chunks
+# ---------------------------------------------------------------------- bulk reading (replay)
 
 
-def collect(path, fmt="basket", cfg=None, max_items=200, chunk_size=8192):
-    items, ts, ids, errors, ends = [], [], [], [], []
-    for chunk in iter_file_chunks(str(path), fmt, cfg, max_items, chunk_size):
-        items += chunk.items
-        if chunk.ts is not None:
-            ts += chunk.ts
-            ids += chunk.ids
-        errors += chunk.errors
-        ends.append(chunk.end_offset)
+def collect(path, fmt="basket", cfg=None, max_items=200, block_bytes=BLOCK_BYTES):
+    """Decode a whole file as replay does: batches of whole lines through one decoder."""
+    cfg = replace(cfg or InputConfig(), format=fmt)
+    decoder = make_decoder(cfg, max_items)
+    out = Decoded()
+    ends = []
+    for batch in iter_batches(
+        str(path), max_record_bytes=cfg.max_record_bytes, block_bytes=block_bytes
+    ):
+        out.extend(decoder.decode(batch))
+        ends.append(batch.end_offset)
+    out.extend(Decoded.from_transactions(decoder.close_all()))
     assert ends == sorted(ends)
-    return items, ts, ids, errors, ends[-1] if ends else 0
+    return out.baskets, out.ts or [], out.errors, ends[-1] if ends else 0
 
 
 def test_chess_has_3196_transactions_of_37_items():
     # tests/data/README.md (chess): 3,196 transactions, every one exactly 37 items,
     # 75 distinct items (ids 1-75)
-    items, _, _, errors, _ = collect(data_path("chess.dat.gz"))
+    items, _, errors, _ = collect(data_path("chess.dat.gz"))
     assert errors == []
     assert len(items) == 3196
     assert {len(x) for x in items} == {37}
@@ -460,7 +480,7 @@ def test_chess_has_3196_transactions_of_37_items():
 def test_retail_has_88162_transactions_and_908576_occurrences():
     # tests/data/README.md (retail): 88,162 transactions, 908,576 item occurrences,
     # 16,470 distinct items, longest 76
-    items, _, _, errors, end = collect(data_path("retail.dat.gz"))
+    items, _, errors, end = collect(data_path("retail.dat.gz"))
     assert errors == []
     assert len(items) == 88162
     assert sum(map(len, items)) == 908576
@@ -473,7 +493,7 @@ def test_retail_has_88162_transactions_and_908576_occurrences():
 def test_kosarak_repeat_is_read_once():
     # tests/data/README.md (kosarak_prefix): 36,682 transactions, 294,008 item
     # occurrences counting repeats once (line 10,102 names item 86 twice), longest 699
-    items, _, _, errors, _ = collect(data_path("kosarak_prefix.dat.gz"), max_items=1000)
+    items, _, errors, _ = collect(data_path("kosarak_prefix.dat.gz"), max_items=1000)
     assert errors == []
     assert len(items) == 36682
     assert sum(map(len, items)) == 294008
@@ -506,19 +526,19 @@ def _junk_basket_file(path: Path, seed: int, n: int) -> list[bytes]:
     return lines
 
 
-@pytest.mark.parametrize("chunk_size", [1, 7, 8192])
-def test_bulk_basket_reading_matches_line_by_line_decoding(tmp_path, chunk_size):
+@pytest.mark.parametrize("block_bytes", [16, 257, BLOCK_BYTES])
+def test_bulk_basket_reading_matches_line_by_line_decoding(tmp_path, block_bytes):
     path = tmp_path / "junk.txt"
-    lines = _junk_basket_file(path, seed=chunk_size, n=3000)
+    lines = _junk_basket_file(path, seed=block_bytes, n=3000)
     cfg = InputConfig(max_record_bytes=60)
     oracle = BasketDecoder(max_basket_items=6, max_record_bytes=60)
     want_items, want_errors, _ = feed_lines(oracle, lines)
-    items, _, _, errors, end = collect(path, cfg=cfg, max_items=6, chunk_size=chunk_size)
+    items, _, errors, end = collect(path, cfg=cfg, max_items=6, block_bytes=block_bytes)
     assert items == [list(t.items) for t in want_items]
-    assert [(e.reason, e.offset, e.raw) for e in errors] == [
-        (e.reason, e.offset, e.raw) for e in want_errors
-    ]
-    assert {e.reason for e in errors} == {"bad_encoding", "too_long", "too_many_items"}
+    assert sorted((e.offset, e.reason, e.raw) for e in errors) == sorted(
+        (e.offset, e.reason, e.raw) for e in want_errors
+    )
+    assert {e.reason for e in errors} == {"bad_encoding", "too_long", "too_many_items", "empty"}
     assert end == path.stat().st_size
 
 
@@ -531,7 +551,7 @@ def test_gzip_and_plain_files_read_the_same(tmp_path):
     odd_name.write_bytes(gzip.compress(plain.read_bytes()))
 
     def summary(path):
-        items, _, _, errors, end = collect(path, chunk_size=64)
+        items, _, errors, end = collect(path, block_bytes=64)
         return items, [(e.reason, e.offset, e.raw) for e in errors], end
 
     a = summary(plain)
@@ -544,7 +564,7 @@ def test_line_longer_than_a_read_block_is_skipped_with_bounded_memory(tmp_path):
     path = tmp_path / "long.txt"
     long_line = b"y " * (1_300_000)  # 2.6 MB: spans several 1 MiB read blocks
     path.write_bytes(b"a b\n" + long_line + b"\nc d\n" + b"z" * 3_000_000)
-    items, _, _, errors, end = collect(path, cfg=InputConfig(max_record_bytes=100))
+    items, _, errors, end = collect(path, cfg=InputConfig(max_record_bytes=100))
     assert items == [["a", "b"], ["c", "d"]]
     assert [(e.reason, e.offset) for e in errors] == [
         ("too_long", 4),
@@ -565,21 +585,20 @@ def test_bulk_jsonl_and_csv(tmp_path):
         "{broken\n"
         '{"id": 4, "ts": 40, "items": ["d", "d"]}'
     )
-    items, ts, ids, errors, end = collect(jpath, "jsonl", chunk_size=2)
+    items, ts, errors, end = collect(jpath, "jsonl", block_bytes=16)
     assert items == [["a", "b"], ["c"], ["d"]]
     assert ts == [10.0, 20.0, 40.0]
-    assert ids == ["1", "2", "4"]
     assert [e.reason for e in errors] == ["empty", "malformed"]
     assert end == jpath.stat().st_size
 
     cpath = tmp_path / "t.csv"
     cpath.write_text("order_id,item,ts\nA,tea,1\nA,jam,2\nB,tea,3\nB,,4\nC,x,50")
     cfg = InputConfig(csv=CsvConfig(order_close_seconds=10))
-    items, ts, ids, errors, _ = collect(cpath, "csv", cfg, chunk_size=2)
-    assert list(zip(ids, items, ts, strict=True)) == [
-        ("A", ["tea", "jam"], 2.0),
-        ("B", ["tea"], 3.0),
-        ("C", ["x"], 50.0),
+    items, ts, errors, _ = collect(cpath, "csv", cfg, block_bytes=16)
+    assert list(zip(items, ts, strict=True)) == [
+        (["tea", "jam"], 2.0),
+        (["tea"], 3.0),
+        (["x"], 50.0),
     ]
     assert [e.reason for e in errors] == ["empty"]
 
@@ -587,16 +606,25 @@ def test_bulk_jsonl_and_csv(tmp_path):
 def test_bulk_reading_missing_file_names_the_path(tmp_path):
     missing = tmp_path / "nope.dat"
     with pytest.raises(InputError) as info:
-        next(iter_file_chunks(str(missing), "basket"))
+        next(iter_batches(str(missing)))
     assert str(missing) in str(info.value)
     with pytest.raises(ConfigError):
-        next(iter_file_chunks(str(missing), "parquet"))
+        make_decoder(InputConfig(), 5, fmt="parquet")
 
 
-def test_chunk_transactions_view(tmp_path):
-    path = tmp_path / "b.txt"
-    path.write_text("a b\nc\n")
-    (chunk,) = list(iter_file_chunks(str(path), "basket"))
-    assert chunk.transactions() == [Transaction(("a", "b")), Transaction(("c",))]
-    assert len(chunk) == 2
-    assert replace(chunk, items=[]).transactions() == []
+def test_decoded_transactions_view():
+    d = BasketDecoder().decode(RecordBatch.from_lines(["a b", "c"]))
+    assert d.transactions() == [Transaction(("a", "b"), offset=0), Transaction(("c",), offset=4)]
+    assert len(d) == 2
+
+
+def test_format_registry_names_suffixes_and_factories():
+    assert set(FORMATS) == {"basket", "jsonl", "csv"}
+    assert format_for_path("orders.JSONL.gz") == "jsonl"
+    assert format_for_path("lines.csv") == "csv"
+    assert format_for_path("baskets.dat") == "basket"
+    assert format_for_path("notes") is None
+    for name, spec in FORMATS.items():
+        decoder = make_decoder(InputConfig(), 5, fmt=name)
+        assert decoder.held == 0
+        assert decoder.state_dict() == {} or not spec.stateless

@@ -74,7 +74,7 @@ def _load_engine(checkpoint_dir: Path) -> tuple[Engine, dict[str, Any]] | None:
     if loaded is None:
         return None
     meta, arrays = loaded
-    return Engine.from_state(cfg.engine, meta["engine"], arrays), meta
+    return Engine.from_state(cfg.engine, meta["pipeline"]["engine"], arrays), meta
 
 
 def _table(snap: WindowSnapshot) -> dict[tuple[str, ...], tuple[int, int]]:
@@ -156,7 +156,7 @@ def test_sigkill_at_random_points_loses_and_repeats_nothing(
     state = _load_engine(checkpoints)
     assert state is not None
     engine, meta = state
-    assert meta["source"]["offset"] == len(data)
+    assert meta["sources"]["file"]["offset"] == len(data)
     _assert_same_as_replay(engine, feed)
 
 
@@ -183,7 +183,7 @@ def test_stop_signal_writes_a_final_consistent_checkpoint(
     assert state is not None
     engine, meta = state
     # consistent: the engine holds exactly the lines before the saved offset
-    offset = meta["source"]["offset"]
+    offset = meta["sources"]["file"]["offset"]
     assert engine.transactions_seen == data[:offset].count(b"\n")
     assert offset <= cut
 
@@ -251,4 +251,4 @@ def test_corrupt_checkpoint_refuses_to_start_and_fresh_starts_over(
         checkpoints, fingerprint=fingerprint(cfg), settings=fingerprint_settings(cfg)
     ) or pytest.fail("no checkpoint after --fresh")
     # started over: every line counted once, not on top of the old state
-    assert meta["engine"]["transactions_seen"] == len(lines)
+    assert meta["pipeline"]["engine"]["transactions_seen"] == len(lines)

@@ -216,8 +216,7 @@ def test_http_token_limits_errors_and_ingest(services: ServiceRunner, tmp_path: 
     service = services.start(
         {
             "input": {
-                "path": None,
-                "http_ingest": True,
+                "source": "http",
                 "format": "jsonl",
                 "max_body_bytes": 3000,
             },
@@ -301,7 +300,7 @@ def test_http_token_limits_errors_and_ingest(services: ServiceRunner, tmp_path: 
 
 def test_token_env_not_set_refuses_to_start(services: ServiceRunner) -> None:
     service = services.start(
-        {"input": {"path": None, "http_ingest": True}, "server": {"token_env": TOKEN_ENV}},
+        {"input": {"source": "http"}, "server": {"token_env": TOKEN_ENV}},
         env={TOKEN_ENV: ""},
         wait=False,
     )

@@ -452,8 +452,6 @@ def _cross_checks(cfg: Config) -> None:
             list(cfg.input.source),
             "'http' needs server.listen set (HTTP ingest is served by the listener)",
         )
-    if "file" in cfg.input.source and cfg.input.path is None:
-        _fail("input.path", None, "input.source 'file' needs the path of the file to follow")
 
 
 def _window_panes(cfg: Config) -> int:

@@ -151,6 +151,9 @@ class Decoded:
         Records set aside, each a :class:`~streamcount.errors.ParseError` with its offset.
     source:
         The source's name.
+    raws:
+        Per transaction, the record it came from (``None`` where a transaction spans records,
+        e.g. a CSV order); what the dead-letter file shows when the engine sets it aside.
     """
 
     baskets: list[list[str]] = field(default_factory=list)
@@ -158,6 +161,7 @@ class Decoded:
     offsets: list[int | None] | None = None
     errors: list[ParseError] = field(default_factory=list)
     source: str = "memory"
+    raws: list[bytes | None] | None = None
 
     def __len__(self) -> int:
         return len(self.baskets)
@@ -185,7 +189,14 @@ class Decoded:
             self.offsets = (self.offsets or [None] * n) + (
                 other.offsets or [None] * len(other.baskets)
             )
+        if other.raws is not None or self.raws is not None:
+            self.raws = (self.raws or [None] * n) + (other.raws or [None] * len(other.baskets))
         self.errors.extend(other.errors)
+
+    def raw(self, i: int) -> bytes:
+        """The record transaction ``i`` came from, or its items as a basket line."""
+        raw = None if self.raws is None else self.raws[i]
+        return raw if raw is not None else " ".join(self.baskets[i]).encode("utf-8")
 
     def transactions(self) -> list[Transaction]:
         """The decoded transactions as :class:`Transaction` objects."""

@@ -127,7 +127,7 @@ class BasketDecoder(LineDecoder):
         offsets = batch.offsets
         if [] not in parsed:
             kept_all = None if offsets is None else offsets.tolist()
-            return Decoded(parsed, None, kept_all, [], batch.source)
+            return Decoded(parsed, None, kept_all, [], batch.source, list(batch.lines))
         keep = np.fromiter(map(bool, parsed), dtype=bool, count=len(parsed))
         errors = []
         text_lines = text.split("\n")
@@ -143,4 +143,5 @@ class BasketDecoder(LineDecoder):
                 )
         baskets = [p for p in parsed if p]
         kept = None if offsets is None else offsets[keep].tolist()
-        return Decoded(baskets, None, kept, errors, batch.source)
+        raws: list[bytes | None] = [line for line, k in zip(batch.lines, keep, strict=True) if k]
+        return Decoded(baskets, None, kept, errors, batch.source, raws)

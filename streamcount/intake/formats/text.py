@@ -189,18 +189,27 @@ class LineDecoder:
     def decode(self, batch: RecordBatch) -> Decoded:
         """Every record of ``batch`` through :meth:`feed`, in order."""
         txs: list[Transaction] = []
+        raws: list[bytes | None] = []
         errors: list[ParseError] = []
         cut = batch.too_long if batch.too_long is not None else np.zeros(len(batch), dtype=bool)
         for i, line in enumerate(batch.lines):
             if cut[i]:
                 errors.append(too_long_error(batch, i, self.max_record_bytes))
                 continue
+            start = batch.offset(i)
             try:
-                txs.extend(self.feed(line, batch.offset(i), batch.end_of(i)))
+                got = self.feed(line, start, batch.end_of(i))
             except ParseError as exc:
                 errors.append(exc.with_traceback(None))  # no frame cycle kept alive
+                continue
+            txs.extend(got)
+            # a transaction made of this record alone keeps it for the dead-letter file
+            raws.extend(
+                line if t.offset == start and t.end_offset == batch.end_of(i) else None for t in got
+            )
         out = Decoded.from_transactions(txs, source=batch.source)
         out.errors = errors
+        out.raws = raws
         return out
 
     def close_due(self, event_time: float) -> list[Transaction]:

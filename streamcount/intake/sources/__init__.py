@@ -107,7 +107,12 @@ class SourceSpec:
 def _file(config: Config, position: Any) -> Source:
     cfg = config.input
     if cfg.path is None:
-        raise ConfigError("input.path", None, "input.source 'file' needs the file to follow")
+        # checked here, not with the other settings: replay and check-config need no path
+        raise ConfigError(
+            "input.path",
+            None,
+            "input.source 'file' needs the file to follow: set input.path (or --input PATH)",
+        )
     kwargs: dict[str, Any] = {
         "poll_interval_seconds": cfg.poll_interval_seconds,
         "max_record_bytes": cfg.max_record_bytes,
