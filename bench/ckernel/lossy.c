@@ -22,9 +22,12 @@
  *
  * Data structures: one open-addressing hash table (linear probing, Fibonacci hashing of the
  * packed key) per pane and itemset size for the summary, rebuilt at every batch; one
- * open-addressing table counting the k-itemsets of the current batch; a dense array counting
- * the single items of the batch. Itemsets are packed into a uint64 key, 21 bits per item, so
- * item ids must be below 2^21. One thread, plain C11, no dependencies.
+ * open-addressing table counting the k-itemsets of the current batch (keys counted in blocks,
+ * each slot prefetched a few keys ahead); a dense array counting the single items of the
+ * batch. Itemsets are packed into a uint64 key, 21 bits per item, so item ids must be below
+ * 2^21. Baskets with more than 200 distinct items (-x) are set aside, as the Engine's default
+ * max_basket_items does. One thread, plain C11 (the prefetch hint is a GCC/Clang builtin,
+ * left out elsewhere), no dependencies.
  *
  * Usage: lossy [options] FILE        (lossy -h lists the options)
  *
@@ -357,8 +360,10 @@ static void parse_text(const Text *t, const char *path, Baskets *out) {
     const unsigned char *end = p + t->size;
     long long line = 1;
     while (p < end) {
-        if (out->n_items + (size_t)(end - p) / 2 + 1 > out->cap_items || out->n_txn + 1 > out->cap_txn)
-            baskets_reserve(out, out->n_items + (size_t)(end - p) / 2 + 1, out->n_txn + 1);
+        /* a line of the rest holds at most (rest + 1) / 2 ids */
+        size_t room = out->n_items + (size_t)(end - p) / 2 + 1;
+        if (room > out->cap_items || out->n_txn + 1 > out->cap_txn)
+            baskets_reserve(out, room, out->n_txn + 1);
         uint32_t *row = out->items + out->n_items;
         uint32_t len = 0;
         int sorted = 1;
@@ -434,12 +439,14 @@ typedef struct {
 static void engine_init(Engine *e, double epsilon, int k, uint64_t window, uint64_t pane,
                         uint64_t batch, uint64_t max_basket) {
     memset(e, 0, sizeof *e);
-    if (!(epsilon >= 0 && epsilon < 1)) die("epsilon %g must be in [0, 1) (0 counts exactly)", epsilon);
+    if (!(epsilon >= 0 && epsilon < 1))
+        die("epsilon %g must be in [0, 1) (0 counts exactly)", epsilon);
     if (k < 1 || k > MAX_K) die("K = %d: must be 1, 2 or 3", k);
     if (pane < 1 || window < pane || window % pane)
         die("window %llu must be a positive multiple of the pane size %llu",
             (unsigned long long)window, (unsigned long long)pane);
-    if (pane >= ((uint64_t)1 << 31)) die("pane size %llu must be below 2^31", (unsigned long long)pane);
+    if (pane >= ((uint64_t)1 << 31))
+        die("pane size %llu must be below 2^31", (unsigned long long)pane);
     if (batch < 1) die("batch size must be >= 1");
     e->k = k;
     e->w = epsilon == 0 ? 0 : (uint64_t)ceil(1.0 / epsilon - 1e-12);
@@ -726,7 +733,8 @@ static uint64_t parse_count(const char *s, const char *opt) {
     char *end;
     errno = 0;
     unsigned long long v = strtoull(s, &end, 10);
-    if (errno || *end || !*s || s[0] == '-') die("option %s needs a non-negative integer, got '%s'", opt, s);
+    if (errno || *end || !*s || s[0] == '-')
+        die("option %s needs a non-negative integer, got '%s'", opt, s);
     return (uint64_t)v;
 }
 
