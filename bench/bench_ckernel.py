@@ -231,7 +231,7 @@ def read_baskets(path: str | Path, head: int = 0) -> list[list[str]]:
 
 
 def _effective_batch(epsilon: float, batch_size: int) -> int:
-    from streamcount.counters import bucket_width
+    from streamcount.engine.counters import bucket_width
 
     w = bucket_width(epsilon)
     return max(w, (batch_size // w) * w) if w else batch_size
@@ -251,8 +251,8 @@ def engine_entries(
     """streamcount's :class:`~streamcount.engine.Engine` on ``baskets`` (fed ``chunk`` at a
     time, then flushed): its panes as :func:`entries` returns the kernel's, item names read
     back as integers."""
-    from streamcount.config import EngineConfig
-    from streamcount.engine import Engine
+    from streamcount.config.settings import EngineConfig
+    from streamcount.engine.engine import Engine
 
     engine = Engine(
         EngineConfig(
@@ -270,18 +270,18 @@ def engine_entries(
     names = [int(x) for x in engine.vocabulary.names]
     return {
         idx: (pane.summary.n, _levels(pane.summary.levels, names))
-        for idx, pane in engine.panes.items()
+        for idx, pane in engine.window.panes.items()
     }
 
 
 def summary_entries(
     baskets: Sequence[Sequence[str]], k: int, epsilon: float, batch_size: int
 ) -> PaneEntries:
-    """One :class:`~streamcount.counters.LossySummary` fed ``baskets`` directly (ids are the
+    """One :class:`~streamcount.engine.counters.LossySummary` fed ``baskets`` directly (ids are the
     integers themselves), in batches of ``batch_size`` rounded as the engine rounds it."""
     import numpy as np
 
-    from streamcount.counters import LossySummary
+    from streamcount.engine.counters import LossySummary
 
     summary = LossySummary(epsilon, k)
     step = _effective_batch(epsilon, batch_size)

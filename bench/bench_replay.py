@@ -93,28 +93,28 @@ def _config(k: int, epsilon: float) -> Any:
     )
 
 
-def _limited(chunks: Iterable[Any], size: int) -> Iterator[Any]:
-    """The first ``size`` transactions of a chunk stream (chunks cut to fit)."""
+def _limited(parts: Iterable[Any], size: int) -> Iterator[Any]:
+    """The first ``size`` transactions of a stream of decoded parts (the last one cut)."""
     left = size
-    for chunk in chunks:
+    for part in parts:
         if left <= 0:
             return
-        if len(chunk.items) > left:
-            chunk.items = chunk.items[:left]
-        left -= len(chunk.items)
-        yield chunk
+        if len(part.baskets) > left:
+            part.baskets = part.baskets[:left]
+            part.offsets = None if part.offsets is None else part.offsets[:left]
+            part.raws = None if part.raws is None else part.raws[:left]
+        left -= len(part.baskets)
+        yield part
 
 
 def _replay_once(path: Path, cfg: Any, size: int | None) -> tuple[float, Any]:
-    from streamcount.intake.formats import iter_file_chunks
-    from streamcount.replay import replay_chunks, replay_file
+    from streamcount.replay import decode_file, replay_decoded, replay_file
 
     start = time.perf_counter()
     if size is None:
         result = replay_file(str(path), cfg, progress=None)
     else:
-        chunks = iter_file_chunks(str(path), "basket", cfg.input, cfg.engine.max_basket_items)
-        result = replay_chunks(_limited(chunks, size), cfg, progress=None)
+        result = replay_decoded(_limited(decode_file(str(path), cfg), size), cfg, progress=None)
     return time.perf_counter() - start, result
 
 
@@ -140,13 +140,14 @@ def _naive_once(path: Path, k: int, size: int | None) -> tuple[float, int, int]:
 
 
 def _parsed(path: Path, size: int | None) -> list[list[list[str]]]:
-    """The file as the replay's own chunks of item lists (not timed)."""
-    from streamcount.intake.formats import iter_file_chunks
+    """The file as the replay's own parts of item lists (not timed)."""
+    from streamcount.config.settings import Config
+    from streamcount.replay import decode_file
 
-    chunks = iter_file_chunks(str(path), "basket")
+    parts = decode_file(str(path), Config())
     if size is not None:
-        chunks = _limited(chunks, size)
-    return [c.items for c in chunks if c.items]
+        parts = _limited(parts, size)
+    return [p.baskets for p in parts if p.baskets]
 
 
 def _counting_once(parts: list[list[list[str]]], cfg: Any) -> tuple[float, Any]:
