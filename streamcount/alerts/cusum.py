@@ -20,51 +20,54 @@ pane is ``llr = x ln(p1/p0) + (n - x) ln((1 - p1)/(1 - p0))`` and the statistic 
 (``p1`` clipped into ``(0, 1)``), never tuned to one expected change. The ``up`` test counts
 ``x = lo`` and the ``down`` test ``x = hi``, so counting error never manufactures evidence.
 
-Reference rates are estimated from each candidate's own history, separately per direction:
-exponentially decayed sums of counts and transactions with decay ``(B - 1)/(B + 1)``, ``B =
-baseline_panes``, so the reference carries the information of about ``B`` panes (Kish
-effective size ``(sum w n)^2 / sum w^2 n``). The ``up`` reference sums ``hi`` and the test uses
-an *upper* confidence bound of it; the ``down`` reference sums ``lo`` and the test uses a *lower*
-bound. The bounds are the Poisson (Garwood) bounds at ``z`` standard normal deviates, computed
-with the Wilson-Hilferty cube-root approximation of the gamma quantile (within 1 % of the exact
-value; see :func:`poisson_upper`), applied to the effective count; from a count of 0 the upper
-bound is about ``3 / n`` at ``z = 1.645`` (the rule of three), never a rate of 0. A pane updates
-a direction's reference only once all of that direction's statistics are back at 0: during an
-excursion the reference is frozen, so a test never adapts to the change it is detecting; when the
-excursion ends without an alarm the frozen panes are added then (``backfill``), so the reference
-is not biased away from the panes that start excursions. A candidate added later starts from a
-caller-given pseudo-history, e.g. its untracked upper bound (window ``max_error``, window
-transactions) for the ``up`` reference and ``0`` for the ``down`` one; its ``down`` test stays
-inactive until its lower bound is positive.
+Reference rates come from each candidate's own history, separately per direction: decayed
+sums of counts and transactions (decay ``(B - 1)/(B + 1)``, ``B = baseline_panes``, so they
+hold the information of about ``B`` panes: Kish effective size ``n_eff = (sum w n)^2 / sum w^2
+n``). The ``up`` reference sums ``hi`` and its test uses an upper bound of the rate; the
+``down`` reference sums ``lo`` and its test a lower bound::
 
-The change point of an alarm is the pane at which the alarming statistic last left 0; the
-evidence gives the reference rate, the rate since the change point (both with intervals at
-``evidence_z``), the statistic, the threshold, the alternative ratio and the change pane. After
-reporting an alarm the caller calls :meth:`CusumBank.rebase`: the statistic returns to 0 and the
-reference restarts from the panes since the change point (the new normal). Without it the
-statistic stays above the threshold and the candidate alarms again at the next pane.
+    p0 = (P_z(c_eff) + margin * h * k(r) / 2) / n_eff       (up; down: lower P_z, minus)
+
+``P_z`` is the Poisson (Garwood) bound at ``z`` normal deviates of the effective count ``c_eff``
+(Wilson-Hilferty form, :func:`poisson_upper`), and ``k(r)`` (:func:`sensitivity`) measures how
+fast an error in ``p0`` inflates the false alarms of the ratio-``r`` test: the margin of ``h k /
+2`` counts cancels, on average over the estimate's sampling error, the factor ``exp(h k
+delta)`` that a relative error ``delta`` costs. A fixed ``z`` cannot do this: the damage grows
+with ``h``, so a ``z`` calibrated at a raised budget fails at a small one (measured: fixed ``z
+= 1`` is 0.2x the budget at 10,000 per million and 4x at 100; with the margin and ``z = 0`` the
+ratio stays near 0.15, close to the 0.11 of a test that knows the true rate). A count of 0 gives
+a positive rate, never 0. A direction's reference takes a pane only when all its statistics are
+0 after it: frozen during an excursion, so a test never adapts to the change it is detecting;
+when an excursion ends without an alarm its panes are added then (``backfill``). Without the
+backfill the reference is biased away from the panes that start excursions (low for ``up``,
+high for ``down``) and false alarms reach 11-17x the budget. A candidate added later starts
+from a pseudo-history given by the caller: the untracked upper bound (window ``max_error``,
+window transactions) for ``up``, 0 for ``down``; its ``down`` tests are inactive until their
+lower bound is positive.
+
+The change point of an alarm is the pane at which the alarming statistic last left 0. The
+evidence holds the reference rate and the rate since the change point (intervals at
+``evidence_z``), the statistic, the threshold, the ratio and the change pane. After reporting an
+alarm the caller calls :meth:`CusumBank.rebase` (statistic to 0, reference restarted from the
+panes since the change point: the new normal); otherwise the candidate alarms again next pane.
 
 Guarantee
 ---------
-With the reference rate correct, every test satisfies ``P(S_t >= h) <= exp(-h)`` at every pane
-(Ville's inequality applied to the time-reversed likelihood ratio; it also gives Lorden's
-(1971) bound ``ARL0 >= exp(h)``), whatever resets happen. :func:`threshold` splits a budget of
-``B`` expected false alarms per million transactions over the ``M_t`` tests of pane ``t``
-(candidates x directions x alternatives that can alarm, see :meth:`CusumBank.active_tests`):
-level ``alpha_t = B n_t / (10^6 M_t)``, ``h_t = ln(1/alpha_t)``. By linearity of expectation the
-expected number of false alarms per million transactions is then at most ``B`` whatever the
-dependence between tests, with count- or time-based panes and a changing ``M_t``.
+With the reference rate correct, each test has ``P(S_t >= h) <= exp(-h)`` at every pane
+(Ville's inequality on the time-reversed likelihood ratio; Lorden 1971: ``ARL0 >= exp(h)``),
+whatever resets happen. :func:`threshold` splits a budget of ``B`` expected false alarms per
+million transactions over the ``M_t`` tests of pane ``t`` (candidates x directions x
+alternatives that can alarm, :meth:`CusumBank.active_tests`): ``h_t = ln(10^6 M_t / (B n_t))``.
+By linearity of expectation at most ``B`` false alarms per million transactions are expected,
+whatever the dependence between tests, for count- or time-based panes and a changing ``M_t``.
 
-Assumptions: baskets are independent and each itemset's rate is constant between changes
-(binomial pane counts); the reference estimate is close enough. No theorem covers an estimated
-reference: the confidence bound's misses are not charged to the budget. The bound ``exp(-h)`` is
-loose for a binomial CUSUM, and that slack absorbs the estimation error in simulation (see
-``tests/test_cusum_calibration.py`` for measured rates against the budget).
-
-What breaks it: seasonality (time-of-day or weekly cycles are changes, and are reported as such
-against a reference that does not model them); overdispersion (bulk orders, repeated orders by
-one customer, bots) makes pane counts vary more than binomially and the alarm rate exceeds the
-budget; a reference learned during a change that was never alarmed (a slow drift) hides it.
+Assumptions: independent baskets and a constant rate per itemset between changes (binomial
+pane counts). No theorem covers the estimated reference; the margin is derived to first order
+and checked by simulation (``tests/test_cusum_calibration.py``); the slack of ``exp(-h)`` for a
+binomial CUSUM absorbs the rest. What breaks it: seasonality (daily or weekly cycles are
+changes against a reference that does not model them); overdispersion (bulk orders, one
+customer's repeated orders, bots) makes counts vary more than binomially, so alarms exceed the
+budget; a slow drift that never alarms is learned into the reference.
 
 References
 ----------
@@ -84,9 +87,19 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from streamcount.alerts.cusum_stats import (
+    CusumInputError,
+    binomial_llr,
+    poisson_lower,
+    poisson_upper,
+    rate_bound,
+    sensitivity,
+    threshold,
+)
 from streamcount.errors import CheckpointError, StreamcountError
 
 __all__ = [
+    "DEFAULT_MARGIN",
     "DEFAULT_RATIOS",
     "DEFAULT_Z",
     "CusumAlarms",
@@ -96,12 +109,14 @@ __all__ = [
     "binomial_llr",
     "poisson_lower",
     "poisson_upper",
+    "sensitivity",
     "threshold",
 ]
 
 DEFAULT_RATIOS: tuple[float, ...] = (1.5, 2.0, 4.0)
-#: z of the reference bounds; chosen by the calibration in tests/test_cusum_calibration.py.
-DEFAULT_Z = 1.0
+#: z of the reference bounds and the margin's multiple of ``h k(r) / 2`` counts (calibrated).
+DEFAULT_Z = 0.0
+DEFAULT_MARGIN = 1.0
 _FORMAT = "streamcount.cusum/1"
 _P_MIN = 1e-12
 _P_MAX = 1.0 - 1e-9
@@ -110,85 +125,8 @@ _PER_ALT = ("stat", "start", "exc_lo", "exc_hi", "exc_n")
 _PER_KEY = ("ref_c", "ref_n", "ref_n2", "pend_c", "pend_n", "pend_n2", "pend_w")
 
 
-class CusumInputError(StreamcountError, ValueError):
-    """Arguments to :class:`CusumBank` that break a rule (shape, order, range)."""
-
-
 class CusumStateError(StreamcountError):
     """A :class:`CusumBank` invariant does not hold (a bug, or a tampered state)."""
-
-
-def threshold(
-    budget_per_million: float,
-    tests: float | np.ndarray,
-    pane_transactions: float | np.ndarray,
-    *,
-    floor: float = 1.0,
-) -> float | np.ndarray:
-    """The CUSUM threshold ``h`` that spends a false-alert budget over the tests of a pane.
-
-    ``h = ln(1 / alpha)`` with ``alpha = B n / (10^6 M)`` (union bound), never below ``floor``;
-    ``M`` is taken as at least 1; a pane of 0 transactions gets ``h = inf`` (no alarm).
-    Works for count-based panes (constant ``n``) and time-based ones (``n`` per pane).
-
-    >>> round(threshold(1.0, 5000, 1000), 2)  # M = 5,000, P = 1,000 panes per million, B = 1
-    15.42
-    """
-    if not budget_per_million > 0:
-        raise CusumInputError(f"budget_per_million = {budget_per_million!r}: must be > 0")
-    m = np.maximum(np.asarray(tests, dtype=np.float64), 1.0)
-    n = np.asarray(pane_transactions, dtype=np.float64)
-    if np.any(n < 0) or not np.all(np.isfinite(n)):
-        raise CusumInputError(f"pane_transactions = {pane_transactions!r}: must be finite, >= 0")
-    with np.errstate(divide="ignore"):
-        h = np.log(1e6 * m) - np.log(budget_per_million * n)
-    h = np.maximum(h, floor)
-    return float(h) if h.ndim == 0 else h
-
-
-def binomial_llr(
-    x: np.ndarray, n: np.ndarray | float, p0: np.ndarray, p1: np.ndarray
-) -> np.ndarray:
-    """Log-likelihood ratio of ``x`` successes in ``n`` trials, rate ``p1`` against ``p0``.
-
-    ``x ln(p1/p0) + (n - x) ln((1 - p1)/(1 - p0))``; rates must lie in ``(0, 1)``.
-    """
-    x = np.asarray(x, dtype=np.float64)
-    p0 = np.asarray(p0, dtype=np.float64)
-    p1 = np.asarray(p1, dtype=np.float64)
-    return x * (np.log(p1) - np.log(p0)) + (n - x) * (np.log1p(-p1) - np.log1p(-p0))
-
-
-def poisson_upper(count: np.ndarray | float, z: float) -> np.ndarray:
-    """Upper confidence bound of a Poisson mean from an observed (effective) ``count``.
-
-    The exact (Garwood) bound is the ``Phi(z)`` quantile of Gamma(count + 1); this is its
-    Wilson-Hilferty form ``a (1 - 1/(9a) + z / (3 sqrt a))^3``, ``a = count + 1`` (checked
-    against scipy in the tests: within 1 % for ``z`` in [0, 3]). From 0 at ``z = 1.645``: 2.97.
-    """
-    a = np.asarray(count, dtype=np.float64) + 1.0
-    return a * (1.0 - 1.0 / (9.0 * a) + z / (3.0 * np.sqrt(a))) ** 3
-
-
-def poisson_lower(count: np.ndarray | float, z: float) -> np.ndarray:
-    """Lower confidence bound of a Poisson mean (Wilson-Hilferty form of the Gamma(count)
-    ``Phi(-z)`` quantile, clipped at 0; 0 for a count of 0). Never above the exact bound by more
-    than the approximation error checked in the tests."""
-    c = np.asarray(count, dtype=np.float64)
-    safe = np.where(c > 0, c, 1.0)
-    base = np.maximum(1.0 - 1.0 / (9.0 * safe) - z / (3.0 * np.sqrt(safe)), 0.0)
-    return np.where(c > 0, c * base**3, 0.0)
-
-
-def _rate_bounds(c: np.ndarray, n: np.ndarray, n2: np.ndarray, z: float, upper: bool) -> np.ndarray:
-    """Bound of the rate ``c / n`` of decayed sums, from the effective count ``c n / n2``."""
-    has = n > 0
-    n_safe = np.where(has, n, 1.0)
-    n_eff = np.where(has, n_safe * n_safe / np.where(n2 > 0, n2, 1.0), 1.0)
-    c_eff = c / n_safe * n_eff
-    if upper:
-        return np.where(has, np.minimum(poisson_upper(c_eff, z) / n_eff, 1.0), 1.0)
-    return np.where(has, np.minimum(poisson_lower(c_eff, z) / n_eff, 1.0), 0.0)
 
 
 @dataclass(frozen=True)
@@ -265,6 +203,7 @@ class CusumBank:
         z: float = DEFAULT_Z,
         evidence_z: float = 1.96,
         backfill: bool = True,
+        margin: float = DEFAULT_MARGIN,
     ) -> None:
         r = np.asarray(ratios, dtype=np.float64)
         if r.ndim != 1 or r.size == 0 or not np.all(np.isfinite(r)) or np.any(r <= 1.0):
@@ -279,8 +218,12 @@ class CusumBank:
         self.z = float(z)
         self.evidence_z = float(evidence_z)
         self.backfill = bool(backfill)
+        if not 0 <= margin < math.inf:
+            raise CusumInputError(f"margin = {margin!r}: must be >= 0")
+        self.margin = float(margin)
         self.decay = (self.baseline_panes - 1.0) / (self.baseline_panes + 1.0)
         self._mult = {"up": r.copy(), "down": 1.0 / r}
+        self._k = {d: sensitivity(m) for d, m in self._mult.items()}
         self.last_pane = -1
         self.keys = np.zeros(0, dtype=np.int64)
         self._a: dict[str, np.ndarray] = {}
@@ -396,24 +339,36 @@ class CusumBank:
 
     # -- the pane step ----------------------------------------------------------------------
 
-    def _p0(self, d: str) -> np.ndarray:
-        a = self._a
-        return _rate_bounds(a[f"{d}.ref_c"], a[f"{d}.ref_n"], a[f"{d}.ref_n2"], self.z, d == "up")
+    def _tested(self, d: str, h: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """The reference ``p0`` each test uses, its ``p1`` and the active mask, all (N, A).
 
-    def _p1(self, d: str, p0: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """Clipped p0, p1 (N, A) and the active mask (N, A)."""
-        p1 = np.clip(p0[:, None] * self._mult[d][None, :], _P_MIN, _P_MAX)
-        p0c = np.clip(p0, _P_MIN, _P_MAX)[:, None]
-        active = (p0[:, None] > _P_MIN) & (p0[:, None] < _P_MAX) & (p1 != p0c)
+        ``p0 = (bound(c_eff) +/- margin * h * k(r) / 2) / n_eff``: the Poisson bound at ``z`` of
+        the effective count, moved by the estimation margin (up: +, down: -).
+        """
+        a = self._a
+        c, nn, n2 = a[f"{d}.ref_c"], a[f"{d}.ref_n"], a[f"{d}.ref_n2"]
+        up = d == "up"
+        has = nn > 0
+        n_eff = np.where(has, nn * nn / np.where(n2 > 0, n2, 1.0), 1.0)
+        c_eff = np.where(has, c / np.where(has, nn, 1.0) * n_eff, 0.0)
+        base = poisson_upper(c_eff, self.z) if up else poisson_lower(c_eff, self.z)
+        shift = self.margin * (h if math.isfinite(h) else 0.0) / 2.0 * self._k[d]
+        p0 = (base[:, None] + (shift if up else -shift)[None, :]) / n_eff[:, None]
+        p0 = np.where(has[:, None], np.clip(p0, 0.0, 1.0), 1.0 if up else 0.0)
+        p1 = np.clip(p0 * self._mult[d][None, :], _P_MIN, _P_MAX)
+        p0c = np.clip(p0, _P_MIN, _P_MAX)
+        active = (p0 > _P_MIN) & (p0 < _P_MAX) & (p1 != p0c)
         return p0c, p1, active
 
     def active_tests(self) -> int:
         """Tests (candidate x direction x alternative) that can move at the next pane.
 
         A test is inactive when its reference bound leaves no room (``up`` at rate 1, ``down``
-        at lower bound 0, e.g. a new candidate). This is the ``M`` to charge for the next pane.
+        at lower bound 0, e.g. a new candidate). Counted without the estimation margin (which
+        depends on ``h``), so it may count a few tests that turn out inactive: an overcount,
+        on the safe side. This is the ``M`` to charge for the next pane.
         """
-        return sum(int(np.count_nonzero(self._p1(d, self._p0(d))[2])) for d in _DIRS)
+        return sum(int(np.count_nonzero(self._tested(d, 0.0)[2])) for d in _DIRS)
 
     def update(
         self,
@@ -461,9 +416,10 @@ class CusumBank:
         parts = []
         for d in _DIRS:
             x_test, x_ref = (x_lo, x_hi) if d == "up" else (x_hi, x_lo)
-            idx = self._step(d, x_test, x_lo, x_hi, x_ref, float(n), t)
+            p0, p1, active = self._tested(d, float(h))
+            idx = self._step(d, p0, p1, active, x_test, x_lo, x_hi, float(n), t)
             fire = np.flatnonzero(self._a[f"{d}.stat"].max(axis=1, initial=0.0) >= h)
-            parts.append(self._evidence(d, fire))
+            parts.append(self._evidence(d, fire, p0[fire]))
             self._settle(d, idx, x_ref, float(n))
         self.last_pane = t
         return _join(t, float(h), parts)
@@ -471,15 +427,16 @@ class CusumBank:
     def _step(
         self,
         d: str,
+        p0: np.ndarray,
+        p1: np.ndarray,
+        active: np.ndarray,
         x: np.ndarray,
         x_lo: np.ndarray,
         x_hi: np.ndarray,
-        x_ref: np.ndarray,
         n: float,
         t: int,
     ) -> np.ndarray:
         a = self._a
-        p0, p1, active = self._p1(d, self._p0(d))
         with np.errstate(invalid="ignore"):
             llr = binomial_llr(x[:, None], n, p0, p1)
         old = a[f"{d}.stat"]
@@ -518,7 +475,7 @@ class CusumBank:
         n2[quiet] = w * w * n2[quiet] + pn2[quiet]
         pc[quiet], pn[quiet], pn2[quiet], pw[quiet] = 0.0, 0.0, 0.0, 1.0
 
-    def _evidence(self, d: str, idx: np.ndarray) -> dict[str, np.ndarray]:
+    def _evidence(self, d: str, idx: np.ndarray, p0: np.ndarray) -> dict[str, np.ndarray]:
         a, ez, rows = self._a, self.evidence_z, np.arange(idx.size)
         stat = a[f"{d}.stat"][idx]
         alt = stat.argmax(axis=1) if idx.size else np.zeros(0, dtype=np.int64)
@@ -532,13 +489,13 @@ class CusumBank:
                 "statistic": stat[rows, alt],
                 "ratio": self._mult[d][alt],
                 "change_pane": a[f"{d}.start"][idx, alt],
-                "p0": _rate_bounds(c, nn, n2, self.z, up),
+                "p0": p0[rows, alt],
                 "ref_rate": np.where(nn > 0, c / np.where(nn > 0, nn, 1.0), np.nan),
-                "ref_low": _rate_bounds(c, nn, n2, ez, False),
-                "ref_high": _rate_bounds(c, nn, n2, ez, True),
+                "ref_low": rate_bound(c, nn, n2, ez, False),
+                "ref_high": rate_bound(c, nn, n2, ez, True),
                 "recent_rate": (lo_c if up else hi_c) / en,
-                "recent_low": _rate_bounds(lo_c, en, en, ez, False),
-                "recent_high": _rate_bounds(hi_c, en, en, ez, True),
+                "recent_low": rate_bound(lo_c, en, en, ez, False),
+                "recent_high": rate_bound(hi_c, en, en, ez, True),
                 "recent_transactions": en,
             }
 
@@ -573,6 +530,7 @@ class CusumBank:
             "z": self.z,
             "evidence_z": self.evidence_z,
             "backfill": self.backfill,
+            "margin": self.margin,
             "last_pane": self.last_pane,
         }
         arrays = {f"{prefix}keys": self.keys.copy()}
@@ -594,6 +552,7 @@ class CusumBank:
                 z=float(meta["z"]),  # type: ignore[arg-type]
                 evidence_z=float(meta["evidence_z"]),  # type: ignore[arg-type]
                 backfill=bool(meta["backfill"]),
+                margin=float(meta["margin"]),  # type: ignore[arg-type]
             )
             bank.last_pane = int(meta["last_pane"])  # type: ignore[call-overload]
             bank.keys = np.array(arrays[f"{prefix}keys"], dtype=np.int64)
