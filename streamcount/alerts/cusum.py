@@ -591,7 +591,7 @@ class CusumBank:
                 c, nn, n2 = g[f"{p}_c"], g[f"{p}_n"], g[f"{p}_n2"]
                 need(np.all((c >= 0) & (c <= nn)), f"{d}: {p} counts within [0, transactions]")
                 need(np.all((n2 >= 0) & (n2 <= nn)), f"{d}: {p} weights within [0, transactions]")
-            need(np.all((g["pend_w"] > 0) & (g["pend_w"] <= 1)), f"{d}: pending weight")
+            need(np.all((g["pend_w"] >= 0) & (g["pend_w"] <= 1)), f"{d}: pending weight")
             quiet = ~pos.any(axis=1)
             need(np.all(g["pend_n"][quiet] == 0) and np.all(g["pend_w"][quiet] == 1), f"{d}: pend")
 

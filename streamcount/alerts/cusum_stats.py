@@ -115,9 +115,10 @@ def poisson_lower(count: np.ndarray | float, z: float) -> np.ndarray:
     0.05 below the exact bound (in counts).
     """
     c = np.asarray(count, dtype=np.float64)
-    safe = np.where(c > 0, c, 1.0)
+    some = c > 1.0 / 9.0  # below, 1 - 1/(9c) < 0: the bound is 0
+    safe = np.where(some, c, 1.0)
     base = np.maximum(1.0 - 1.0 / (9.0 * safe) - z / (3.0 * np.sqrt(safe)), 0.0)
-    return np.where(c > 0, c * base**3, 0.0)
+    return np.where(some, c * base**3, 0.0)
 
 
 def rate_bound(c: np.ndarray, n: np.ndarray, n2: np.ndarray, z: float, upper: bool) -> np.ndarray:
