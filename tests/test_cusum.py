@@ -168,15 +168,24 @@ class ScalarDirection:
                 self.n2 = self.lam**2 * self.n2 + nn
             self.pending = []
 
-    def rebase(self) -> None:
-        i = self.stat.index(max(self.stat))
-        if self.stat[i] > 0:
-            self.c = self.exc[i][1] if self.up else self.exc[i][0]
-            self.n = self.n2 = self.exc[i][2]
+    def clear(self) -> None:
         k = len(self.mult)
         self.stat, self.start = [0.0] * k, [-1] * k
         self.exc = [[0.0, 0.0, 0.0] for _ in range(k)]
         self.pending = []
+
+
+def _rebase_pair(alarming: ScalarDirection, other: ScalarDirection) -> None:
+    """Both directions restart from the panes since the alarming statistic left 0."""
+    i = alarming.stat.index(max(alarming.stat))
+    moved = alarming.stat[i] > 0
+    lo, hi, n = alarming.exc[i]
+    alarming.clear()
+    if moved:
+        other.clear()
+        for d in (alarming, other):
+            d.c = hi if d.up else lo
+            d.n = d.n2 = n
 
 
 _pane = st.tuples(
@@ -235,7 +244,11 @@ def test_pane_step_matches_scalar_model(panes, init, z, margin, baseline) -> Non
         for key, direction in sorted(fired):
             name = "up" if direction == 1 else "down"
             bank.rebase(np.array([key]), name)
-            model[int(np.searchsorted(keys, key))][0 if direction == 1 else 1].rebase()
+            up_m, down_m = model[int(np.searchsorted(keys, key))]
+            if direction == 1:
+                _rebase_pair(up_m, down_m)
+            else:
+                _rebase_pair(down_m, up_m)
         bank.check_invariants()
     event(f"alarms (capped at 3): {min(total, 3)}")
 

@@ -206,3 +206,37 @@ def test_detection_delay(before, after, history, max_median, seed) -> None:
     assert r["early"] <= 1
     if max_median is not None:
         assert r["median"] <= max_median
+
+
+@pytest.mark.parametrize("both", [True, False])
+def test_return_to_the_old_rate_after_a_rebased_rise(both: bool) -> None:
+    # 0.01 -> 0.03 for 10 panes -> 0.01 again. Restarting both directions from the new normal
+    # sees the return within a few panes; restarting only the up direction leaves the down
+    # reference mostly made of old panes, and the return waits for them to decay out.
+    rng = np.random.default_rng(41)
+    reps, n = 834, 1000
+    keys = np.arange(reps, dtype=np.int64)
+    bank = CusumBank()
+    c = rng.binomial(50 * n, 0.01, reps).astype(float)
+    bank.add(keys, c, 50 * n, c)
+    rise, fall = np.full(reps, np.inf), np.full(reps, np.inf)
+    for t in range(40):
+        x = rng.binomial(n, 0.03 if 10 <= t < 20 else 0.01, reps).astype(float)
+        out = bank.update(keys, x, x, n, threshold(1.0, max(bank.active_tests(), 5000), n))
+        for d in ("up", "down"):
+            fired = out.of(d)
+            if d == "up" and 10 <= t < 20:
+                rise[fired] = np.minimum(rise[fired], t - 9)
+            if d == "down" and t >= 20:
+                fall[fired] = np.minimum(fall[fired], t - 19)
+            if fired.size:
+                bank.rebase(fired, d, both=both)
+    print(
+        f"\nrise then return, rebase both={both}: rise seen after {np.median(rise):g} panes, "
+        f"return after {np.median(fall):g} (median; inf = not within 20 panes)"
+    )
+    assert np.median(rise) <= 3
+    if both:
+        assert np.median(fall) <= 3
+    else:
+        assert np.median(fall) > 10

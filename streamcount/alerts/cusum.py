@@ -48,8 +48,9 @@ lower bound is positive.
 The change point of an alarm is the pane at which the alarming statistic last left 0. The
 evidence holds the reference rate and the rate since the change point (intervals at
 ``evidence_z``), the statistic, the threshold, the ratio and the change pane. After reporting an
-alarm the caller calls :meth:`CusumBank.rebase` (statistic to 0, reference restarted from the
-panes since the change point: the new normal); otherwise the candidate alarms again next pane.
+alarm the caller calls :meth:`CusumBank.rebase` (statistics to 0, both directions' references
+restarted from the panes since the change point: the new normal); otherwise the candidate
+alarms again at the next pane.
 
 Guarantee
 ---------
@@ -499,25 +500,37 @@ class CusumBank:
                 "recent_transactions": en,
             }
 
-    def rebase(self, keys: np.ndarray, direction: str) -> None:
-        """Restart ``direction`` for ``keys`` after an alarm: statistics to 0, reference from the
-        panes since the change point of the largest statistic (unchanged if all are 0)."""
+    def rebase(self, keys: np.ndarray, direction: str, *, both: bool = True) -> None:
+        """Restart after an alarm in ``direction``: the new normal is the panes since the change
+        point of the largest statistic.
+
+        That direction's statistics go to 0 and its reference is restarted from those panes
+        (left as is for a key whose statistics are all 0). With ``both`` the other direction is
+        restarted from the same panes too (its statistics to 0, its reference from the other
+        count end), so a return to the old rate is seen as a change without waiting for the
+        old panes to decay out of its reference.
+        """
         d = _DIRS[_dir_index(direction)]
         pos = self._positions(keys, "rebase(keys)")
         a = self._a
         stat = a[f"{d}.stat"][pos]
         alt = stat.argmax(axis=1) if pos.size else np.zeros(0, dtype=np.int64)
-        moved = stat[np.arange(pos.size), alt] > 0
-        p, alt = pos[moved], alt[moved]
-        src = "exc_hi" if d == "up" else "exc_lo"
-        a[f"{d}.ref_c"][p] = a[f"{d}.{src}"][p, alt]
-        a[f"{d}.ref_n"][p] = a[f"{d}.exc_n"][p, alt]
-        a[f"{d}.ref_n2"][p] = a[f"{d}.exc_n"][p, alt]
+        p = pos[stat[np.arange(pos.size), alt] > 0]
+        alt = alt[stat[np.arange(pos.size), alt] > 0]
+        lo_c, hi_c, en = (a[f"{d}.{k}"][p, alt] for k in ("exc_lo", "exc_hi", "exc_n"))
+        for e in _DIRS if both else (d,):
+            self._clear(e, pos if e == d else p)
+            a[f"{e}.ref_c"][p] = hi_c if e == "up" else lo_c
+            a[f"{e}.ref_n"][p] = en
+            a[f"{e}.ref_n2"][p] = en
+
+    def _clear(self, d: str, rows: np.ndarray) -> None:
+        a = self._a
         for name in _PER_ALT:
-            a[f"{d}.{name}"][pos] = -1 if name == "start" else 0.0
+            a[f"{d}.{name}"][rows] = -1 if name == "start" else 0.0
         for name in ("pend_c", "pend_n", "pend_n2"):
-            a[f"{d}.{name}"][pos] = 0.0
-        a[f"{d}.pend_w"][pos] = 1.0
+            a[f"{d}.{name}"][rows] = 0.0
+        a[f"{d}.pend_w"][rows] = 1.0
 
     # -- persistence and checks -------------------------------------------------------------
 
