@@ -83,7 +83,16 @@ class Pipeline:
         self.sinks = sinks
         self.clock = clock
         self.engine = Engine(config.engine, on_pane_closed=self._on_pane_closed)
-        self.monitor = RuleMonitor(config.rules, config.alerts) if alerts else None
+        self.monitor = (
+            RuleMonitor(
+                config.rules,
+                config.alerts,
+                max_itemset_size=config.engine.max_itemset_size,
+                window_panes=self.engine.window_panes,
+            )
+            if alerts
+            else None
+        )
         #: the most recent alert records, oldest first (``alerts.history`` of them)
         self.alert_history: deque[dict[str, Any]] = deque(maxlen=max(1, config.alerts.history))
         self.alert_counts: Counter[str] = Counter()
@@ -169,9 +178,7 @@ class Pipeline:
     def _on_pane_closed(self, engine: Engine) -> None:
         if self.monitor is None:
             return
-        fired, window = self.monitor.evaluate_close(
-            engine, recent_panes=self.config.alerts.recent_panes
-        )
+        fired, window = self.monitor.evaluate_close(engine)
         self.last_close = window
         if not fired:
             return
@@ -200,9 +207,13 @@ class Pipeline:
     def state(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
         """The whole counting state: engine, monitor, alert history and counts."""
         engine_meta, arrays = self.engine.state()
+        monitor_meta = None
+        if self.monitor is not None:
+            monitor_meta, monitor_arrays = self.monitor.state()
+            arrays.update(monitor_arrays)
         meta = {
             "engine": engine_meta,
-            "monitor": None if self.monitor is None else self.monitor.state_dict(),
+            "monitor": monitor_meta,
             "alerts": list(self.alert_history)[-_CHECKPOINT_ALERTS:],
             "alert_counts": dict(self.alert_counts),
             "rejected_counts": dict(self.rejected_counts),
@@ -219,7 +230,7 @@ class Pipeline:
             self.config.engine, meta["engine"], arrays, on_pane_closed=self._on_pane_closed
         )
         if self.monitor is not None:
-            self.monitor.load_state(meta.get("monitor") or {})
+            self.monitor.load_state(meta.get("monitor") or {}, arrays)
         self.alert_history.clear()
         self.alert_history.extend(meta.get("alerts", []))
         self.alert_counts = Counter(meta.get("alert_counts", {}))

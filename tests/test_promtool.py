@@ -45,8 +45,6 @@ CONFIG = {
         "max_p_value": None,
         "conservative": False,
         "exit_ratio": 1.0,
-        "confirm_evaluations": 1,
-        "cooldown_evaluations": 0,
     },
     "alerts": {"surge": False},
     "metrics": {"top_rules": 5},

@@ -41,8 +41,6 @@ RULES = {
     "max_p_value": None,
     "conservative": False,
     "exit_ratio": 1.0,
-    "confirm_evaluations": 1,
-    "cooldown_evaluations": 0,
     "max_rules": 1000,
     "max_consequent_size": 1,
 }

@@ -177,6 +177,7 @@ _RULES: dict[str, tuple[_Check, ...]] = {
     "input.format": (_one_of(*_format_names()),),
     "input.start_at": (_one_of("beginning", "end"),),
     "input.poll_interval_seconds": (_above(0),),
+    "input.idle_seconds": (_above(0),),
     "input.max_record_bytes": (_at_least(1),),
     "input.encoding": ((_codec_known, "must be a text encoding Python knows, e.g. 'utf-8'"),),
     "input.max_body_bytes": (_at_least(1),),
@@ -214,12 +215,15 @@ _RULES: dict[str, tuple[_Check, ...]] = {
     "rules.significance": (_one_of("fisher", "chi2"),),
     "rules.max_p_value": ((lambda v: 0 < v <= 1, "must be in (0, 1] (null turns the test off)"),),
     "rules.exit_ratio": ((lambda v: 0 < v <= 1, "must be in (0, 1]"),),
-    "rules.confirm_evaluations": (_at_least(1),),
-    "rules.cooldown_evaluations": (_at_least(0),),
     "rules.max_rules": (_at_least(1),),
-    "alerts.growth_rate": (_above(1),),
+    "alerts.false_alerts_per_million": (
+        (
+            lambda v: 0 < v <= 1e6,
+            "must be in (0, 1000000] (expected false alerts per million transactions)",
+        ),
+    ),
+    "alerts.baseline_panes": (_at_least(2),),
     "alerts.recent_panes": (_at_least(1),),
-    "alerts.surge_max_p_value": ((lambda v: 0 < v <= 1, "must be in (0, 1]"),),
     "alerts.surge_min_count": (_at_least(1),),
     "alerts.family_lift_tolerance": (_at_least(0),),
     "alerts.history": (_at_least(1),),
@@ -349,6 +353,15 @@ def _unknown_key_rule(path: str, known: list[str]) -> str:
 RETIRED_KEYS: dict[str, str] = {
     "input.http_ingest": "was replaced by input.source: add 'http' to it, e.g. "
     "input.source: [file, http] (or input.source: http for HTTP ingest alone)",
+    "rules.confirm_evaluations": "was retired: alerts come from change tests that gather "
+    "their own evidence pane by pane; set alerts.false_alerts_per_million to trade "
+    "speed for fewer false alerts",
+    "rules.cooldown_evaluations": "was retired: after an alert the change test restarts "
+    "from the new rate, so a second alert needs new evidence; remove the key",
+    "alerts.surge_max_p_value": "was retired: surges are judged under the one false-alert "
+    "budget, alerts.false_alerts_per_million",
+    "alerts.growth_rate": "was retired: the change tests' alternatives are fixed multiples "
+    "(1.5, 2 and 4) of each itemset's own reference rate; remove the key",
 }
 
 

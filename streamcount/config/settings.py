@@ -87,6 +87,10 @@ class InputConfig:
     #: where to start a followed file when no checkpoint exists: beginning | end
     start_at: str = "beginning"
     poll_interval_seconds: float = 0.2
+    #: wall-clock seconds with nothing new while every source is caught up after which the
+    #: service closes open CSV orders and, for a time-based window, moves the watermark to the
+    #: clock (never in replay)
+    idle_seconds: float = 10.0
     max_record_bytes: int = 65536
     encoding: str = "utf-8"
     #: largest body POST /v1/transactions accepts (the ``http`` source)
@@ -138,26 +142,24 @@ class RulesConfig:
     conservative: bool = True
     #: exit thresholds are the entry thresholds times this factor (hysteresis), in (0, 1]
     exit_ratio: float = 0.8
-    #: consecutive evaluations (pane closes) before a change of state takes effect
-    confirm_evaluations: int = 2
-    #: evaluations after a rule fades before it may emerge again
-    cooldown_evaluations: int = 10
     #: cap on rules kept per evaluation (highest lift first)
     max_rules: int = 1000
 
 
 @dataclass(frozen=True, slots=True)
 class AlertsConfig:
-    """Surge detection (growth of an itemset's support in a recent window over a baseline)."""
+    """Alerts: detected changes of co-purchase rates under one false-alert budget."""
 
+    #: expected false alerts per million transactions on a stationary feed, shared by every
+    #: kind (emerged, faded, surged) and split over the tests run at each pane close
+    false_alerts_per_million: float = 1.0
+    #: panes of an itemset's own history in the reference rate its change tests compare with
+    baseline_panes: int = 50
+    #: raise ``surged`` alerts (a co-purchase rate rising, rule or not)
     surge: bool = True
-    #: Dong & Li growth rate the recent window must reach over the baseline (judged on bounds)
-    growth_rate: float = 3.0
-    #: panes making up the recent window; the baseline is the rest of the window
+    #: panes over which an itemset needs surge_min_count orders to be tested for a surge
     recent_panes: int = 1
-    #: one-sided p-value the surge's significance test must reach
-    surge_max_p_value: float = 0.001
-    #: minimum lower-bound count in the recent window
+    #: minimum lower-bound count in the recent panes for a surge
     surge_min_count: int = 20
     #: relative lift (or growth-rate) gain a superset rule (or itemset) needs to alert apart
     #: from its family's representative

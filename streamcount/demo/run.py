@@ -79,10 +79,8 @@ def demo_config(listen: str | None) -> Config:
             min_confidence=0.4,
             min_lift=2.0,
             max_p_value=0.001,
-            confirm_evaluations=2,
-            cooldown_evaluations=6,
         ),
-        alerts=AlertsConfig(growth_rate=3.0, recent_panes=1, surge_min_count=20),
+        alerts=AlertsConfig(recent_panes=1, surge_min_count=20),
         sinks=SinksConfig(log=False),
         server=ServerConfig(listen=listen),
         checkpoint=CheckpointConfig(checkpoint_dir=None),
@@ -167,19 +165,24 @@ def format_alert(record: dict[str, Any]) -> str:
         return f"{fmt(x['value'])} [{lo}..{hi}]"
 
     kind = record["kind"].upper()
-    if record["kind"] == "surged":
-        gr = record.get("growth_rate") or {}
-        low = gr.get("low")
-        growth = f"at least {low:.1f}x" if low is not None else "unbounded"
+    ev = record["evidence"]
+    before, now = ev["reference_rate"]["value"], ev["recent_rate"]["value"]
+    also = f" (also {', '.join(record['also'])})" if record.get("also") else ""
+    since = "?" if ev["change_seq"] is None else f"{ev['change_seq']:,}"
+    change = (
+        f"{'':>12}bought together in {100 * before:.2f}% of orders before, "
+        f"{100 * now:.2f}% since order {since}{also}"
+    )
+    if record["antecedent"] is None:
         return (
-            f"[{seq}] {kind:8} {' + '.join(record['items'])}: bought together {growth} as often "
-            f"in the last pane as before; support {iv('support', True)}"
+            f"[{seq}] {kind:8} {' + '.join(record['items'])}: support {iv('support', True)}\n"
+            + change
         )
     rule = f"{' + '.join(record['antecedent'])} => {' + '.join(record['consequent'])}"
     return (
         f"[{seq}] {kind:8} {rule}\n"
         f"{'':>12}support {iv('support', True)}  confidence {iv('confidence', True)}  "
-        f"lift {iv('lift')}"
+        f"lift {iv('lift')}\n" + change
     )
 
 

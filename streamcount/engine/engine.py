@@ -130,6 +130,8 @@ class Engine:
         self.transactions_seen = 0
         self.rejected: Counter[str] = Counter()
         self.max_event_ts: float | None = None
+        #: the pane closed most recently (what ``on_pane_closed`` is called about)
+        self.last_closed: Pane | None = None
 
     # -- intake -------------------------------------------------------------------------------
 
@@ -332,8 +334,29 @@ class Engine:
 
     def _close(self, pane: Pane) -> None:
         self.window.close(pane)
+        self.last_closed = pane
         if self.on_pane_closed is not None:
             self.on_pane_closed(self)
+
+    def advance_watermark(self, now: float) -> int:
+        """Time-based windows on a quiet feed: close the panes that end before ``now`` minus
+        ``allowed_lateness_seconds`` as if events up to ``now`` had been seen, and slide the
+        window to that point. Only the service calls it, with the wall clock, when its sources
+        are caught up and idle (never replay, so a backlog is never sent to ``too_late``).
+        Returns the number of panes closed; a count-based window does nothing.
+        """
+        if not self.time_based or not math.isfinite(now):
+            return 0
+        limit = math.floor((now - self.config.allowed_lateness_seconds) / self.pane_seconds) - 1
+        if limit <= self.window.closed_through:
+            return 0
+        closes = 0
+        for pane in [p for p in self.window.open_panes() if p.index <= limit]:
+            self._close(pane)
+            closes += 1
+        self.window.closed_through = max(self.window.closed_through, limit)
+        self.window.advance_to(limit)
+        return closes
 
     def flush(self) -> None:
         """Count every buffered transaction now (partial batches), e.g. at the end of a replay.
@@ -354,6 +377,11 @@ class Engine:
         """
         return self.window.snapshot(self.vocabulary.names, newest=newest, skip_newest=skip_newest)
 
+    def fresh_snapshot(self) -> WindowSnapshot:
+        """The window with every buffered transaction added as an exact overlay (what the
+        API and replay report); see :meth:`SlidingWindow.fresh_snapshot`."""
+        return self.window.fresh_snapshot(self.vocabulary.names)
+
     def split_snapshot(
         self, recent_panes: int
     ) -> tuple[WindowSnapshot, WindowSnapshot, WindowSnapshot]:
@@ -364,6 +392,16 @@ class Engine:
     def window_full(self) -> bool:
         """True once a whole window of panes has closed (the end of warm-up)."""
         return self.window.window_full
+
+    def pane_snapshot(self, pane: Pane) -> WindowSnapshot:
+        """Frozen counts of one pane's counted transactions."""
+        return self.window.pane_snapshot(self.vocabulary.names, pane)
+
+    def pane_start_time(self, pane: Pane) -> float | None:
+        """When a pane starts: its time span's start (time-based), or its first event time."""
+        if self.time_based:
+            return pane.index * self.pane_seconds
+        return pane.min_ts
 
     def statistics(self) -> EngineStatistics:
         """The engine's counters as a frozen :class:`EngineStatistics` (cheap: no summing of

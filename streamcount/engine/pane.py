@@ -35,6 +35,7 @@ class Pane:
         "_buf_len",
         "_buf_seq",
         "_buf_ts",
+        "_exact",
         "buffered",
         "closed",
         "first_seq",
@@ -58,6 +59,7 @@ class Pane:
         self._buf_len: list[np.ndarray] = []
         self._buf_seq: list[np.ndarray] = []
         self._buf_ts: list[np.ndarray] = []
+        self._exact: Pane | None = None  # the buffer counted exactly (cached)
 
     @property
     def counted(self) -> int:
@@ -83,6 +85,26 @@ class Pane:
         self._buf_seq.append(seq)
         self._buf_ts.append(ts)
         self.buffered += int(lengths.shape[0])
+
+    def exact_buffer(self) -> Pane | None:
+        """The buffered transactions counted exactly, as a pane of its own (epsilon 0), or
+        ``None`` when nothing is buffered. The overlay that makes answers fresh: its counts
+        are exact, so adding it to the window keeps every bound. Cached until the buffer
+        changes. Cost: one exact count of at most one batch."""
+        if not self.buffered:
+            return None
+        if self._exact is None or self._exact.counted != self.buffered:
+            exact = Pane(self.index, 0.0, len(self.summary.levels))
+            exact.append(
+                np.concatenate(self._buf_flat),
+                np.concatenate(self._buf_len),
+                np.concatenate(self._buf_seq),
+                np.concatenate(self._buf_ts),
+            )
+            exact.count_buffer()
+            exact.closed = True
+            self._exact = exact
+        return self._exact
 
     def count_buffer(self, limit: int | None = None) -> int:
         """Count the first ``limit`` buffered transactions (all when ``None``) as one batch."""

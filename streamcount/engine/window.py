@@ -121,6 +121,13 @@ class SlidingWindow:
         pane.closed = True
         self.closed_through = max(self.closed_through, pane.index)
 
+    def advance_to(self, index: int) -> None:
+        """Move the window's end to pane ``index`` although nothing was counted there (time
+        passed on a quiet feed): panes that left the window are dropped (closed ones only)."""
+        if index > self.newest_index:
+            self.newest_index = index
+            self._expire()
+
     def flush(self) -> None:
         """Count every buffered transaction now (partial batches); open panes stay open."""
         for pane in list(self.panes.values()):
@@ -163,6 +170,36 @@ class SlidingWindow:
         Cost: one merge of the panes' sorted entries per itemset size.
         """
         return sum_panes(self.live(newest, skip_newest), **self._shape(item_names)).snapshot
+
+    def fresh_parts(self) -> list[Pane]:
+        """The window as if every buffered transaction were counted: the counted panes of the
+        window that ends at the newest pane holding anything, plus each pane's buffer counted
+        exactly (:meth:`Pane.exact_buffer`). The counting state is not touched."""
+        held = [i for i, p in self.panes.items() if p.counted or p.buffered]
+        if not held:
+            return []
+        newest = max(held)
+        out: list[Pane] = []
+        for i in self.panes.irange(newest - self.window_panes + 1, newest):
+            pane = self.panes[i]
+            if pane.counted:
+                out.append(pane)
+            exact = pane.exact_buffer()
+            if exact is not None:
+                out.append(exact)
+        return out
+
+    def fresh_snapshot(self, item_names: Any) -> WindowSnapshot:
+        """:meth:`snapshot` with the transactions still buffered added as exact counts, so a
+        quiet feed's latest orders show at once. ``max_error`` is unchanged (the overlay is
+        exact); the window is exactly the transactions a flush would leave in it."""
+        if not self.buffered:
+            return self.snapshot(item_names)
+        return sum_panes(self.fresh_parts(), **self._shape(item_names)).snapshot
+
+    def pane_snapshot(self, item_names: Any, pane: Pane) -> WindowSnapshot:
+        """Frozen counts of one pane alone."""
+        return sum_panes([pane] if pane.counted else [], **self._shape(item_names)).snapshot
 
     def split_snapshot(
         self, item_names: Any, recent_panes: int
