@@ -62,33 +62,32 @@ class AddResult:
 class Engine:
     """Itemset counts over a sliding window with a guaranteed error bound.
 
-        Parameters
-        ----------
-        config:
-            Counting and window settings (``epsilon``, ``max_itemset_size``, ``window_size`` /
-            ``pane_size`` or ``window_seconds`` / ``pane_seconds``, ...).
-        on_pane_closed:
-            Called with the engine right after a pane is closed and counted.
+    Parameters
+    ----------
+    config:
+        Counting and window settings (``epsilon``, ``max_itemset_size``, ``window_size`` /
+        ``pane_size`` or ``window_seconds`` / ``pane_seconds``, ...).
+    on_pane_closed:
+        Called with the engine right after a pane is closed and counted.
 
-        Guarantee (for every itemset of size ``1..max_itemset_size`` and the window's
-        transactions ``first_seq..last_seq``): ``count <= true <= upper`` and
-        ``upper - count <= max_error <= ceil(epsilon * N) + panes``.
+    Guarantee (for every itemset of size ``1..max_itemset_size`` and the window's
+    transactions ``first_seq..last_seq``): ``count <= true <= upper`` and
+    ``upper - count <= max_error <= ceil(epsilon * N) + panes``.
 
-        Memory: the live panes' summaries (for single items at most ``w * H_B`` entries per pane,
-        Manku & Motwani 2002) plus at most one batch of buffered transactions per open pane.
+    Memory: the live panes' summaries (for single items at most ``w * H_B`` entries per pane,
+    Manku & Motwani 2002) plus at most one batch of buffered transactions per open pane.
 
-        Examples
-        --------
-        >>> from streamcount.config import EngineConfig
-    from streamcount.config.load import config_from_mapping
-        >>> eng = Engine(EngineConfig(epsilon=0.0, window_size=4, pane_size=2, max_itemset_size=2))
-        >>> _ = eng.add([["tea", "honey"], ["tea"], ["tea", "honey"], ["jam"], ["tea", "jam"]])
-        >>> eng.flush()
-        >>> snap = eng.snapshot()
-        >>> snap.first_seq, snap.last_seq, snap.transactions
-        (3, 5, 3)
-        >>> [(s.items, s.count) for s in snap.frequent(0.5)]
-        [(('jam',), 2), (('tea',), 2)]
+    Examples
+    --------
+    >>> from streamcount.config.settings import EngineConfig
+    >>> eng = Engine(EngineConfig(epsilon=0.0, window_size=4, pane_size=2, max_itemset_size=2))
+    >>> _ = eng.add([["tea", "honey"], ["tea"], ["tea", "honey"], ["jam"], ["tea", "jam"]])
+    >>> eng.flush()
+    >>> snap = eng.snapshot()
+    >>> snap.first_seq, snap.last_seq, snap.transactions
+    (3, 5, 3)
+    >>> [(s.items, s.count) for s in snap.frequent(0.5)]
+    [(('jam',), 2), (('tea',), 2)]
     """
 
     def __init__(

@@ -6,8 +6,9 @@ candidate rule ``X => Y`` (Agrawal, Imieliński & Swami 1993). Its counts come f
 as bounds (``a = c(Z)``, ``r = c(X)``, ``q = c(Y)``) and its measures as intervals
 (:mod:`streamcount.measures`). A candidate is kept when, in order:
 
-1. ``count(Z) >= min_count`` (``rules.min_count``, by default ``10 x max_error`` and at least
-   1: below that the relative error of the support can exceed 10 %);
+1. ``count(Z) >= min_count`` (``rules.min_count``, by default ``max(10, 10 x max_error)``:
+   below ``10 x max_error`` the relative error of the support can exceed 10 %, and below 10
+   transactions a rule rests on noise);
 2. support ``>= min_support`` on its lower bound (the support's point value *is* its lower
    bound, so this holds whether or not ``conservative`` is set);
 3. confidence ``>= min_confidence`` and lift ``>= min_lift``, judged on the intervals' low ends
@@ -247,9 +248,10 @@ def derive_rules(
     Examples
     --------
     Tan, Steinbach & Kumar (2005), ch. 6, Table 6.1, exact counts; ``{Diapers, Milk} =>
-    {Beer}`` has support 0.4 and confidence 2/3, ``{Beer, Milk} => {Diapers}`` confidence 1:
+    {Beer}`` has support 0.4 and confidence 2/3, ``{Beer, Milk} => {Diapers}`` confidence 1
+    (five transactions are below the default joint count of 10, so ``min_count=1`` here):
 
-    >>> from streamcount.snapshot import LevelCounts
+    >>> from streamcount.engine.snapshot import LevelCounts
     >>> import numpy as np
     >>> names = ["Beer", "Diapers", "Milk"]
     >>> lv = lambda rows, c: LevelCounts(len(rows[0]), np.array(rows, dtype=np.int32),
@@ -259,7 +261,7 @@ def derive_rules(
     ...      lv([[0, 1, 2]], [2])), names)
     >>> cfg = RulesConfig(min_support=0.4, min_confidence=0.6, min_lift=1.0, max_p_value=None)
     >>> [(r.antecedent, r.consequent, round(r.confidence.value, 2))
-    ...  for r in derive_rules(snap, cfg) if len(r.antecedent) == 2]
+    ...  for r in derive_rules(snap, cfg, min_count=1) if len(r.antecedent) == 2]
     [(('Beer', 'Milk'), ('Diapers',), 1.0), (('Diapers', 'Milk'), ('Beer',), 0.67)]
     """
     if config.significance not in _SIGNIFICANCE:
