@@ -235,7 +235,7 @@ def test_bad_config_names_key_and_rule(tmp_path: Path, text: str, key: str, rule
     assert err.key == key
     assert rule in err.rule
     assert str(err).startswith(f"{key} = ")
-    assert err.source == str(path)  # type: ignore[attr-defined]
+    assert err.source == str(path)
 
 
 def test_exponent_without_dot_gets_a_hint(tmp_path: Path) -> None:

@@ -372,7 +372,7 @@ def _build(cls: type, data: object, prefix: str) -> Any:
             continue
         path = f"{prefix}{name}"
         hint = hints[name]
-        if dataclasses.is_dataclass(hint):
+        if isinstance(hint, type) and dataclasses.is_dataclass(hint):
             values[name] = _build(hint, data[name], path + ".")
             continue
         value = _check_type(path, data[name], hint)
@@ -486,7 +486,7 @@ def config_from_mapping(data: Mapping[str, Any] | None, *, source: str = "<mappi
         cfg: Config = _build(Config, data, "")
         _cross_checks(cfg)
     except ConfigError as err:
-        err.source = source  # type: ignore[attr-defined]
+        err.source = source
         raise
     return cfg
 
@@ -498,7 +498,7 @@ class _UniqueKeyLoader(yaml.SafeLoader):
 def _construct_unique_mapping(loader: _UniqueKeyLoader, node: yaml.MappingNode) -> dict[Any, Any]:
     seen: set[Any] = set()
     for key_node, _ in node.value:
-        key = loader.construct_object(key_node)  # type: ignore[no-untyped-call]
+        key = loader.construct_object(key_node)
         if key in seen:
             mark = key_node.start_mark
             raise ConfigError(
@@ -512,7 +512,7 @@ def _construct_unique_mapping(loader: _UniqueKeyLoader, node: yaml.MappingNode) 
 
 _UniqueKeyLoader.add_constructor(
     yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG,
-    _construct_unique_mapping,  # type: ignore[arg-type]
+    _construct_unique_mapping,
 )
 
 

@@ -87,7 +87,7 @@ import time
 from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass, fields
 from datetime import UTC, datetime
-from typing import TextIO
+from typing import Any, TextIO
 
 import numpy as np
 
@@ -614,7 +614,7 @@ def parse_start_time(text: str) -> float:
     return value
 
 
-def register_cli(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+def register_cli(subparsers: argparse._SubParsersAction[Any]) -> None:
     """Add the ``generate`` subcommand (its handler is ``args.func = generate_main``)."""
     d = GeneratorParams()
     parser = subparsers.add_parser(

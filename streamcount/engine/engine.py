@@ -22,8 +22,9 @@ from __future__ import annotations
 import dataclasses
 import math
 from collections import Counter
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
@@ -104,10 +105,10 @@ class Engine:
         self.width = bucket_width(self.epsilon)
         self.max_itemset_size = int(config.max_itemset_size)
         self.time_based = config.window_seconds is not None
-        if self.time_based:
+        if config.window_seconds is not None:
             assert config.pane_seconds is not None  # checked with the config rules above
             self.pane_seconds = float(config.pane_seconds)
-            window_seconds = float(config.window_seconds)  # type: ignore[arg-type]
+            window_seconds = float(config.window_seconds)
             self.window_panes = round(window_seconds / self.pane_seconds)
             self.pane_size: int | None = None
         else:
@@ -414,7 +415,7 @@ class Engine:
     def from_state(
         cls,
         config: EngineConfig,
-        meta: dict[str, object],
+        meta: Mapping[str, Any],
         arrays: dict[str, np.ndarray],
         *,
         on_pane_closed: Callable[[Engine], None] | None = None,
@@ -432,11 +433,11 @@ class Engine:
                     f"{getattr(eng, key)!r}"
                 )
         eng.vocabulary = ItemVocabulary.from_arrays(arrays)
-        eng.next_seq = int(meta["next_seq"])  # type: ignore[call-overload]
-        eng.transactions_seen = int(meta["transactions_seen"])  # type: ignore[call-overload]
-        eng.rejected = Counter(meta["rejected"])  # type: ignore[arg-type]
-        eng.max_event_ts = meta["max_event_ts"]  # type: ignore[assignment]
-        eng.window.load_state(meta["window"], arrays)  # type: ignore[arg-type]
+        eng.next_seq = int(meta["next_seq"])
+        eng.transactions_seen = int(meta["transactions_seen"])
+        eng.rejected = Counter(meta["rejected"])
+        eng.max_event_ts = meta["max_event_ts"]
+        eng.window.load_state(meta["window"], arrays)
         return eng
 
 

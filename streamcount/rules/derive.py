@@ -31,8 +31,9 @@ Rules and the alerts built on them are signals for a person to review, not decis
 from __future__ import annotations
 
 import itertools
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -68,7 +69,7 @@ THRESHOLD_RTOL = 1e-9
 
 def at_least(value: np.ndarray | float, threshold: float) -> np.ndarray | bool:
     """``value >= threshold`` up to :data:`THRESHOLD_RTOL` (relative)."""
-    return value >= threshold - THRESHOLD_RTOL * abs(threshold)  # type: ignore[no-any-return]
+    return value >= threshold - THRESHOLD_RTOL * abs(threshold)
 
 
 @dataclass(frozen=True, slots=True)
@@ -120,7 +121,8 @@ class Rule:
     def measure(self, name: str) -> Measure:
         if name not in MEASURE_NAMES:
             raise ValueError(f"measure {name!r} is unknown; choose one of {MEASURE_NAMES}")
-        return getattr(self, name)  # type: ignore[no-any-return]
+        found: Measure = getattr(self, name)
+        return found
 
     def measures_dict(self) -> dict[str, dict[str, float | None]]:
         """``{name: {"value", "low", "high"}}``; infinite numbers are ``None``."""
@@ -144,26 +146,30 @@ class Rule:
         }
 
     @classmethod
-    def from_dict(cls, d: dict[str, object]) -> Rule:
-        """Inverse of :meth:`as_dict`."""
-        counts: dict[str, dict[str, int]] = d["counts"]  # type: ignore[assignment]
-        measures: dict[str, dict[str, float | None]] = d["measures"]  # type: ignore[assignment]
+    def from_dict(cls, d: Mapping[str, Any]) -> Rule:
+        """Inverse of :meth:`as_dict` (``d`` as decoded from JSON)."""
+        counts: Mapping[str, Mapping[str, int]] = d["counts"]
+        measures: Mapping[str, dict[str, float | None]] = d["measures"]
 
         def cb(name: str) -> CountBounds:
             return CountBounds(int(counts[name]["low"]), int(counts[name]["high"]))
 
         p = d.get("p_value")
         return cls(
-            tuple(d["antecedent"]),  # type: ignore[arg-type]
-            tuple(d["consequent"]),  # type: ignore[arg-type]
-            tuple(int(i) for i in d["antecedent_ids"]),  # type: ignore[attr-defined]
-            tuple(int(i) for i in d["consequent_ids"]),  # type: ignore[attr-defined]
+            tuple(d["antecedent"]),
+            tuple(d["consequent"]),
+            tuple(int(i) for i in d["antecedent_ids"]),
+            tuple(int(i) for i in d["consequent_ids"]),
             cb("joint"),
             cb("antecedent"),
             cb("consequent"),
-            int(d["transactions"]),  # type: ignore[call-overload]
-            *(Measure.from_dict(measures[name]) for name in MEASURE_NAMES),
-            p_value=None if p is None else float(p),  # type: ignore[arg-type]
+            int(d["transactions"]),
+            support=Measure.from_dict(measures["support"]),
+            confidence=Measure.from_dict(measures["confidence"]),
+            lift=Measure.from_dict(measures["lift"]),
+            leverage=Measure.from_dict(measures["leverage"]),
+            conviction=Measure.from_dict(measures["conviction"]),
+            p_value=None if p is None else float(p),
         )
 
 
@@ -202,8 +208,8 @@ def _concat_measures(parts: list[RuleMeasures], transactions: int) -> RuleMeasur
 
 def _build_rules(
     snapshot: WindowSnapshot,
-    antecedent_rows: np.ndarray,
-    consequent_rows: np.ndarray,
+    antecedent_rows: Sequence[np.ndarray],
+    consequent_rows: Sequence[np.ndarray],
     m: RuleMeasures,
     p_values: Sequence[float | None],
 ) -> list[Rule]:
@@ -222,7 +228,11 @@ def _build_rules(
                 CountBounds(int(m.r_low[i]), int(m.r_high[i])),
                 CountBounds(int(m.q_low[i]), int(m.q_high[i])),
                 m.transactions,
-                *(m.measure(name).at(i) for name in MEASURE_NAMES),
+                support=m.support.at(i),
+                confidence=m.confidence.at(i),
+                lift=m.lift.at(i),
+                leverage=m.leverage.at(i),
+                conviction=m.conviction.at(i),
                 p_value=p_values[i],
             )
         )
@@ -332,7 +342,7 @@ def derive_rules(
     sel = np.asarray(chosen, dtype=np.int64)
     x_rows = [ant_blocks[b][r] for b, r in zip(block[sel].tolist(), row[sel].tolist(), strict=True)]
     y_rows = [con_blocks[b][r] for b, r in zip(block[sel].tolist(), row[sel].tolist(), strict=True)]
-    return _build_rules(snapshot, x_rows, y_rows, m.take(sel), p_values)  # type: ignore[arg-type]
+    return _build_rules(snapshot, x_rows, y_rows, m.take(sel), p_values)
 
 
 def measure_rules(
@@ -348,8 +358,8 @@ def measure_rules(
     counts as untracked (``(0, max_error)``). With ``config`` and a ``max_p_value``, the
     p-value is filled in too. Vectorised per (antecedent size, consequent size) group.
     """
-    keys = [(tuple(sorted(x)), tuple(sorted(y))) for x, y in keys]
-    if not keys:
+    pairs = [(tuple(sorted(x)), tuple(sorted(y))) for x, y in keys]
+    if not pairs:
         return []
     n = int(snapshot.transactions)
     index = {name: i for i, name in enumerate(snapshot.item_names)}
@@ -367,10 +377,10 @@ def measure_rules(
     def bounds(rows: list[list[int] | None]) -> tuple[np.ndarray, np.ndarray]:
         low = np.zeros(len(rows), dtype=np.int64)
         high = np.full(len(rows), e, dtype=np.int64)
-        known = [i for i, ids in enumerate(rows) if ids is not None and len(ids) <= max_k]
         by_size: dict[int, list[int]] = {}
-        for i in known:
-            by_size.setdefault(len(rows[i]), []).append(i)  # type: ignore[arg-type]
+        for i, ids in enumerate(rows):
+            if ids is not None and len(ids) <= max_k:
+                by_size.setdefault(len(ids), []).append(i)
         for _size, members in by_size.items():
             arr = np.array([rows[i] for i in members], dtype=np.int32)
             lo, hi = snapshot.bounds_many(arr)
@@ -378,15 +388,15 @@ def measure_rules(
             high[members] = hi
         return low, high
 
-    x_ids = [ids_of(x) for x, _ in keys]
-    y_ids = [ids_of(y) for _, y in keys]
+    x_ids = [ids_of(x) for x, _ in pairs]
+    y_ids = [ids_of(y) for _, y in pairs]
     z_ids = [
         None if xi is None or yi is None else sorted(xi + yi)
         for xi, yi in zip(x_ids, y_ids, strict=True)
     ]
     m = rule_measures(n, bounds(z_ids), bounds(x_ids), bounds(y_ids))
     out = []
-    for i, (x, y) in enumerate(keys):
+    for i, (x, y) in enumerate(pairs):
         p: float | None = None
         if config is not None and config.max_p_value is not None and n > 0:
             p = rule_p_value(config, n, int(m.a_low[i]), int(m.r_high[i]), int(m.q_high[i]))
@@ -400,7 +410,11 @@ def measure_rules(
                 CountBounds(int(m.r_low[i]), int(m.r_high[i])),
                 CountBounds(int(m.q_low[i]), int(m.q_high[i])),
                 n,
-                *(m.measure(name).at(i) for name in MEASURE_NAMES),
+                support=m.support.at(i),
+                confidence=m.confidence.at(i),
+                lift=m.lift.at(i),
+                leverage=m.leverage.at(i),
+                conviction=m.conviction.at(i),
                 p_value=p,
             )
         )
