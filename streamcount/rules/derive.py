@@ -31,7 +31,7 @@ Rules and the alerts built on them are signals for a person to review, not decis
 from __future__ import annotations
 
 import itertools
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -39,7 +39,6 @@ import numpy as np
 
 from streamcount.config.settings import RulesConfig
 from streamcount.engine.snapshot import WindowSnapshot
-from streamcount.errors import ConfigError
 from streamcount.rules.measures import (
     MEASURE_NAMES,
     CountBounds,
@@ -51,6 +50,8 @@ from streamcount.rules.measures import (
 )
 
 __all__ = [
+    "MIN_JOINT_COUNT",
+    "SIGNIFICANCE_TESTS",
     "THRESHOLD_RTOL",
     "Rule",
     "at_least",
@@ -60,7 +61,13 @@ __all__ = [
     "rule_p_value",
 ]
 
-_SIGNIFICANCE = ("fisher", "chi2")
+#: the one-sided tests ``rules.significance`` may name, as ``(N, a, r, q) -> p``; the config
+#: rules take the names from here
+_TESTS: dict[str, Callable[[int, int, int, int], float]] = {
+    "fisher": fisher_greater,
+    "chi2": chi_square_p_greater,
+}
+SIGNIFICANCE_TESTS: tuple[str, ...] = tuple(_TESTS)
 
 #: thresholds are relaxed by this relative amount before comparing, so that float rounding in
 #: products such as ``0.07 * 100 = 7.000000000000001`` does not reject an exact match
@@ -187,12 +194,9 @@ def joint_count_threshold(snapshot: WindowSnapshot, config: RulesConfig) -> int:
 
 
 def rule_p_value(config: RulesConfig, transactions: int, a: int, r: int, q: int) -> float:
-    """p-value of the test named by ``config.significance`` for one table (a, r, q, N)."""
-    if config.significance == "fisher":
-        return fisher_greater(transactions, a, r, q)
-    if config.significance == "chi2":
-        return chi_square_p_greater(transactions, a, r, q)
-    raise ConfigError("rules.significance", config.significance, f"must be one of {_SIGNIFICANCE}")
+    """p-value of the test named by ``config.significance`` (one of
+    :data:`SIGNIFICANCE_TESTS`, checked with the other settings) for one table (a, r, q, N)."""
+    return _TESTS[config.significance](transactions, a, r, q)
 
 
 def _concat_measures(parts: list[RuleMeasures], transactions: int) -> RuleMeasures:
@@ -274,10 +278,6 @@ def derive_rules(
     ...  for r in derive_rules(snap, cfg, min_count=1) if len(r.antecedent) == 2]
     [(('Beer', 'Milk'), ('Diapers',), 1.0), (('Diapers', 'Milk'), ('Beer',), 0.67)]
     """
-    if config.significance not in _SIGNIFICANCE:
-        raise ConfigError(
-            "rules.significance", config.significance, f"must be one of {_SIGNIFICANCE}"
-        )
     n = int(snapshot.transactions)
     if n <= 0:
         return []
