@@ -33,7 +33,7 @@ from __future__ import annotations
 import itertools
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, overload
 
 import numpy as np
 
@@ -74,8 +74,17 @@ SIGNIFICANCE_TESTS: tuple[str, ...] = tuple(_TESTS)
 THRESHOLD_RTOL = 1e-9
 
 
+@overload
+def at_least(value: np.ndarray, threshold: float) -> np.ndarray: ...
+
+
+@overload
+def at_least(value: float, threshold: float) -> bool: ...
+
+
 def at_least(value: np.ndarray | float, threshold: float) -> np.ndarray | bool:
-    """``value >= threshold`` up to :data:`THRESHOLD_RTOL` (relative)."""
+    """``value >= threshold`` up to :data:`THRESHOLD_RTOL` (relative), elementwise for
+    arrays."""
     return value >= threshold - THRESHOLD_RTOL * abs(threshold)
 
 
