@@ -5,7 +5,7 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 
-.PHONY: demo test test-fast lint fmt bench clean tools
+.PHONY: demo test test-fast lint typecheck fmt bench clean tools
 
 # The external programs the tests drive, each as program=Debian package. tests/tools.py holds
 # the same table (tests/test_tools.py checks the two agree).
@@ -42,6 +42,7 @@ tools:
 test: $(STAMP) tools
 	$(BIN)/ruff check streamcount tests bench examples
 	$(BIN)/ruff format --check streamcount tests bench examples
+	$(BIN)/mypy
 	$(BIN)/python -m pytest -q
 
 ## test-fast: everything but the tests marked slow
@@ -52,6 +53,10 @@ lint: $(STAMP)
 	$(BIN)/ruff check streamcount tests bench examples
 	$(BIN)/ruff format --check streamcount tests bench examples
 
+## typecheck: mypy as configured in pyproject.toml (--strict for the counting core)
+typecheck: $(STAMP)
+	$(BIN)/mypy
+
 fmt: $(STAMP)
 	$(BIN)/ruff format streamcount tests bench examples
 	$(BIN)/ruff check --fix streamcount tests bench examples
@@ -61,4 +66,4 @@ bench: $(STAMP)
 	$(BIN)/python bench/bench_replay.py --record
 
 clean:
-	rm -rf $(VENV) .pytest_cache .ruff_cache .hypothesis build *.egg-info
+	rm -rf $(VENV) .pytest_cache .ruff_cache .mypy_cache .hypothesis build *.egg-info

@@ -13,8 +13,8 @@ Data flow (open the modules in this order to follow one order through the servic
     alerts      RuleMonitor: hysteresis, confirmation, cooldown, surges, families -> Alert
     sinks       alert records -> log / JSON lines / webhook, each isolated
 
-Around the flow: config + configload (typed, validated settings), metrics (Prometheus),
-server (HTTP API), checkpoint (atomic, versioned state files), app (the service loop),
+Around the flow: config (typed settings, loaded and checked by one rules table), metrics
+(Prometheus), server (HTTP API), checkpoint (atomic, versioned state files), app (the service loop),
 replay (a file as fast as possible), generator + catalog + demo (synthetic feeds), cli.
 """
 

@@ -56,12 +56,19 @@ class ConfigError(StreamcountError, ValueError):
         The value found.
     rule:
         The rule it breaks, written as advice, e.g. ``"must be in [0, 1)"``.
+
+    Attributes
+    ----------
+    source:
+        Where the settings came from (a file path, ``"<overrides>"``...), set by the loader;
+        ``None`` when unknown.
     """
 
     def __init__(self, key: str, value: object, rule: str) -> None:
         self.key = key
         self.value = value
         self.rule = rule
+        self.source: str | None = None
         super().__init__(f"{key} = {value!r}: {rule}")
 
 

@@ -207,7 +207,20 @@ BAD_CONFIGS = [
     ("input:\n  path: '-'\n", "input.path", "input.source: stdin"),
     ("input:\n  start_at: middle\n", "input.start_at", "'beginning', 'end'"),
     ("input:\n  encoding: klingon-8\n", "input.encoding", "text encoding"),
+    ("input:\n  encoding: utf-16\n", "input.encoding", "ASCII-compatible"),
     ("input:\n  csv:\n    delimiter: ';;'\n", "input.csv.delimiter", "single character"),
+    ("input:\n  csv:\n    delimiter: '\"'\n", "input.csv.delimiter", "other than a quote"),
+    (
+        "input:\n  format: csv\n  csv:\n    header: false\n",
+        "input.csv.order_field",
+        "0-based number",
+    ),
+    (
+        "input:\n  format: csv\n  csv:\n    header: false\n    order_field: '0'\n"
+        "    item_field: '1'\n    ts_field: '2'\n    quantity_field: qty\n",
+        "input.csv.quantity_field",
+        "0-based number",
+    ),
     (
         "input:\n  source: [file, http]\nserver:\n  listen: null\n",
         "input.source",
@@ -242,7 +255,7 @@ def test_bad_config_names_key_and_rule(tmp_path: Path, text: str, key: str, rule
     assert err.key == key
     assert rule in err.rule
     assert str(err).startswith(f"{key} = ")
-    assert err.source == str(path)  # type: ignore[attr-defined]
+    assert err.source == str(path)
 
 
 def test_exponent_without_dot_gets_a_hint(tmp_path: Path) -> None:
@@ -337,6 +350,17 @@ def test_parse_listen() -> None:
             parse_listen(bad)
 
 
+def test_csv_column_numbers_are_only_required_for_csv() -> None:
+    # header: false needs column numbers only where the CSV decoder is used
+    csv = {"header": False}
+    assert config_from_mapping({"input": {"format": "basket", "csv": csv}}).input.csv == (
+        dataclasses.replace(Config().input.csv, header=False)
+    )
+    numbers = {"header": False, "order_field": "2", "item_field": "0", "ts_field": "1"}
+    cfg = config_from_mapping({"input": {"format": "csv", "csv": numbers}})
+    assert (cfg.input.csv.header, cfg.input.csv.order_field) == (False, "2")
+
+
 def test_check_config_main(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     good = _write(tmp_path, "engine:\n  epsilon: 0.01\n", "good.yaml")
     assert check_config_main(good) == 0
@@ -353,7 +377,7 @@ def test_check_config_main(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -
 
 def test_engine_section_fields_are_all_validated() -> None:
     # every engine key has a rule in the table (a key without any rule is easy to forget)
-    from streamcount.config.load import _RULES
+    from streamcount.config.checks import KEY_RULES
 
     for f in dataclasses.fields(EngineConfig):
-        assert f"engine.{f.name}" in _RULES, f.name
+        assert f"engine.{f.name}" in KEY_RULES, f.name

@@ -88,8 +88,9 @@ from __future__ import annotations
 
 import json
 import math
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -559,7 +560,7 @@ class CusumBank:
 
     @classmethod
     def load_state(
-        cls, meta: dict[str, object], arrays: dict[str, np.ndarray], prefix: str = ""
+        cls, meta: Mapping[str, Any], arrays: Mapping[str, np.ndarray], prefix: str = ""
     ) -> CusumBank:
         """Rebuild a bank from :meth:`state_dict` output (checked; CheckpointError if bad)."""
         try:
@@ -567,14 +568,14 @@ class CusumBank:
                 raise CheckpointError(f"cusum state format {meta.get('format')!r} != {_FORMAT}")
             json.dumps(meta)
             bank = cls(
-                ratios=meta["ratios"],  # type: ignore[arg-type]
-                baseline_panes=float(meta["baseline_panes"]),  # type: ignore[arg-type]
-                z=float(meta["z"]),  # type: ignore[arg-type]
-                evidence_z=float(meta["evidence_z"]),  # type: ignore[arg-type]
+                ratios=meta["ratios"],
+                baseline_panes=float(meta["baseline_panes"]),
+                z=float(meta["z"]),
+                evidence_z=float(meta["evidence_z"]),
                 backfill=bool(meta["backfill"]),
-                margin=float(meta["margin"]),  # type: ignore[arg-type]
+                margin=float(meta["margin"]),
             )
-            bank.last_pane = int(meta["last_pane"])  # type: ignore[call-overload]
+            bank.last_pane = int(meta["last_pane"])
             bank.keys = np.array(arrays[f"{prefix}keys"], dtype=np.int64)
             for name, ref in bank._a.items():
                 bank._a[name] = np.array(arrays[f"{prefix}{name}"], dtype=ref.dtype)

@@ -16,6 +16,7 @@ from __future__ import annotations
 import math
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
+from typing import Any
 
 from streamcount.config.settings import RulesConfig
 from streamcount.engine.snapshot import WindowSnapshot
@@ -159,19 +160,19 @@ class RuleListing:
             for _, s in sorted(self.rules.items())
         ]
 
-    def load_state(self, entries: Iterable[Mapping[str, object]]) -> None:
+    def load_state(self, entries: Iterable[Mapping[str, Any]]) -> None:
         rules: dict[RuleKey, ListedRule] = {}
         try:
             for e in entries:
-                rule = Rule.from_dict(e["rule"])  # type: ignore[arg-type]
+                rule = Rule.from_dict(e["rule"])
                 rules[rule.key] = ListedRule(
                     rule,
                     bool(e["listed"]),
-                    int(e["since_seq"]),  # type: ignore[call-overload]
-                    int(e["since_pane"]),  # type: ignore[call-overload]
+                    int(e["since_seq"]),
+                    int(e["since_pane"]),
                     bool(e["announced"]),
                     bool(e["faded"]),
-                    e.get("last_change"),  # type: ignore[arg-type]
+                    e.get("last_change"),
                 )
         except (KeyError, TypeError, ValueError) as exc:
             raise CheckpointError(f"rule listing state is malformed: {exc!r}") from exc

@@ -212,7 +212,7 @@ class RuleMonitor:
             int(k.size) for keys in eligible.values() for k in keys.values()
         )
         n = int(pane_counts.transactions)
-        h = threshold(self.alerts_config.false_alerts_per_million, tests, n)
+        h = float(threshold(self.alerts_config.false_alerts_per_million, tests, n))
         self.budget = Budget(self.alerts_config.false_alerts_per_million, tests, h)
         alarms = tracker.update(pane_counts, pane_index=pane, threshold=h)
         if not warm:
@@ -249,9 +249,9 @@ class RuleMonitor:
         index = {name: i for i, name in enumerate(window.item_names)}
         rows: dict[int, list[list[int]]] = {}
         for state in self.listing.rules.values():
-            ids = [index.get(name) for name in state.rule.items]
-            if len(ids) >= 2 and all(i is not None for i in ids):
-                rows.setdefault(len(ids), []).append(sorted(ids))  # type: ignore[type-var]
+            names = state.rule.items
+            if len(names) >= 2 and all(name in index for name in names):
+                rows.setdefault(len(names), []).append(sorted(index[name] for name in names))
         out = {
             k: self.tracker.keys_of(np.array(v, dtype=np.int32))
             for k, v in rows.items()

@@ -14,6 +14,7 @@ import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 
+from streamcount.engine.snapshot import WindowSnapshot
 from streamcount.rules.measures import Measure
 
 __all__ = ["Alert", "Evidence", "alert_id", "window_dict"]
@@ -38,13 +39,13 @@ def _num(x: float | None) -> float | None:
     return None if x is None or not math.isfinite(x) else float(x)
 
 
-def window_dict(snapshot: object) -> dict[str, int]:
+def window_dict(snapshot: WindowSnapshot) -> dict[str, int]:
     """``{first_seq, last_seq, transactions, max_error}`` of a window snapshot."""
     return {
-        "first_seq": int(snapshot.first_seq),  # type: ignore[attr-defined]
-        "last_seq": int(snapshot.last_seq),  # type: ignore[attr-defined]
-        "transactions": int(snapshot.transactions),  # type: ignore[attr-defined]
-        "max_error": int(snapshot.max_error),  # type: ignore[attr-defined]
+        "first_seq": int(snapshot.first_seq),
+        "last_seq": int(snapshot.last_seq),
+        "transactions": int(snapshot.transactions),
+        "max_error": int(snapshot.max_error),
     }
 
 

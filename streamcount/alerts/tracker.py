@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import logging
 from collections.abc import Mapping
+from typing import Any
 
 import numpy as np
 
@@ -192,21 +193,21 @@ class ChangeTracker:
 
     def state(self) -> tuple[dict[str, object], dict[str, np.ndarray]]:
         """JSON-able settings and the banks' arrays."""
-        meta: dict[str, object] = {"radix": self.radix, "banks": {}}
+        banks: dict[str, object] = {}
         arrays: dict[str, np.ndarray] = {}
         for k, bank in self.banks.items():
             bank_meta, bank_arrays = bank.state_dict(prefix=f"cusum{k}.")
-            meta["banks"][str(k)] = bank_meta  # type: ignore[index]
+            banks[str(k)] = bank_meta
             arrays.update(bank_arrays)
-        return meta, arrays
+        return {"radix": self.radix, "banks": banks}, arrays
 
-    def load_state(self, meta: Mapping[str, object], arrays: Mapping[str, np.ndarray]) -> None:
+    def load_state(self, meta: Mapping[str, Any], arrays: Mapping[str, np.ndarray]) -> None:
         """Restore :meth:`state` (raises CheckpointError when it does not fit)."""
         banks = meta["banks"]
         assert isinstance(banks, Mapping)
         for k in self.banks:
             self.banks[k] = CusumBank.load_state(banks[str(k)], dict(arrays), prefix=f"cusum{k}.")
-        self.radix = int(meta["radix"])  # type: ignore[call-overload]
+        self.radix = int(meta["radix"])
 
     def check_invariants(self) -> None:
         for bank in self.banks.values():

@@ -4,10 +4,10 @@ Every section of the YAML file maps to one frozen dataclass below; the field nam
 config keys, the command-line options (``--min-support`` is ``min_support``) and the names
 used in JSON output and metrics. ``config/default.yaml`` documents every key.
 
-Loading and validation (``load_config``, ``config_from_mapping``) live in
-:mod:`streamcount.configload`: a YAML mapping is validated once into a :class:`Config`; an
-unknown key or a bad value raises :class:`~streamcount.errors.ConfigError` naming the dotted
-key, the value and the rule.
+Loading (``load_config``, ``config_from_mapping``) lives in :mod:`streamcount.config.load`
+and every rule a value must keep in :mod:`streamcount.config.checks`: a YAML mapping is
+validated once into a :class:`Config`; an unknown key or a bad value raises
+:class:`~streamcount.errors.ConfigError` naming the dotted key, the value and the rule.
 """
 
 from __future__ import annotations

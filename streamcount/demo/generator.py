@@ -87,12 +87,13 @@ import time
 from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass, fields
 from datetime import UTC, datetime
-from typing import TextIO
+from typing import Any, TextIO
 
 import numpy as np
 
 from streamcount.demo.shop import item_name
 from streamcount.errors import ConfigError, StreamcountError
+from streamcount.intake.formats import FORMATS as _FORMAT_REGISTRY
 
 __all__ = [
     "DEFAULT_DRIFT_RATE",
@@ -116,8 +117,9 @@ __all__ = [
 DEFAULT_START_TIME: float = 1_735_689_600.0
 #: Per-transaction probability of a drift written without ``~RATE``.
 DEFAULT_DRIFT_RATE: float = 0.05
-#: Output formats of ``streamcount generate``.
-FORMATS: tuple[str, ...] = ("basket", "jsonl", "csv")
+#: Output formats of ``streamcount generate``: every record format the service reads (the
+#: registry :data:`streamcount.intake.formats.FORMATS`), each with a writer below.
+FORMATS: tuple[str, ...] = tuple(_FORMAT_REGISTRY)
 
 Record = tuple[float, tuple[str, ...]]
 
@@ -614,7 +616,7 @@ def parse_start_time(text: str) -> float:
     return value
 
 
-def register_cli(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+def register_cli(subparsers: argparse._SubParsersAction[Any]) -> None:
     """Add the ``generate`` subcommand (its handler is ``args.func = generate_main``)."""
     d = GeneratorParams()
     parser = subparsers.add_parser(

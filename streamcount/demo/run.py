@@ -21,7 +21,7 @@ import sys
 import threading
 import time
 from collections import Counter
-from collections.abc import Iterator
+from collections.abc import Iterator, Mapping
 from typing import Any, TextIO
 
 from streamcount.alerts.sinks import SinkStats
@@ -150,7 +150,7 @@ class PacedFeedSource:
         self.exhausted = True
 
 
-def format_alert(record: dict[str, Any]) -> str:
+def format_alert(record: Mapping[str, Any]) -> str:
     """One readable line (two for rules) for an alert record."""
     m = record["measures"]
     seq = f"order {record['seq']:,}"
@@ -159,7 +159,10 @@ def format_alert(record: dict[str, Any]) -> str:
         x = m.get(name)
         if not x or x.get("value") is None:
             return "n/a"
-        fmt = (lambda v: f"{100 * v:.1f}%") if pct else (lambda v: f"{v:.2f}")
+
+        def fmt(v: float) -> str:
+            return f"{100 * v:.1f}%" if pct else f"{v:.2f}"
+
         lo = "?" if x.get("low") is None else fmt(x["low"])
         hi = "inf" if x.get("high") is None else fmt(x["high"])
         return f"{fmt(x['value'])} [{lo}..{hi}]"
@@ -196,10 +199,10 @@ class ConsoleSink:
         self.as_json = as_json
         self.status_line = status_line
         self.sent = 0
-        self.records: list[dict[str, Any]] = []
+        self.records: list[Mapping[str, Any]] = []
         self._lock = threading.Lock()
 
-    def emit(self, record: dict[str, Any]) -> None:
+    def emit(self, record: Mapping[str, Any]) -> None:
         text = json.dumps(record, sort_keys=True) if self.as_json else format_alert(record)
         with self._lock:
             if self.status_line:

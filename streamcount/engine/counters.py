@@ -304,7 +304,7 @@ class LossySummary:
             # tracked entries: to local ids; drop those with a pruned item or subset
             if len(old):
                 loc_rows = local[old.items] if old.items.size else old.items.astype(np.int64)
-                ok = (loc_rows >= 0).all(axis=1)
+                ok = np.asarray((loc_rows >= 0).all(axis=1))
                 loc_rows = np.where(ok[:, None], loc_rows, 0)
                 ok &= membership.all_subsets_present(loc_rows)
                 old_keys = _pack_local(loc_rows[ok], m)

@@ -22,8 +22,9 @@ from __future__ import annotations
 import dataclasses
 import math
 from collections import Counter
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
@@ -62,33 +63,32 @@ class AddResult:
 class Engine:
     """Itemset counts over a sliding window with a guaranteed error bound.
 
-        Parameters
-        ----------
-        config:
-            Counting and window settings (``epsilon``, ``max_itemset_size``, ``window_size`` /
-            ``pane_size`` or ``window_seconds`` / ``pane_seconds``, ...).
-        on_pane_closed:
-            Called with the engine right after a pane is closed and counted.
+    Parameters
+    ----------
+    config:
+        Counting and window settings (``epsilon``, ``max_itemset_size``, ``window_size`` /
+        ``pane_size`` or ``window_seconds`` / ``pane_seconds``, ...).
+    on_pane_closed:
+        Called with the engine right after a pane is closed and counted.
 
-        Guarantee (for every itemset of size ``1..max_itemset_size`` and the window's
-        transactions ``first_seq..last_seq``): ``count <= true <= upper`` and
-        ``upper - count <= max_error <= ceil(epsilon * N) + panes``.
+    Guarantee (for every itemset of size ``1..max_itemset_size`` and the window's
+    transactions ``first_seq..last_seq``): ``count <= true <= upper`` and
+    ``upper - count <= max_error <= ceil(epsilon * N) + panes``.
 
-        Memory: the live panes' summaries (for single items at most ``w * H_B`` entries per pane,
-        Manku & Motwani 2002) plus at most one batch of buffered transactions per open pane.
+    Memory: the live panes' summaries (for single items at most ``w * H_B`` entries per pane,
+    Manku & Motwani 2002) plus at most one batch of buffered transactions per open pane.
 
-        Examples
-        --------
-        >>> from streamcount.config import EngineConfig
-    from streamcount.config.load import config_from_mapping
-        >>> eng = Engine(EngineConfig(epsilon=0.0, window_size=4, pane_size=2, max_itemset_size=2))
-        >>> _ = eng.add([["tea", "honey"], ["tea"], ["tea", "honey"], ["jam"], ["tea", "jam"]])
-        >>> eng.flush()
-        >>> snap = eng.snapshot()
-        >>> snap.first_seq, snap.last_seq, snap.transactions
-        (3, 5, 3)
-        >>> [(s.items, s.count) for s in snap.frequent(0.5)]
-        [(('jam',), 2), (('tea',), 2)]
+    Examples
+    --------
+    >>> from streamcount.config.settings import EngineConfig
+    >>> eng = Engine(EngineConfig(epsilon=0.0, window_size=4, pane_size=2, max_itemset_size=2))
+    >>> _ = eng.add([["tea", "honey"], ["tea"], ["tea", "honey"], ["jam"], ["tea", "jam"]])
+    >>> eng.flush()
+    >>> snap = eng.snapshot()
+    >>> snap.first_seq, snap.last_seq, snap.transactions
+    (3, 5, 3)
+    >>> [(s.items, s.count) for s in snap.frequent(0.5)]
+    [(('jam',), 2), (('tea',), 2)]
     """
 
     def __init__(
@@ -105,10 +105,10 @@ class Engine:
         self.width = bucket_width(self.epsilon)
         self.max_itemset_size = int(config.max_itemset_size)
         self.time_based = config.window_seconds is not None
-        if self.time_based:
+        if config.window_seconds is not None:
             assert config.pane_seconds is not None  # checked with the config rules above
             self.pane_seconds = float(config.pane_seconds)
-            window_seconds = float(config.window_seconds)  # type: ignore[arg-type]
+            window_seconds = float(config.window_seconds)
             self.window_panes = round(window_seconds / self.pane_seconds)
             self.pane_size: int | None = None
         else:
@@ -453,7 +453,7 @@ class Engine:
     def from_state(
         cls,
         config: EngineConfig,
-        meta: dict[str, object],
+        meta: Mapping[str, Any],
         arrays: dict[str, np.ndarray],
         *,
         on_pane_closed: Callable[[Engine], None] | None = None,
@@ -471,11 +471,11 @@ class Engine:
                     f"{getattr(eng, key)!r}"
                 )
         eng.vocabulary = ItemVocabulary.from_arrays(arrays)
-        eng.next_seq = int(meta["next_seq"])  # type: ignore[call-overload]
-        eng.transactions_seen = int(meta["transactions_seen"])  # type: ignore[call-overload]
-        eng.rejected = Counter(meta["rejected"])  # type: ignore[arg-type]
-        eng.max_event_ts = meta["max_event_ts"]  # type: ignore[assignment]
-        eng.window.load_state(meta["window"], arrays)  # type: ignore[arg-type]
+        eng.next_seq = int(meta["next_seq"])
+        eng.transactions_seen = int(meta["transactions_seen"])
+        eng.rejected = Counter(meta["rejected"])
+        eng.max_event_ts = meta["max_event_ts"]
+        eng.window.load_state(meta["window"], arrays)
         return eng
 
 

@@ -9,6 +9,9 @@ so a restart counts exactly the same batches as an uninterrupted run.
 
 from __future__ import annotations
 
+from collections.abc import Mapping
+from typing import Any
+
 import numpy as np
 
 from streamcount.engine.counters import LossySummary, Summary
@@ -168,25 +171,21 @@ class Pane:
     @classmethod
     def from_state(
         cls,
-        meta: dict[str, object],
+        meta: Mapping[str, Any],
         arrays: dict[str, np.ndarray],
         prefix: str,
         epsilon: float,
         max_itemset_size: int,
     ) -> Pane:
-        pane = cls(int(meta["index"]), epsilon, max_itemset_size)  # type: ignore[call-overload]
+        pane = cls(int(meta["index"]), epsilon, max_itemset_size)
         pane.summary = LossySummary.from_arrays(
-            epsilon,
-            max_itemset_size,
-            int(meta["n"]),
-            arrays,
-            prefix,  # type: ignore[call-overload]
+            epsilon, max_itemset_size, int(meta["n"]), arrays, prefix
         )
         pane.closed = bool(meta["closed"])
-        pane.first_seq = int(meta["first_seq"])  # type: ignore[call-overload]
-        pane.last_seq = int(meta["last_seq"])  # type: ignore[call-overload]
-        pane.min_ts = meta["min_ts"]  # type: ignore[assignment]
-        pane.max_ts = meta["max_ts"]  # type: ignore[assignment]
+        pane.first_seq = int(meta["first_seq"])
+        pane.last_seq = int(meta["last_seq"])
+        pane.min_ts = meta["min_ts"]
+        pane.max_ts = meta["max_ts"]
         pane.append(
             np.asarray(arrays[f"{prefix}buf.flat"], dtype=np.int32),
             np.asarray(arrays[f"{prefix}buf.len"], dtype=np.int64),

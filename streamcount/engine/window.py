@@ -18,7 +18,7 @@ and the expired panes are subtracted from it exactly, so a close never re-sums e
 from __future__ import annotations
 
 import math
-from collections.abc import Iterator
+from collections.abc import Iterator, Mapping
 from itertools import pairwise
 from typing import Any
 
@@ -76,7 +76,7 @@ class SlidingWindow:
         self.max_itemset_size = int(max_itemset_size)
         self.pane_size = pane_size
         #: live panes by index, kept in index order
-        self.panes: SortedDict = SortedDict()
+        self.panes: SortedDict[int, Pane] = SortedDict()
         #: highest pane index that has counted transactions (the window's end)
         self.newest_index = -1
         #: lowest pane index ever opened (for the warm-up test of time-based windows)
@@ -289,7 +289,7 @@ class SlidingWindow:
         }
         return meta, arrays
 
-    def load_state(self, meta: dict[str, Any], arrays: dict[str, np.ndarray]) -> None:
+    def load_state(self, meta: Mapping[str, Any], arrays: dict[str, np.ndarray]) -> None:
         """Restore what :meth:`state` returned (into an empty window)."""
         self.newest_index = int(meta["newest_index"])
         first = meta["first_index"]

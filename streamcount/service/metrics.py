@@ -34,7 +34,9 @@ from prometheus_client import CollectorRegistry, Counter, Histogram
 from prometheus_client.core import GaugeMetricFamily, Metric
 from prometheus_client.registry import Collector
 
+from streamcount.alerts.kinds import ALERT_KINDS
 from streamcount.engine.snapshot import EngineStatistics
+from streamcount.errors import REASONS
 
 __all__ = [
     "ALERT_KINDS",
@@ -47,20 +49,11 @@ __all__ = [
     "ServiceState",
 ]
 
-#: ``reason`` label values pre-created so they render as 0 before the first rejection
-REJECT_REASONS: tuple[str, ...] = (
-    "bad_encoding",
-    "empty",
-    "malformed",
-    "missing_field",
-    "too_early",
-    "too_late",
-    "too_long",
-    "too_many_items",
-    "wrong_type",
-)
-#: ``kind`` label values of ``streamcount_alerts_total``
-ALERT_KINDS: tuple[str, ...] = ("emerged", "faded", "surged")
+#: ``reason`` label values pre-created so they render as 0 before the first rejection: every
+#: reason of :data:`streamcount.errors.REASONS`, sorted
+REJECT_REASONS: tuple[str, ...] = tuple(sorted(REASONS))
+# ALERT_KINDS (the ``kind`` label values of ``streamcount_alerts_total``) comes from
+# streamcount.alerts.kinds and is re-exported here with the other label sets
 #: ``sink`` label values of the sink counters
 SINK_NAMES: tuple[str, ...] = ("file", "log", "stdout", "webhook")
 #: ``result`` label values of ``streamcount_checkpoints_total``
@@ -239,8 +232,8 @@ class Metrics:
         sink_names: Iterable[str] = SINK_NAMES,
         alert_kinds: Iterable[str] = ALERT_KINDS,
     ) -> None:
-        if top_rules < 0:
-            raise ValueError(f"top_rules={top_rules!r} must be >= 0")
+        # metrics.top_rules is checked with the other settings (streamcount.config.checks)
+        assert top_rules >= 0, f"top_rules={top_rules!r}"
         self.registry = registry
         self.top_rules = top_rules
         self._statistics = statistics

@@ -20,7 +20,6 @@ import numpy as np
 from streamcount.errors import ParseError
 from streamcount.intake.formats.text import (
     LineDecoder,
-    check_encoding,
     decode_text,
     dedupe,
     too_many_items_error,
@@ -77,7 +76,6 @@ class BasketDecoder(LineDecoder):
     def __init__(
         self, max_basket_items: int = 200, max_record_bytes: int = 65536, encoding: str = "utf-8"
     ) -> None:
-        check_encoding(encoding)
         self.max_basket_items = max_basket_items
         self.max_record_bytes = max_record_bytes
         self.encoding = encoding

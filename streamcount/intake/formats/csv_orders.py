@@ -6,15 +6,14 @@ See :class:`CsvOrderDecoder` for when an order closes and which rows are set asi
 from __future__ import annotations
 
 import csv
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
 from streamcount.config.settings import CsvConfig
-from streamcount.errors import ConfigError, InputError, ParseError
+from streamcount.errors import InputError, ParseError
 from streamcount.intake.formats.text import (
     LineDecoder,
-    check_encoding,
     decode_text,
     parse_ts,
     show,
@@ -104,12 +103,7 @@ class CsvOrderDecoder(LineDecoder):
         *,
         require_ts: bool = False,
     ) -> None:
-        check_encoding(encoding)
         self.config = config or CsvConfig()
-        if len(self.config.delimiter) != 1:
-            raise ConfigError(
-                "input.csv.delimiter", self.config.delimiter, "must be a single character"
-            )
         self.max_basket_items = max_basket_items
         self.max_record_bytes = max_record_bytes
         self.encoding = encoding
@@ -122,46 +116,39 @@ class CsvOrderDecoder(LineDecoder):
 
     # -- columns ---------------------------------------------------------------------------
 
-    def _fields(self) -> list[tuple[str, str | None]]:
+    def _columns_of(self, column: Callable[[str, str], int]) -> tuple[int, int, int, int | None]:
+        """The order, item, time and quantity columns, each found by ``column(key, name)``."""
         cfg = self.config
-        return [
-            ("order_field", cfg.order_field),
-            ("item_field", cfg.item_field),
-            ("ts_field", cfg.ts_field),
-            ("quantity_field", cfg.quantity_field),
-        ]
+        qty = cfg.quantity_field
+        return (
+            column("order_field", cfg.order_field),
+            column("item_field", cfg.item_field),
+            column("ts_field", cfg.ts_field),
+            None if qty is None else column("quantity_field", qty),
+        )
 
     def _indices_by_number(self) -> tuple[int, int, int, int | None]:
-        found: list[int | None] = []
-        for key, name in self._fields():
-            if name is None:
-                found.append(None)
-                continue
-            if not name.isdigit():
-                raise ConfigError(
-                    f"input.csv.{key}",
-                    name,
-                    "with input.csv.header = false, columns are named by 0-based number; "
-                    "write e.g. '0', or set header: true",
-                )
-            found.append(int(name))
-        return found[0], found[1], found[2], found[3]  # type: ignore[return-value]
+        def number(key: str, name: str) -> int:
+            # with header: false the config rules allow only column numbers
+            assert name.isdigit(), f"input.csv.{key} = {name!r} is not a column number"
+            return int(name)
+
+        return self._columns_of(number)
 
     def _set_header(self, columns: list[str], offset: int | None) -> None:
         names = [c.strip() for c in columns]
-        found: list[int | None] = []
-        for key, name in self._fields():
-            if name is None:
-                found.append(None)
-                continue
+
+        def position(key: str, name: str) -> int:
             if name not in names:
                 raise InputError(
                     f"input.csv.{key} = {name!r}: no such column in the header at offset "
                     f"{offset} (columns: {show(names)}); set input.csv.{key} to one of them"
                 )
-            found.append(names.index(name))
+            return names.index(name)
+
+        idx = self._columns_of(position)
         self._columns = names
-        self._idx = (found[0], found[1], found[2], found[3])  # type: ignore[assignment]
+        self._idx = idx
 
     # -- the protocol ----------------------------------------------------------------------
 

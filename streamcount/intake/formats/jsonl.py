@@ -13,7 +13,6 @@ from streamcount.config.settings import JsonlConfig
 from streamcount.errors import ParseError
 from streamcount.intake.formats.text import (
     LineDecoder,
-    check_encoding,
     decode_text,
     dedupe,
     item_name,
@@ -85,7 +84,6 @@ class JsonlDecoder(LineDecoder):
         *,
         require_ts: bool = False,
     ) -> None:
-        check_encoding(encoding)
         self.config = config or JsonlConfig()
         self.max_basket_items = max_basket_items
         self.max_record_bytes = max_record_bytes

@@ -15,12 +15,11 @@ from typing import Any
 import numpy as np
 
 from streamcount.config.settings import MAX_TIMESTAMP
-from streamcount.errors import ConfigError, ParseError
+from streamcount.errors import ParseError
 from streamcount.intake.records import Decoded, RecordBatch, Transaction
 
 __all__ = [
     "LineDecoder",
-    "check_encoding",
     "decode_text",
     "dedupe",
     "item_name",
@@ -39,23 +38,6 @@ def show(value: object) -> str:
     if len(text) > _SHOW_CHARS:
         text = text[: _SHOW_CHARS - 3] + "..."
     return text
-
-
-def check_encoding(encoding: str) -> None:
-    """Reject encodings in which a newline or comma is not the ASCII byte (e.g. UTF-16)."""
-    try:
-        probe = "\n, ".encode(encoding)
-    except LookupError:
-        raise ConfigError(
-            "input.encoding", encoding, "is not a known text encoding; use e.g. 'utf-8'"
-        ) from None
-    if probe != b"\n, ":
-        raise ConfigError(
-            "input.encoding",
-            encoding,
-            "records are split on newline bytes, so the encoding must be ASCII-compatible "
-            "(utf-8, latin-1, cp1252...); re-encode the feed as UTF-8",
-        )
 
 
 def dedupe(items: list[str]) -> list[str]:
