@@ -343,20 +343,20 @@ class Engine:
         ``allowed_lateness_seconds`` as if events up to ``now`` had been seen, and slide the
         window to that point. Only the service calls it, with the wall clock, when its sources
         are caught up and idle (never replay, so a backlog is never sent to ``too_late``).
-        Returns the number of panes closed; a count-based window does nothing.
+        Returns how many panes the watermark moved past (0: nothing changed); a count-based
+        window does nothing.
         """
         if not self.time_based or not math.isfinite(now):
             return 0
         limit = math.floor((now - self.config.allowed_lateness_seconds) / self.pane_seconds) - 1
-        if limit <= self.window.closed_through:
+        moved = limit - self.window.closed_through
+        if moved <= 0:
             return 0
-        closes = 0
         for pane in [p for p in self.window.open_panes() if p.index <= limit]:
             self._close(pane)
-            closes += 1
-        self.window.closed_through = max(self.window.closed_through, limit)
+        self.window.closed_through = limit
         self.window.advance_to(limit)
-        return closes
+        return moved
 
     def flush(self) -> None:
         """Count every buffered transaction now (partial batches), e.g. at the end of a replay.

@@ -287,6 +287,12 @@ class Service:
             self.metrics.observe_batch(accepted, rejected, time.perf_counter() - started)
             self._unpublished = True
         self.turns += 1
+        if (
+            not self.api.view.status.get("overlay")
+            and self.pipeline.engine.window.buffered
+            and now - self._counted_at >= _OVERLAY_SECONDS
+        ):
+            self._unpublished = True  # a buffer left uncounted: time to show the overlay
         if self._unpublished and now - self._last_publish >= _PUBLISH_SECONDS:
             self._publish()
         self._observe_sinks()
