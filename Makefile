@@ -4,6 +4,7 @@ PYTHON ?= python3
 VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
+RUNTIME := $(VENV)/.runtime
 
 .PHONY: demo test test-fast lint typecheck fmt bench clean tools
 
@@ -12,14 +13,20 @@ STAMP  := $(VENV)/.installed
 TOOLS := promtool=prometheus nats-server=nats-server chromium=chromium chromedriver=chromium-driver
 APT   := apt-get -o DPkg::Lock::Timeout=300 -qq
 
-$(STAMP): pyproject.toml
+# the runtime dependencies only (what `make demo` needs)
+$(RUNTIME): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
 	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet -e .
+	touch $(RUNTIME)
+
+# plus the test extra (pytest, hypothesis, scipy, jsonschema, ruff, mypy...)
+$(STAMP): $(RUNTIME)
 	$(BIN)/python -m pip install --quiet -e '.[test]'
 	touch $(STAMP)
 
 ## demo: the invented shop's live feed with alerts as they fire (about 45 s)
-demo: $(STAMP)
+demo: $(RUNTIME)
 	$(BIN)/streamcount demo
 
 ## tools: install the external programs the tests drive from Debian's packages (as root with

@@ -120,9 +120,23 @@ def test_logging_level_is_case_insensitive(tmp_path: Path) -> None:
     assert load_config(_write(tmp_path, "logging:\n  level: debug\n")).logging.level == "DEBUG"
 
 
-def test_missing_file(tmp_path: Path) -> None:
-    with pytest.raises(ConfigError, match="cannot be read"):
-        load_config(tmp_path / "nope.yaml")
+def test_missing_file_says_no_such_file_and_names_it_once(tmp_path: Path, capsys) -> None:
+    missing = tmp_path / "nope.yaml"
+    with pytest.raises(ConfigError, match="no such file") as info:
+        load_config(missing)
+    assert str(info.value).count(str(missing)) == 1
+    assert "encoding" not in str(info.value) and "UTF-8" not in str(info.value)
+    assert check_config_main(missing) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.count(str(missing)) == 1 and "no such file" in err
+
+
+def test_a_file_that_is_not_utf8_is_named_with_the_byte(tmp_path: Path) -> None:
+    path = tmp_path / "latin.yaml"
+    path.write_bytes(b"engine:\n  epsilon: 0.01 # caf\xe9\n")
+    with pytest.raises(ConfigError, match="not UTF-8 text") as info:
+        load_config(path)
+    assert "byte 26" in str(info.value)
 
 
 def test_yaml_syntax_error_names_line_and_column(tmp_path: Path) -> None:

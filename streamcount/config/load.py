@@ -256,9 +256,26 @@ def load_config(path: str | Path) -> Config:
     """
     path = Path(path)
     try:
-        text = path.read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as exc:
-        raise ConfigError(str(path), str(path), f"cannot be read as a UTF-8 file: {exc}") from exc
+        raw = path.read_bytes()
+    except FileNotFoundError:
+        raise ConfigError("--config", str(path), "no such file") from None
+    except IsADirectoryError:
+        raise ConfigError("--config", str(path), "is a directory, not a YAML file") from None
+    except PermissionError:
+        raise ConfigError(
+            "--config", str(path), "permission denied: make the file readable by this user"
+        ) from None
+    except OSError as exc:
+        raise ConfigError("--config", str(path), f"cannot be read ({exc.strerror})") from None
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise ConfigError(
+            "--config",
+            str(path),
+            f"is not UTF-8 text (byte {exc.start} is {raw[exc.start : exc.start + 1]!r}); "
+            "save the file as UTF-8",
+        ) from None
     try:
         data = yaml.load(text, Loader=_UniqueKeyLoader)  # a SafeLoader subclass
     except yaml.MarkedYAMLError as exc:
@@ -344,7 +361,9 @@ def check_config_main(path: str | Path) -> int:
     try:
         cfg = load_config(path)
     except ConfigError as err:
-        print(f"error: {path}: {err}", file=sys.stderr)
+        # the message names the file (a key of it, or the file itself), once
+        where = "" if str(path) in str(err) else f"{path}: "
+        print(f"error: {where}{err}", file=sys.stderr)
         return 2
     print(f"OK: {describe(cfg)}")
     token_env = cfg.server.token_env

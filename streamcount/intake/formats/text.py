@@ -16,6 +16,7 @@ import numpy as np
 
 from streamcount.config.settings import MAX_TIMESTAMP
 from streamcount.errors import ParseError
+from streamcount.intake.deadletter import RAW_CHARS
 from streamcount.intake.records import Decoded, RecordBatch, Transaction
 
 __all__ = [
@@ -52,7 +53,7 @@ def decode_text(record: bytes, offset: int | None, encoding: str, max_record_byt
     if len(record) > max_record_bytes:
         raise ParseError(
             "too_long",
-            f"record is {len(record)} bytes, more than max_record_bytes = {max_record_bytes}",
+            too_long_detail(f"{len(record)} bytes", max_record_bytes),
             offset=offset,
             raw=record[:max_record_bytes],
         )
@@ -146,10 +147,18 @@ def too_long_error(batch: RecordBatch, i: int, max_record_bytes: int) -> ParseEr
     size = f"{end - start - 1} bytes or more" if start is not None and end is not None else "long"
     return ParseError(
         "too_long",
-        f"record is {size}, more than max_record_bytes = {max_record_bytes}; only its first "
-        f"{len(batch.lines[i])} bytes are kept",
+        too_long_detail(size, max_record_bytes),
         offset=start,
         raw=batch.lines[i],
+    )
+
+
+def too_long_detail(size: str, max_record_bytes: int) -> str:
+    """The one wording of ``too_long``: the record's size, the limit, and what the dead-letter
+    file keeps of it (its first :data:`~streamcount.intake.deadletter.RAW_CHARS` characters)."""
+    return (
+        f"record is {size}, more than input.max_record_bytes = {max_record_bytes}; the "
+        f"dead-letter file keeps its first {RAW_CHARS} characters"
     )
 
 
