@@ -136,7 +136,7 @@ def test_a_file_that_is_not_utf8_is_named_with_the_byte(tmp_path: Path) -> None:
     path.write_bytes(b"engine:\n  epsilon: 0.01 # caf\xe9\n")
     with pytest.raises(ConfigError, match="not UTF-8 text") as info:
         load_config(path)
-    assert "byte 26" in str(info.value)
+    assert "byte 29" in str(info.value)
 
 
 def test_yaml_syntax_error_names_line_and_column(tmp_path: Path) -> None:
