@@ -37,6 +37,9 @@ logger = logging.getLogger(__name__)
 _CHECKPOINT_ALERTS = 100
 
 AlertListener = Callable[[list[dict[str, Any]]], None]
+#: called at every evaluated pane close: (the pane-close number, the window evaluated, the
+#: alert records raised there)
+CloseListener = Callable[[int, WindowSnapshot, list[dict[str, Any]]], None]
 
 
 @dataclass(slots=True)
@@ -100,13 +103,21 @@ class Pipeline:
         self.rejected_counts: Counter[str] = Counter()
         #: the window the rules were last evaluated on (at the last pane close)
         self.last_close: WindowSnapshot | None = None
+        #: pane closes evaluated so far (an id that grows with every evaluation)
+        self.closes = 0
         self._listeners: list[AlertListener] = []
+        self._close_listeners: list[CloseListener] = []
 
     # -- intake -------------------------------------------------------------------------------
 
     def on_alerts(self, listener: AlertListener) -> None:
         """Call ``listener`` with the records raised at each pane close that raises some."""
         self._listeners.append(listener)
+
+    def on_close(self, listener: CloseListener) -> None:
+        """Call ``listener`` after every evaluated pane close (history, views), whether it
+        raised alerts or not; the monitor's active rules are current then."""
+        self._close_listeners.append(listener)
 
     def add(self, decoded: Decoded) -> Intake:
         """Count decoded transactions; returns what was accepted and everything set aside."""
@@ -180,16 +191,18 @@ class Pipeline:
             return
         fired, window = self.monitor.evaluate_close(engine)
         self.last_close = window
-        if not fired:
-            return
+        self.closes += 1
         records = [a.as_dict() for a in fired]
-        self.alert_history.extend(records)
-        self.alert_counts.update(str(r["kind"]) for r in records)
-        if self.sinks is not None:
-            for record in records:
-                self.sinks.emit(record)
-        for listener in self._listeners:
-            listener(records)
+        if records:
+            self.alert_history.extend(records)
+            self.alert_counts.update(str(r["kind"]) for r in records)
+            if self.sinks is not None:
+                for record in records:
+                    self.sinks.emit(record)
+            for listener in self._listeners:
+                listener(records)
+        for close_listener in self._close_listeners:
+            close_listener(self.closes, window, records)
 
     # -- views --------------------------------------------------------------------------------
 
@@ -217,6 +230,7 @@ class Pipeline:
             "alerts": list(self.alert_history)[-_CHECKPOINT_ALERTS:],
             "alert_counts": dict(self.alert_counts),
             "rejected_counts": dict(self.rejected_counts),
+            "closes": self.closes,
         }
         return meta, arrays
 
@@ -235,6 +249,7 @@ class Pipeline:
         self.alert_history.extend(meta.get("alerts", []))
         self.alert_counts = Counter(meta.get("alert_counts", {}))
         self.rejected_counts = Counter(meta.get("rejected_counts", {}))
+        self.closes = int(meta.get("closes", 0))
 
     def check_invariants(self) -> None:
         """Assert the engine's invariants (the monitor's own come with the detectors)."""
