@@ -86,6 +86,7 @@ class Pipeline:
         self.sinks = sinks
         self.clock = clock
         self.engine = Engine(config.engine, on_pane_closed=self._on_pane_closed)
+        self.engine.on_remap = self._on_remap
         self.monitor = (
             RuleMonitor(
                 config.rules,
@@ -204,6 +205,10 @@ class Pipeline:
         for close_listener in self._close_listeners:
             close_listener(self.closes, window, records)
 
+    def _on_remap(self, mapping: np.ndarray) -> None:
+        if self.monitor is not None:
+            self.monitor.remap(mapping)
+
     # -- views --------------------------------------------------------------------------------
 
     @property
@@ -243,6 +248,7 @@ class Pipeline:
         self.engine = Engine.from_state(
             self.config.engine, meta["engine"], arrays, on_pane_closed=self._on_pane_closed
         )
+        self.engine.on_remap = self._on_remap
         if self.monitor is not None:
             self.monitor.load_state(meta.get("monitor") or {}, arrays)
         self.alert_history.clear()

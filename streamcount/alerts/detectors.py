@@ -491,6 +491,15 @@ class SurgedDetector:
     def keep(self, tracker: ChangeTracker) -> Keys:
         return self._latched_keys(tracker)
 
+    def remap(self, mapping: np.ndarray) -> None:
+        """Renumber the latched itemsets' ids (the vocabulary was compacted)."""
+        latched = {}
+        for ids, latch in self.latched.items():
+            new = tuple(int(mapping[i]) for i in ids)
+            if min(new) >= 0:
+                latched[new] = latch
+        self.latched = latched
+
     def state_dict(self) -> dict[str, Any]:
         return {
             "latched": [
