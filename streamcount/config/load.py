@@ -167,6 +167,7 @@ _RULES: dict[str, tuple[_Check, ...]] = {
             "each must be one of " + ", ".join(repr(n) for n in _source_names()),
         ),
     ),
+    "input.normalize": (_one_of("nfc", "none"),),
     "input.path": (
         _NON_EMPTY,
         (

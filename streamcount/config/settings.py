@@ -89,6 +89,9 @@ class InputConfig:
     poll_interval_seconds: float = 0.2
     max_record_bytes: int = 65536
     encoding: str = "utf-8"
+    #: item names in Unicode normal form C (``nfc``), so one name written with a precomposed
+    #: letter or with a combining accent is one item; ``none`` keeps the bytes as read
+    normalize: str = "nfc"
     #: largest body POST /v1/transactions accepts (the ``http`` source)
     max_body_bytes: int = 1048576
     #: events stamped more than this many seconds ahead of the wall clock are set aside

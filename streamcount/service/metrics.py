@@ -50,6 +50,7 @@ __all__ = [
 #: ``reason`` label values pre-created so they render as 0 before the first rejection
 REJECT_REASONS: tuple[str, ...] = (
     "bad_encoding",
+    "control_chars",
     "empty",
     "malformed",
     "missing_field",
