@@ -4,7 +4,8 @@ Two kinds of metric live here:
 
 * counters and a histogram that the counting loop updates once per *batch* (never per record)
   through :meth:`Metrics.observe_batch`, :meth:`Metrics.observe_alerts`,
-  :meth:`Metrics.observe_checkpoint` and :meth:`Metrics.observe_sinks`;
+  :meth:`Metrics.observe_checkpoint`, :meth:`Metrics.observe_sinks` and
+  :meth:`Metrics.observe_dead_letters`;
 * gauges of engine state produced at scrape time by a custom collector that calls a function
   returning the latest immutable :class:`~streamcount.snapshot.EngineStatistics` (and a
   :class:`ServiceState`), so a scrape never touches the counting loop's mutable state.
@@ -103,6 +104,7 @@ METRIC_NAMES: tuple[str, ...] = (
     "streamcount_sink_failures_total",
     "streamcount_sink_dropped_total",
     "streamcount_checkpoints_total",
+    "streamcount_dead_letters_lost_total",
     "streamcount_batch_seconds",
     *_GAUGES,
     *_RULE_GAUGES,
@@ -249,6 +251,7 @@ class Metrics:
         self._lock = threading.Lock()
         self._last_checkpoint = 0.0
         self._sink_seen: dict[tuple[str, str], int] = {}
+        self._dead_letters_seen = 0
 
         self.transactions = Counter(
             "streamcount_transactions",
@@ -283,6 +286,12 @@ class Metrics:
             "streamcount_checkpoints",
             "Checkpoint writes, by result (ok or failed).",
             ["result"],
+            registry=registry,
+        )
+        self.dead_letters_lost = Counter(
+            "streamcount_dead_letters_lost",
+            "Records set aside that could not be written to the dead-letter file (disk full, "
+            "permissions); they are still counted in streamcount_records_rejected_total.",
             registry=registry,
         )
         self.batch_seconds = Histogram(
@@ -323,6 +332,17 @@ class Metrics:
         if ok:
             with self._lock:
                 self._last_checkpoint = max(self._last_checkpoint, float(unix_time))
+
+    def observe_dead_letters(self, lost_total: int) -> None:
+        """Bring ``streamcount_dead_letters_lost_total`` up to the dead-letter file's own
+        running total (:attr:`~streamcount.intake.deadletter.DeadLetterFile.failed_writes`);
+        call it once per turn. A total that went down (a new file object) counts in full."""
+        with self._lock:
+            before = self._dead_letters_seen
+            self._dead_letters_seen = lost_total
+        delta = lost_total - before if lost_total >= before else lost_total
+        if delta:
+            self.dead_letters_lost.inc(delta)
 
     def observe_sinks(self, failures: Mapping[str, int], dropped: Mapping[str, int]) -> None:
         """Bring the sink counters up to the sinks' own running totals.
