@@ -709,3 +709,58 @@ def test_shutdown_lets_an_answer_being_worked_on_go_out() -> None:
     assert reply == [202]
     thread.join(15)
     assert not thread.is_alive()
+
+
+# --- configuration ---------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize(
+    ("server", "key", "words"),
+    [
+        ({"listen": "0.0.0.0:10697"}, "server.listen", "without TLS"),
+        ({"listen": "[::]:10697"}, "server.listen", "behind_proxy"),
+        ({"listen": "shop-host.example:10697"}, "server.listen", "tls_certificate"),
+        ({"listen": "10.0.0.5:1", "tls_certificate": "c.pem"}, "server.tls_certificate", "tls_key"),
+        ({"tls_key": "k.pem"}, "server.tls_key", "tls_certificate"),
+        ({"token_env": "T", "token_file": "t"}, "server.token_file", "token_env"),
+        (
+            {"max_connections": 10, "max_connections_per_client": 11},
+            "server.max_connections_per_client",
+            "<=",
+        ),
+        ({"backlog": 0}, "server.backlog", ">= 1"),
+        ({"workers": 0}, "server.workers", ">= 1"),
+        ({"auth_failures_per_minute": 0}, "server.auth_failures_per_minute", ">= 1"),
+        ({"keepalive_timeout_seconds": 0}, "server.keepalive_timeout_seconds", "> 0"),
+        ({"token_file": ""}, "server.token_file", "empty"),
+    ],
+)
+def test_server_settings_are_validated(server: dict[str, Any], key: str, words: str) -> None:
+    from streamcount.config.load import config_from_mapping
+    from streamcount.errors import ConfigError
+
+    with pytest.raises(ConfigError) as info:
+        config_from_mapping({"server": server})
+    assert info.value.key == key
+    assert words in str(info.value)
+
+
+@pytest.mark.parametrize(
+    "server",
+    [
+        {"listen": "127.0.0.1:0"},
+        {"listen": "127.8.9.10:0"},
+        {"listen": "[::1]:0"},
+        {"listen": "localhost:0"},
+        {"listen": "0.0.0.0:10697", "behind_proxy": True},
+        {"listen": "0.0.0.0:10697", "tls_certificate": "c.pem", "tls_key": "k.pem"},
+        {"listen": None},
+    ],
+)
+def test_loopback_proxy_or_tls_listeners_are_accepted(server: dict[str, Any]) -> None:
+    from streamcount.config.load import config_from_mapping
+
+    cfg = config_from_mapping({"server": server})
+    options = ServerOptions.from_config(cfg.server)
+    assert options.behind_proxy == server.get("behind_proxy", False)
+    assert options.tls_certificate == server.get("tls_certificate")

@@ -741,4 +741,15 @@ def check_config_main(path: str | Path) -> int:
             "here; `streamcount run` will refuse to start without it",
             file=sys.stderr,
         )
+    for key, path in (
+        ("server.token_file", cfg.server.token_file),
+        ("server.tls_certificate", cfg.server.tls_certificate),
+        ("server.tls_key", cfg.server.tls_key),
+    ):
+        if path and not os.access(path, os.R_OK):
+            print(
+                f"warning: {key} = {path!r}: cannot be read here; `streamcount run` will "
+                "refuse to start without it",
+                file=sys.stderr,
+            )
     return 0
