@@ -698,6 +698,9 @@ def test_shutdown_lets_an_answer_being_worked_on_go_out() -> None:
     sender.start()
     assert backend.entered.wait(10)
     idle = socket.create_connection(("127.0.0.1", server.server_port), timeout=10)
+    deadline = time.monotonic() + 10
+    while server.stats().open_connections < 2 and time.monotonic() < deadline:
+        time.sleep(0.01)  # accepted, not only queued in the backlog (those are reset)
     server.shutdown()
     server.server_close()
     with pytest.raises(OSError):  # no new connection is accepted
