@@ -70,13 +70,14 @@ class TokenSource:
     Parameters
     ----------
     env:
-        Name of the environment variable (``server.token_env``).
+        Name of the environment variable (``server.token_env``); with ``token`` given too,
+        only named in messages (the caller has read it).
     path:
         File holding the token (``server.token_file``); surrounding whitespace, such as the
         final newline, is not part of it. Only a file can change while the process runs, so
         only a file gives rotation without a restart.
     token:
-        A token given directly (tests, embedding); never reloaded.
+        A token given directly (read by the caller, or in tests); never reloaded.
 
     Raises
     ------
@@ -88,8 +89,8 @@ class TokenSource:
     def __init__(
         self, *, env: str | None = None, path: str | None = None, token: str | None = None
     ) -> None:
-        if sum(x is not None for x in (env, path, token)) != 1:
-            raise ValueError("give exactly one of env, path or token")
+        if (path is not None) == (env is not None or token is not None):
+            raise ValueError("give the token's file, or its environment variable or value")
         self.env = env
         self.path = path
         self._token = token if token is not None else self._read()
@@ -145,11 +146,16 @@ class TokenSource:
         Returns whether a new token is in force. Logs what happened, never the token.
         """
         if self.path is None:
+            where = (
+                f"server.token_env {self.env!r}: an environment variable cannot change in a "
+                "running process"
+                if self.env
+                else "the code that started the server"
+            )
             logger.warning(
-                "token reload asked, but the token comes from %s: an environment variable "
-                "cannot change in a running process; use server.token_file to rotate tokens "
-                "without a restart",
-                f"server.token_env {self.env!r}" if self.env else "the caller",
+                "token reload asked, but the token comes from %s; use server.token_file to "
+                "rotate tokens without a restart",
+                where,
             )
             return False
         try:

@@ -10,6 +10,7 @@ importable from here too.
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import signal
 import socket
@@ -68,6 +69,8 @@ class ServerOptions:
     Build it with :meth:`from_config`; every field is the config key of the same name.
     """
 
+    #: named in messages only: the caller reads the variable and passes the token
+    token_env: str | None = None
     token_file: str | None = None
     public_metrics: bool = False
     behind_proxy: bool = False
@@ -82,20 +85,8 @@ class ServerOptions:
 
     @classmethod
     def from_config(cls, server: ServerConfig) -> ServerOptions:
-        """The options of a validated ``server`` section."""
-        return cls(
-            token_file=server.token_file,
-            public_metrics=server.public_metrics,
-            behind_proxy=server.behind_proxy,
-            tls_certificate=server.tls_certificate,
-            tls_key=server.tls_key,
-            backlog=server.backlog,
-            max_connections=server.max_connections,
-            max_connections_per_client=server.max_connections_per_client,
-            keepalive_timeout_seconds=server.keepalive_timeout_seconds,
-            workers=server.workers,
-            auth_failures_per_minute=server.auth_failures_per_minute,
-        )
+        """The options of a validated ``server`` section (each field from its key)."""
+        return cls(**{f.name: getattr(server, f.name) for f in dataclasses.fields(cls)})
 
 
 class _ApiHandler:
@@ -303,7 +294,7 @@ def start_server(
         raise ValueError("give the API token or server.token_file, not both")
     tokens = None
     if token is not None:
-        tokens = TokenSource(token=token)
+        tokens = TokenSource(token=token, env=options.token_env)
     elif options.token_file:
         tokens = TokenSource(path=options.token_file)
     limits = Limits(
