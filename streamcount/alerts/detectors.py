@@ -307,6 +307,7 @@ class EmergedDetector(_RuleDetector):
                 close.tracker.rebase(size, np.array([key]), "up")
         return out
 
+
 # ---------------------------------------------------------------------------------------------
 # faded
 
@@ -348,6 +349,7 @@ class FadedDetector(_RuleDetector):
             else:
                 close.tracker.rebase(size, np.array([key]), "down")
         return out
+
 
 # ---------------------------------------------------------------------------------------------
 # surged

@@ -16,6 +16,7 @@ registry defines (formats, sources, significance tests) is read from that regist
 from __future__ import annotations
 
 import codecs
+import ipaddress
 import re
 import typing
 from collections.abc import Callable
@@ -143,6 +144,7 @@ KEY_RULES: dict[str, tuple[_Check, ...]] = {
             "each must be one of " + ", ".join(repr(n) for n in _source_names()),
         ),
     ),
+    "input.normalize": (_one_of("nfc", "none"),),
     "input.path": (
         _NON_EMPTY,
         (
@@ -227,8 +229,17 @@ KEY_RULES: dict[str, tuple[_Check, ...]] = {
             "not the token itself",
         ),
     ),
+    "server.token_file": (_NON_EMPTY,),
+    "server.tls_certificate": (_NON_EMPTY,),
+    "server.tls_key": (_NON_EMPTY,),
     "server.max_request_bytes": (_at_least(1),),
     "server.request_timeout_seconds": (_above(0),),
+    "server.keepalive_timeout_seconds": (_above(0),),
+    "server.max_connections": (_at_least(1),),
+    "server.max_connections_per_client": (_at_least(0),),
+    "server.backlog": (_at_least(1),),
+    "server.workers": (_at_least(1),),
+    "server.auth_failures_per_minute": (_at_least(1),),
     "metrics.top_rules": (
         (
             lambda v: 0 <= v <= _MAX_TOP_RULES,
@@ -326,6 +337,7 @@ def cross_checks(cfg: Config) -> None:
             hook.max_backoff_seconds,
             f"must be >= sinks.webhook.backoff_seconds ({hook.backoff_seconds:g})",
         )
+    _server_checks(cfg)
     if "http" in cfg.input.source and cfg.server.listen is None:
         _fail(
             "input.source",
@@ -343,6 +355,50 @@ def cross_checks(cfg: Config) -> None:
                     "with input.csv.header = false, columns are named by 0-based number; "
                     "write e.g. '0', or set header: true",
                 )
+
+
+def _loopback(host: str) -> bool:
+    """Whether ``host`` (from server.listen) only accepts connections from this machine."""
+    if host.lower() == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False  # a host name may resolve to anything
+
+
+def _server_checks(cfg: Config) -> None:
+    srv = cfg.server
+    if srv.token_env is not None and srv.token_file is not None:
+        _fail(
+            "server.token_file",
+            srv.token_file,
+            f"cannot be set together with server.token_env ({srv.token_env!r}); keep one "
+            "(a file can be rotated without a restart)",
+        )
+    if (srv.tls_certificate is None) != (srv.tls_key is None):
+        key, other = (
+            ("server.tls_certificate", "server.tls_key")
+            if srv.tls_certificate is not None
+            else ("server.tls_key", "server.tls_certificate")
+        )
+        _fail(key, getattr(srv, key.split(".")[1]), f"needs {other} set too (or both null)")
+    if srv.listen is not None and srv.tls_certificate is None and not srv.behind_proxy:
+        host, _ = parse_listen(srv.listen)
+        if not _loopback(host):
+            _fail(
+                "server.listen",
+                srv.listen,
+                "listens beyond this machine without TLS: set server.tls_certificate and "
+                "server.tls_key, or server.behind_proxy: true when a TLS-terminating reverse "
+                "proxy is in front (README, 'Exposing the service')",
+            )
+    if srv.max_connections_per_client > srv.max_connections:
+        _fail(
+            "server.max_connections_per_client",
+            srv.max_connections_per_client,
+            f"must be <= server.max_connections ({srv.max_connections})",
+        )
 
 
 def window_panes(cfg: Config) -> int:

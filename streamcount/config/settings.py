@@ -93,6 +93,9 @@ class InputConfig:
     idle_seconds: float = 10.0
     max_record_bytes: int = 65536
     encoding: str = "utf-8"
+    #: item names in Unicode normal form C (``nfc``), so one name written with a precomposed
+    #: letter or with a combining accent is one item; ``none`` keeps the bytes as read
+    normalize: str = "nfc"
     #: largest body POST /v1/transactions accepts (the ``http`` source)
     max_body_bytes: int = 1048576
     #: events stamped more than this many seconds ahead of the wall clock are set aside
@@ -196,8 +199,33 @@ class ServerConfig:
     listen: str | None = DEFAULT_LISTEN
     #: name of the environment variable holding the bearer token (the token never goes here)
     token_env: str | None = None
+    #: file holding the bearer token instead (re-read on SIGHUP: rotation without a restart)
+    token_file: str | None = None
+    #: serve /metrics without the token, minus the per-rule gauges (their labels hold item
+    #: names); false: /metrics needs the token like the API when one is set
+    public_metrics: bool = False
+    #: PEM certificate (chain) and key for HTTPS; needed to listen beyond loopback unless
+    #: behind_proxy is true
+    tls_certificate: str | None = None
+    tls_key: str | None = None
+    #: a TLS-terminating reverse proxy is in front: plain HTTP beyond loopback is allowed and
+    #: limits per client use the address the proxy appends to X-Forwarded-For
+    behind_proxy: bool = False
     max_request_bytes: int = 1048576
+    #: deadline for reading a whole request (headers and body) and for writing its answer
     request_timeout_seconds: float = 10.0
+    #: an idle keep-alive connection is closed after this many seconds
+    keepalive_timeout_seconds: float = 5.0
+    #: open connections in all, and per client address (0: no per-address cap); over a cap a
+    #: connection gets 503 with Retry-After
+    max_connections: int = 512
+    max_connections_per_client: int = 64
+    #: connections the kernel queues before they are accepted
+    backlog: int = 512
+    #: worker threads answering API requests (probes and /metrics have two of their own)
+    workers: int = 8
+    #: failed authentications one address may make per minute before it gets 429
+    auth_failures_per_minute: int = 10
 
 
 @dataclass(frozen=True, slots=True)

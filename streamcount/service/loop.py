@@ -29,7 +29,7 @@ from streamcount.alerts.sinks import Sink, SinkFanout, build_sinks
 from streamcount.config.load import describe, fingerprint, fingerprint_settings
 from streamcount.config.settings import Config
 from streamcount.engine.snapshot import WindowSnapshot
-from streamcount.errors import CheckpointError, InputError
+from streamcount.errors import CheckpointError, InputError, describe_os_error
 from streamcount.intake.deadletter import DeadLetterFile
 from streamcount.intake.formats import Decoder, make_decoder
 from streamcount.intake.records import Decoded, RecordBatch
@@ -196,7 +196,7 @@ class Service:
             return None
         import os
 
-        from streamcount.service.server import start_server
+        from streamcount.service.server import ServerOptions, start_server
 
         token = None
         if self.config.server.token_env:
@@ -216,7 +216,9 @@ class Service:
             token=token,
             max_request_bytes=limit,
             request_timeout_seconds=self.config.server.request_timeout_seconds,
+            options=ServerOptions.from_config(self.config.server),
         )
+        self.metrics.watch_server(self.server.stats)
         host, port = self.server.server_address[:2]
         logger.info("listening on http://%s:%d (metrics at /metrics)", host, port)
         return str(host), int(port)
@@ -240,6 +242,10 @@ class Service:
             signal.signal(signal.SIGINT, self.request_stop)
         if self.server is None:
             self.start_server()
+        if install_signals and self.server is not None:
+            from streamcount.service.server import install_reload_signal
+
+            install_reload_signal(self.server)  # SIGHUP: re-read server.token_file and TLS
         logger.info("streamcount %s started: %s", __version__, describe(self.config))
         self.api.set_ready(True)
         clean = False
@@ -284,6 +290,7 @@ class Service:
             accepted += self._idle()
         if seen or rejected:
             self.dead_letter.flush()
+            self.metrics.observe_dead_letters(self.dead_letter.failed_writes)
             self.metrics.observe_batch(accepted, rejected, time.perf_counter() - started)
             self._unpublished = True
         self.turns += 1
@@ -468,7 +475,10 @@ class Service:
                 settings=fingerprint_settings(self.config),
             )
         except (OSError, ValueError, CheckpointError) as exc:
-            logger.warning("checkpoint to %s failed: %s", directory, exc)
+            reason: object = exc
+            if isinstance(exc, OSError):
+                reason = describe_os_error("checkpoint", directory, exc)
+            logger.warning("checkpoint to %s failed: %s", directory, reason)
             self.metrics.observe_checkpoint(False, now)
         else:
             ok = True
