@@ -179,6 +179,8 @@ def test_followed_file_counts_metrics_itemsets_and_rules(
     assert metrics[("streamcount_window_transactions", ())] == 200
     assert metrics[("streamcount_window_max_error", ())] == 0
     assert metrics[("streamcount_live_panes", ())] == 4
+    # the process collector: the resident memory the README's memory section speaks of
+    assert metrics[("process_resident_memory_bytes", ())] > 10 * 2**20
     assert metrics[("streamcount_buffered_transactions", ())] == 0
     assert metrics[("streamcount_vocabulary_items", ())] == len({i for b in accepted for i in b})
     for size in (1, 2, 3):

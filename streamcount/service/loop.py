@@ -22,7 +22,12 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass, replace
 from typing import Any
 
-from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, generate_latest
+from prometheus_client import (
+    CONTENT_TYPE_LATEST,
+    CollectorRegistry,
+    ProcessCollector,
+    generate_latest,
+)
 
 from streamcount import __version__
 from streamcount.alerts.sinks import Sink, SinkFanout, build_sinks
@@ -119,6 +124,8 @@ class Service:
             if state:
                 item.decoder.load_state(state)
         self.dead_letter = DeadLetterFile(config.input.dead_letter_path)
+        # the process's resident memory, CPU time and open files (process_*), next to ours
+        ProcessCollector(registry=self.registry)
         self.metrics = Metrics(
             self.registry,
             statistics=lambda: self.api.view.statistics,
@@ -249,6 +256,7 @@ class Service:
         logger.info("streamcount %s started: %s", __version__, describe(self.config))
         self.api.set_ready(True)
         clean = False
+        saved = True
         try:
             while not self._stop.is_set():
                 self.turn(timeout=timeout)
@@ -260,7 +268,15 @@ class Service:
                     break
             clean = True
         finally:
-            self.shutdown(clean=clean)
+            saved = self.shutdown(clean=clean)
+        if not saved:
+            # the counting state since the last good checkpoint is lost: say so in the exit code
+            logger.error(
+                "the final checkpoint to %s failed (see above); a restart resumes from the last "
+                "good checkpoint and counts what came after it again",
+                self.config.checkpoint.checkpoint_dir,
+            )
+            return 1
         return 0
 
     def turn(self, timeout: float = 0.0) -> int:
@@ -491,20 +507,22 @@ class Service:
         self._last_checkpoint_mono = time.monotonic()
         return ok
 
-    def shutdown(self, *, clean: bool = True) -> None:
+    def shutdown(self, *, clean: bool = True) -> bool:
         """Stop serving, count what the sources already accepted from outside (HTTP ingest
-        bodies), write the final checkpoint and release everything.
+        bodies), write the final checkpoint and release everything; returns whether the final
+        checkpoint (if any is due) was written.
 
         After an unexpected error (``clean=False``) no checkpoint is written: the state may be
         half-updated, so the last good checkpoint is kept and a restart re-reads from it.
         """
+        saved = True
         self.api.set_ready(False)
         if self.server is not None:  # no new requests from here on
             self.server.shutdown()
             self.server.server_close()
         if clean:
             self._drain()
-            self.checkpoint()
+            saved = self.checkpoint()
         else:
             logger.warning("stopping after an error; the last good checkpoint is kept")
         self._publish()
@@ -513,6 +531,7 @@ class Service:
         for item in self.inputs:
             item.source.close()
         logger.info("stopped after %d transactions", self.pipeline.engine.transactions_seen)
+        return saved
 
     def _drain(self) -> None:
         """Count the batches sources hold for senders already answered or waiting."""

@@ -436,8 +436,15 @@ def route(
         (:func:`public_exposition`); one that sends the token gets them all.
     """
     entry = _ROUTES.get(path)
-    if entry is None or (path == "/v1/transactions" and not backend.ingest_enabled()):
+    if entry is None:
         return _error(404, "not_found", f"no endpoint {path!r}; see the API list in the docs")
+    if path == "/v1/transactions" and not backend.ingest_enabled():
+        return _error(
+            404,
+            "ingest_off",
+            "HTTP ingest is off on this service: add 'http' to input.source (e.g. "
+            "input.source: [file, http], or --source file,http) to accept POST /v1/transactions",
+        )
     if method not in entry.methods:
         allow = ", ".join(entry.methods)
         return _error(
