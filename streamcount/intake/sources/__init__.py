@@ -6,6 +6,9 @@ source it holds. Sources are built from the config through :data:`SOURCES` (the 
 
 Several sources may run at once (``input.source: [file, http]``); the loop reads them in
 turn, and each keeps its own position in the checkpoint, under its name.
+
+The ``nats`` source (:mod:`streamcount.intake.sources.nats`) is imported only when it is
+built, so the other commands do not pay for loading the NATS client.
 """
 
 from __future__ import annotations
@@ -124,6 +127,12 @@ def _file(config: Config, position: Any) -> Source:
     return FollowedFile(cfg.path, **kwargs)
 
 
+def _nats(config: Config, position: Any) -> Source:
+    from streamcount.intake.sources.nats import JetStreamSource
+
+    return JetStreamSource.from_config(config, position)
+
+
 SOURCES: dict[str, SourceSpec] = {
     spec.name: spec
     for spec in (
@@ -145,6 +154,12 @@ SOURCES: dict[str, SourceSpec] = {
             False,
             "POST /v1/transactions: one JSON object or NDJSON lines per request",
             format="jsonl",
+        ),
+        SourceSpec(
+            "nats",
+            _nats,
+            True,
+            "a NATS JetStream stream through a durable pull consumer (input.nats), exactly once",
         ),
     )
 }
