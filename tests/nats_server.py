@@ -29,6 +29,7 @@ __all__ = [
     "publish",
     "run_async",
     "stream_info",
+    "stream_messages",
 ]
 
 T = TypeVar("T")
@@ -128,7 +129,14 @@ async def _quiet(exc: Exception) -> None:
 async def _connect(url: str) -> Any:
     import nats
 
-    return await nats.connect(url, connect_timeout=2, allow_reconnect=False, error_cb=_quiet)
+    return await nats.connect(
+        url,
+        connect_timeout=2,
+        allow_reconnect=False,
+        max_reconnect_attempts=1,  # else nats-py retries a refused connection for two minutes
+        reconnect_time_wait=0.05,
+        error_cb=_quiet,
+    )
 
 
 async def _account_info(url: str) -> None:
@@ -206,6 +214,25 @@ def consumer_info(url: str, stream: str = "ORDERS", durable: str = "streamcount"
         nc = await _connect(url)
         try:
             return await nc.jetstream().consumer_info(stream, durable)
+        finally:
+            await nc.close()
+
+    return run_async(go())
+
+
+def stream_messages(url: str, name: str = "ORDERS") -> list[tuple[str, bytes]]:
+    """Every message the stream holds, in sequence order: ``(subject, data)``."""
+
+    async def go() -> list[tuple[str, bytes]]:
+        nc = await _connect(url)
+        try:
+            js = nc.jetstream()
+            state = (await js.stream_info(name)).state
+            out = []
+            for seq in range(state.first_seq, state.last_seq + 1):
+                msg = await js.get_msg(name, seq)
+                out.append((msg.subject, msg.data))
+            return out
         finally:
             await nc.close()
 

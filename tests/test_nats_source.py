@@ -463,3 +463,29 @@ def test_sigkill_at_random_moments_counts_exactly_once(
     engine, meta = state
     assert meta["sources"]["nats"] == {"stream": "ORDERS", "seq": len(messages)}
     _assert_same_as_replay(engine, records, config, tmp_path)
+
+
+def test_starts_without_a_server_and_connects_when_one_appears(tmp_path: Path) -> None:
+    from nats_server import free_port
+    from tools import require_tool
+
+    server = NatsServer(require_tool("nats-server"), tmp_path / "late-store", free_port())
+    config = _config(server, tmp_path)
+    source = JetStreamSource.from_config(config, None)  # nothing listens there yet
+    try:
+        assert not source.connected and source.read(100, 0.2) == []
+        server.start()  # the stream may still be missing when the source comes: it waits
+        time.sleep(0.5)
+        assert not source.connected
+        add_stream(server.url)
+        publish(server.url, "orders.0", _orders(50, seed=12))
+        wait_until(lambda: source.connected, "the source to connect")
+        got: list[int] = []
+        wait_until(
+            lambda: got.extend(len(b) for b in source.read(100, 0.1)) or sum(got) == 50,
+            "the 50 orders",
+        )
+        assert source.bus_stats().reconnects == 0  # the first connection is no reconnection
+    finally:
+        source.close()
+        server.stop()

@@ -71,6 +71,10 @@ class _Fatal(Exception):
         self.error = error
 
 
+class _NotYet(Exception):
+    """The server is up but not ready for us (the stream does not exist yet): try later."""
+
+
 def _retention(info: Any) -> str:
     value = getattr(info.config, "retention", None)
     return str(getattr(value, "value", value) or "limits")
@@ -253,15 +257,16 @@ class PullClient:
                 logger.error("%s: %s", self.name, exc.error)
                 await self._close(nc)
                 return
+            except _NotYet as exc:
+                problem: str | None = str(exc)
             except (OSError, TimeoutError, nats.errors.Error) as exc:
-                if not self._stop.is_set():
-                    logger.warning(
-                        "%s: connection to NATS lost (%s)", self.name, exc or type(exc).__name__
-                    )
+                problem = f"connection to NATS lost ({exc or type(exc).__name__})"
+            else:
+                problem = None  # stopped
             self.connected = False
             await self._close(nc)
             if not self._stop.is_set():
-                logger.warning("%s: reconnecting in %.1f s", self.name, wait)
+                logger.warning("%s: %s; trying again in %.1f s", self.name, problem, wait)
                 await self._pause(wait)
                 wait = min(wait * 2, cfg.max_reconnect_wait_seconds)
 
@@ -288,6 +293,10 @@ class PullClient:
             "servers": list(cfg.servers),
             "name": "streamcount",
             "allow_reconnect": False,  # reconnection is ours: with backoff and a rewind
+            # nats-py retries a failed first connection by itself, 60 times 2 s apart, unless
+            # told: two quick tries per server, then the error comes back to our backoff
+            "max_reconnect_attempts": 1,
+            "reconnect_time_wait": 0.05,
             "connect_timeout": cfg.connect_timeout_seconds,
             "ping_interval": _PING_SECONDS,
             "max_outstanding_pings": 3,
@@ -333,11 +342,9 @@ class PullClient:
         try:
             info = await js.stream_info(cfg.stream)
         except nats.js.errors.NotFoundError:
-            raise _Fatal(
-                InputError(
-                    f"input.nats.stream = {cfg.stream!r}: no such stream on {self.server}; "
-                    "create it first (file storage, limits retention; see the README)"
-                )
+            raise _NotYet(
+                f"input.nats.stream = {cfg.stream!r}: no such stream on {self.server}; create "
+                "it (file storage, limits retention; see the README)"
             ) from None
         retention = _retention(info)
         if retention != "limits":
