@@ -148,8 +148,10 @@ class PullClient:
         self.redeliveries = 0
         self.gap_messages = 0
         self.rewinds = 0
-        self.server_pending = 0
         self.ack_pending = 0
+        self._info_pending = 0
+        self._last_reply: str | None = None
+        self._half = config.pull_batch // 2
         self.gap: dict[str, Any] | None = None
         self.rewound_through = 0
         self.server: str | None = None
@@ -160,6 +162,7 @@ class PullClient:
         self._incarnation = 0
         self._rewind = False
         self._activity = time.monotonic()
+        self._activity_mark = 0  # _next_dseq when _activity was last moved
         self._stalled_logged = False
         self._nc: Any = None
         self._tasks: set[asyncio.Task[None]] = set()
@@ -406,6 +409,7 @@ class PullClient:
         self._inbox = inbox
         self._next_subject = f"$JS.API.CONSUMER.MSG.NEXT.{cfg.stream}.{cfg.durable}"
         self._next_dseq = 1
+        self._last_reply = None
         self._outstanding = 0
         self._rewind = False
         self._activity = time.monotonic()
@@ -490,7 +494,9 @@ class PullClient:
                 except nats.js.errors.NotFoundError:
                     self._rewind = True
                     continue
-            if self._outstanding and now - self._activity > _EXPIRES_SECONDS + 5:
+            if self._next_dseq != self._activity_mark:
+                self._activity_mark, self._activity = self._next_dseq, now
+            elif self._outstanding and now - self._activity > _EXPIRES_SECONDS + 5:
                 self._outstanding = 0  # requests lost without a word: ask again
             self._room.clear()
             with contextlib.suppress(TimeoutError):
@@ -500,8 +506,9 @@ class PullClient:
         cfg = self.config
         info = await nc.jetstream().consumer_info(cfg.stream, cfg.durable, timeout=2)
         self.ack_pending = int(info.num_ack_pending or 0)
-        if not self._outstanding or not self.buffer:
-            self.server_pending = int(info.num_pending or 0)
+        if not self._outstanding or not self.buffer:  # nothing flowing: the info is newer
+            self._info_pending = int(info.num_pending or 0)
+            self._last_reply = None
         stalled = self.ack_pending >= cfg.max_ack_pending
         if stalled and not self._stalled_logged:
             logger.warning(
@@ -515,14 +522,14 @@ class PullClient:
         self._stalled_logged = stalled
 
     def _deliver(self, msg: Any) -> None:
-        """One delivery or status message on the inbox (the client thread's hot path)."""
-        self._activity = time.monotonic()
+        """One delivery or status message on the inbox (the client thread's hot path: a
+        split, two integers and an append per message)."""
         reply = msg.reply
         if not reply:
             self._status(msg.headers or {})
             return
         self._outstanding -= 1
-        if self._outstanding == self.config.pull_batch // 2:
+        if self._outstanding == self._half:
             self._room.set()  # type: ignore[union-attr]
         t = reply.split(".")
         o = 0 if len(t) == 9 else 2  # $JS.ACK.<domain>.<account hash>. in the newer form
@@ -534,10 +541,10 @@ class PullClient:
             self._room.set()  # type: ignore[union-attr]
             return
         self._next_dseq = dseq + 1
-        seq = int(t[5 + o])
-        self.server_pending = int(t[8 + o])
+        self._last_reply = reply
         if t[4 + o] != "1":
             self.redeliveries += 1
+        seq = int(t[5 + o])
         if seq <= self._received:
             return  # delivered again: already buffered (and maybe counted)
         self._received = seq
@@ -545,7 +552,18 @@ class PullClient:
         if self.reader_waiting:
             self.arrived.set()
 
+    @property
+    def server_pending(self) -> int:
+        """Messages the server holds for the consumer and has not delivered yet (as of the
+        last delivery, or the last consumer info when nothing is flowing)."""
+        reply = self._last_reply
+        if reply is None:
+            return self._info_pending
+        t = reply.split(".")
+        return int(t[8 if len(t) == 9 else 10])
+
     def _status(self, headers: dict[str, str]) -> None:
+        self._activity = time.monotonic()
         code = headers.get("Status", "")
         if code == "100":
             return  # idle heartbeat
