@@ -489,3 +489,12 @@ def test_starts_without_a_server_and_connects_when_one_appears(tmp_path: Path) -
     finally:
         source.close()
         server.stop()
+
+
+def test_csv_on_the_bus_needs_numbered_columns() -> None:
+    from streamcount.errors import ConfigError
+
+    with pytest.raises(ConfigError, match=r"input\.csv\.header = True: must be false"):
+        config_from_mapping({"input": {"source": "nats", "format": "csv"}})
+    csv = {"header": False, "order_field": "0", "item_field": "1", "ts_field": "2"}
+    config_from_mapping({"input": {"source": "nats", "format": "csv", "csv": csv}})

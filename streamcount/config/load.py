@@ -533,6 +533,13 @@ def _nats_cross_checks(cfg: Config) -> None:
             nats.max_reconnect_wait_seconds,
             f"must be >= input.nats.reconnect_wait_seconds ({nats.reconnect_wait_seconds:g})",
         )
+    if "nats" in cfg.input.source and cfg.input.format == "csv" and cfg.input.csv.header:
+        _fail(
+            "input.csv.header",
+            True,
+            "must be false with input.source nats: messages on a bus carry no header row, so "
+            "columns are named by 0-based number (input.csv.order_field: '0'...)",
+        )
     if nats.creds_file is not None and nats.token_env is not None:
         _fail(
             "input.nats.token_env",
