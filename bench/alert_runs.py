@@ -94,6 +94,10 @@ def _spread(values: list[float]) -> dict[str, float] | None:
     return {"median": statistics.median(values), "min": min(values), "max": max(values)}
 
 
+#: bins of warm pane closes since warm-up (the reference holds about 50 panes)
+_AGES = ((0, 10), (10, 50), (50, 200), (200, 10**9))
+
+
 class _Run:
     """A pipeline fed one pane per ``add``, recording each close's budget and warm state."""
 
@@ -108,6 +112,8 @@ class _Run:
         self.exposure = 0
         self.tests: list[int] = []
         self.thresholds: list[float] = []
+        #: per alert, the warm pane close (0: the close that filled the first window) it came at
+        self.alert_close: list[int] = []
 
     def pane(self, baskets: list[list[str]]) -> bool:
         """Feed one pane; True when it closed a pane evaluated warm."""
@@ -121,11 +127,22 @@ class _Run:
         if not self.pipeline.engine.window_full:
             return False
         budget = self.pipeline.monitor.budget
+        self.alert_close += [self.warm_closes] * (len(self.alerts) - len(self.alert_close))
         self.warm_closes += 1
         self.exposure += len(baskets)
         self.tests.append(int(budget.tests))
         self.thresholds.append(float(budget.threshold))
         return True
+
+    def by_age(self, pane: int) -> list[dict[str, int]]:
+        """Alerts and exposure by warm pane closes since warm-up: does the rate settle?"""
+        out = []
+        for lo, hi in _AGES:
+            closes = max(0, min(hi, self.warm_closes) - lo)
+            if closes:
+                n = sum(1 for c in self.alert_close if lo <= c < hi)
+                out.append({"from": lo, "to": hi, "alerts": n, "exposure": closes * pane})
+        return out
 
     def summary(self) -> dict[str, Any]:
         return {
@@ -168,6 +185,7 @@ def _stationary(case: dict[str, Any]) -> dict[str, Any]:
         "by_size": dict(Counter(str(len(a["items"])) for a in alerts)),
         "by_direction": dict(Counter(str(a["evidence"]["direction"]) for a in alerts)),
         "folded": sum(1 for a in alerts if a.get("also")),
+        "by_age": run.by_age(pane),
         "strongest": [_brief(a) for a in strongest[:3]],
         "active_rules_at_end": len(run.pipeline.monitor.active_rules),
         "candidates_at_end": run.pipeline.monitor.tracker.candidates(),
