@@ -12,8 +12,8 @@ Cases (``case["kind"]``):
     Planted changes against the exact oracle (:class:`alert_feeds.Oracle`), one seed after
     another in this process.
 ``retail``
-    One pass over the open retail dataset in file order, with an exact recount of the
-    strongest alerts' itemsets before and since their estimated change.
+    One pass over the open retail dataset in file order, with an exact recount of every
+    alert's itemset before and since its estimated change (:mod:`alert_recount`).
 ``cost``
     A timing: ``replay_file`` of T10I4D100K with one report, one untimed warm-up run, then
     ``repeat`` timed runs.
@@ -29,6 +29,7 @@ from typing import Any
 
 import alert_feeds as feeds
 import machine
+from alert_recount import Recount
 
 __all__ = ["config", "run_case"]
 
@@ -298,8 +299,8 @@ def _retail(case: dict[str, Any]) -> dict[str, Any]:
                     "threshold": run.thresholds[-1],
                 }
             )
-    recount = _Recount(baskets)
-    checked = [recount.check(a, window, pane) for a in run.alerts]
+    recount = Recount(baskets)
+    checked = [recount.check(a, window, pane) for a in run.alerts]  # in alert order
     order = sorted(range(len(run.alerts)), key=lambda i: -_strength(run.alerts[i]))
     top = []
     for i in order[: int(case["top"])]:
@@ -326,65 +327,6 @@ def _retail(case: dict[str, Any]) -> dict[str, Any]:
             for a, ex in zip(run.alerts, checked, strict=True)
         ],
     }
-
-
-class _Recount:
-    """Exact counts of itemsets over ranges of the retail file (an inverted index)."""
-
-    def __init__(self, baskets: list[list[str]]) -> None:
-        import numpy as np
-
-        where: dict[str, list[int]] = {}
-        for t, basket in enumerate(baskets, 1):
-            for item in basket:
-                where.setdefault(item, []).append(t)
-        self.where = {k: np.array(v, dtype=np.int64) for k, v in where.items()}
-        self.first = {k: int(v[0]) for k, v in self.where.items()}
-
-    def count(self, items: list[str], first: int, last: int) -> int:
-        """Transactions ``first..last`` (1-based seqs, inclusive) holding every item."""
-        import numpy as np
-
-        common = self.where[items[0]]
-        for item in items[1:]:
-            common = np.intersect1d(common, self.where[item], assume_unique=True)
-        return int(np.searchsorted(common, last, "right") - np.searchsorted(common, first))
-
-    def check(self, alert: dict[str, Any], window: int, pane: int) -> dict[str, Any]:
-        """The itemset's exact rate in the ``window`` orders before the alert's estimated change
-        and from the change to the alert; whether it moved the way the alert says."""
-        from scipy.stats import binom
-
-        ev = alert["evidence"]
-        change = ev["change_seq"]
-        if change is None:
-            change = int(ev["change_pane"]) * pane + 1
-        lo = max(1, change - window)
-        n_ref, n_rec = change - lo, int(alert["seq"]) - change + 1
-        c_ref = self.count(alert["items"], lo, change - 1)
-        c_rec = self.count(alert["items"], change, int(alert["seq"]))
-        p_ref = c_ref / n_ref if n_ref else float("nan")
-        p_rec = c_rec / n_rec
-        up = ev["direction"] == "up"
-        if up:
-            ratio_ok = p_rec >= 1.5 * p_ref
-            p_value = float(binom.sf(c_rec - 1, n_rec, p_ref)) if p_ref > 0 else float(c_rec == 0)
-        else:
-            ratio_ok = p_rec <= p_ref / 1.5
-            p_value = float(binom.cdf(c_rec, n_rec, p_ref)) if p_ref > 0 else 1.0
-        newest = max(self.first[i] for i in alert["items"])
-        return {
-            "reference_first_seq": lo,
-            "reference_transactions": n_ref,
-            "reference_count": c_ref,
-            "recent_first_seq": change,
-            "recent_transactions": n_rec,
-            "recent_count": c_rec,
-            "moved_1_5x": bool(ratio_ok),
-            "p_value": p_value,
-            "new_item": newest >= lo,
-            "newest_item_first_seq": newest,
-        }
 
 
 def _cost(case: dict[str, Any]) -> dict[str, Any]:

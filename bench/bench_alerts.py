@@ -57,6 +57,7 @@ from typing import Any
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 import alert_parts  # bench/ is not a package: neighbours are imported by path
+import alert_realdata
 import machine
 
 __all__ = ["main", "run_all", "run_cost", "run_parent"]
@@ -65,13 +66,15 @@ SCRIPT = Path(__file__).resolve()
 CACHE_DIR = machine.BENCH_DIR / ".cache" / "alerts"
 PARTS = ("calibration", "delays", "retail", "cost")
 WINDOWS = "5000/500,10000/1000,20000/2000,50000/5000"
+#: what a child process runs besides streamcount (a cached result depends on them)
+_CHILD_MODULES = ("alert_feeds.py", "alert_recount.py", "alert_runs.py", "machine.py")
 
 
 def _code_hash() -> str:
     """Hash of the code a cached result depends on (streamcount and the child modules)."""
     h = hashlib.sha256()
     files = sorted((machine.REPO_DIR / "streamcount").rglob("*.py"))
-    files += [machine.BENCH_DIR / n for n in ("alert_feeds.py", "alert_runs.py", "machine.py")]
+    files += [machine.BENCH_DIR / n for n in _CHILD_MODULES]
     for path in files:
         h.update(path.relative_to(machine.REPO_DIR).as_posix().encode())
         h.update(path.read_bytes())
@@ -82,7 +85,9 @@ def _run(case: dict[str, Any], *, resume: bool, code: str) -> dict[str, Any]:
     key = hashlib.sha256(json.dumps([case, code], sort_keys=True).encode()).hexdigest()[:24]
     path = CACHE_DIR / f"{key}.json"
     if resume and path.exists() and case["kind"] != "cost":
-        return json.loads(path.read_text(encoding="utf-8"))  # type: ignore[no-any-return]
+        out: dict[str, Any] = json.loads(path.read_text(encoding="utf-8"))
+        out["cached"] = True
+        return out
     start = time.perf_counter()
     out = machine.run_case(SCRIPT, case)
     out["wall_seconds"] = time.perf_counter() - start
@@ -102,8 +107,9 @@ def run_all(cases: list[dict[str, Any]], args: argparse.Namespace) -> list[dict[
         for done, fut in enumerate(as_completed(futures), 1):
             i = futures[fut]
             results[i] = fut.result()
-            wall = results[i].get("wall_seconds")
-            took = "cached" if wall is None else f"{wall:.0f} s"
+            took = f"{results[i].get('wall_seconds', 0):.0f} s"
+            if results[i].get("cached"):
+                took += " (cached)"
             print(f"  [{done}/{len(cases)}] {alert_parts.label(cases[i])}: {took}", flush=True)
     return [r for r in results if r is not None]
 
@@ -113,9 +119,9 @@ def run_cost(args: argparse.Namespace) -> list[dict[str, Any]]:
     code = _code_hash()
     out = []
     for r in range(args.cost_runs):
-        pair = alert_parts.COST_REPORTS if r % 2 == 0 else alert_parts.COST_REPORTS[::-1]
+        pair = alert_realdata.COST_REPORTS if r % 2 == 0 else alert_realdata.COST_REPORTS[::-1]
         for report in pair:
-            case = alert_parts.cost_case(args, report)
+            case = alert_realdata.cost_case(args, report)
             res = _run(case, resume=False, code=code)
             res["round"] = r
             out.append(res)
@@ -136,7 +142,7 @@ def run_parent(args: argparse.Namespace) -> int:
     builders = {
         "calibration": (alert_parts.calibration_cases, alert_parts.calibration_md),
         "delays": (alert_parts.delay_cases, alert_parts.delays_md),
-        "retail": (alert_parts.retail_cases, alert_parts.retail_md),
+        "retail": (alert_realdata.retail_cases, alert_realdata.retail_md),
     }
     for part in parts:
         if part == "cost":
@@ -148,11 +154,15 @@ def run_parent(args: argparse.Namespace) -> int:
         lines, summary = report(args, results)
         print("\n".join(lines), flush=True)
         md += ["", *lines]
+        if part == "retail":
+            results = alert_realdata.compact_retail(results)
+        else:
+            results = alert_parts.compact(part, results)
         raw[part] = {"summary": summary, "results": results}
     if "cost" in parts:
         print(f"\n## cost: {args.cost_runs} rounds, interleaved, one process per run", flush=True)
         results = run_cost(args)
-        lines, summary = alert_parts.cost_md(args, results)
+        lines, summary = alert_realdata.cost_md(args, results)
         print("\n".join(lines))
         md += ["", *lines]
         raw["cost"] = {"summary": summary, "results": results}
