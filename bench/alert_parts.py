@@ -83,33 +83,52 @@ def label(case: dict[str, Any]) -> str:
     return case["kind"]
 
 
-def _ev(ev: dict[str, Any] | None) -> dict[str, Any] | None:
-    if not ev:
-        return None
-    keys = ("direction", "statistic", "threshold", "ratio", "change_seq", "tests")
-    out = {k: ev[k] for k in keys}
-    out["reference_rate"] = ev["reference_rate"]["value"]
-    out["recent_rate"] = ev["recent_rate"]["value"]
-    return out
+_RUN_COLUMNS = (
+    "seed",
+    "pair",
+    "delay",
+    "alert_seq",
+    "change_seq",
+    "crossing_seq",
+    "first_up_after_crossing",
+    "first_up_after_start",
+    "false_pair_alerts",
+    "related_alerts",
+    "other_alerts",
+    "exposure",
+    "exact_support_at_change",
+    "exact_support_at_alert",
+    "active_rule_before_change",
+)
+
+
+def _cell(value: Any) -> str:
+    if value is None:
+        return "-"
+    if isinstance(value, float):
+        return f"{value:.6g}"
+    if isinstance(value, list):
+        return " ".join(str(v) for v in value)
+    return str(value)
 
 
 def compact(part: str, results: list[dict[str, Any]]) -> list[dict[str, Any]]:
-    """Results slimmed for the recorded JSON: alert examples reduced to their key figures."""
+    """Results slimmed for the recorded JSON: examples and per-seed runs as tab-separated
+    lines (columns named once), so the file stays small."""
     out = []
     for r in results:
-        r = dict(r)
+        r = {k: v for k, v in r.items() if k != "cached"}
         if part == "calibration":
             r["strongest"] = [
-                {"kind": a["kind"], "seq": a["seq"], "items": a["items"], **_ev(a["evidence"])}
+                f"{a['kind']}\t{a['seq']}\t{' '.join(a['items'])}\t"
+                f"{a['evidence']['statistic']:.2f}/{a['evidence']['threshold']:.2f}"
                 for a in r["strongest"]
             ]
         elif part == "delays":
-            runs = []
-            for run in r["runs"]:
-                run = {k: v for k, v in run.items() if k not in ("other_examples", "tests")}
-                run["evidence"] = _ev(run["evidence"])
-                runs.append(run)
-            r["runs"] = runs
+            r["runs"] = {
+                "columns": " ".join(_RUN_COLUMNS),
+                "rows": ["\t".join(_cell(run.get(k)) for k in _RUN_COLUMNS) for run in r["runs"]],
+            }
         out.append(r)
     return out
 

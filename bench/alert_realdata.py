@@ -204,7 +204,8 @@ def compact_retail(results: list[dict[str, Any]]) -> list[dict[str, Any]]:
             cells = [a["kind"], " ".join(a["also"]) or "-", str(a["seq"]), " ".join(a["items"])]
             cells += [f"{a['strength']:.3f}", str(ex["moved_1_5x"]), f"{ex['p_value']:.3g}", lift]
             rows.append("\t".join(cells))
-        out.append({**r, "all": {"columns": _COLUMNS, "rows": rows}})
+        slim = {k: v for k, v in r.items() if k != "cached"}
+        out.append({**slim, "all": {"columns": _COLUMNS, "rows": rows}})
     return out
 
 

@@ -139,6 +139,14 @@ def run_parent(args: argparse.Namespace) -> int:
     print(machine.format_machine(info))
     raw: dict[str, Any] = {"machine": info, "settings": alert_parts.settings(args, parts)}
     md: list[str] = []
+    if set(parts) - {"cost"}:
+        md += [
+            "Calibration, delays and the retail pass are counts: they depend on the seeds and "
+            "the code alone, not on the machine's load ('run s' is wall time on a shared "
+            "machine, for information). Cases run in fresh processes, two at a time; "
+            "with `--resume` finished cases come from `bench/.cache/alerts/`, reused only "
+            "for the same code (streamcount and the child modules hashed).",
+        ]
     builders = {
         "calibration": (alert_parts.calibration_cases, alert_parts.calibration_md),
         "delays": (alert_parts.delay_cases, alert_parts.delays_md),
