@@ -16,8 +16,14 @@ Endpoints
 ``/v1/rules``              GET     rules: ``sort`` (lift|confidence|support), ``limit``,
                                    ``min_confidence``, ``min_lift``, ``min_support``
 ``/v1/alerts``             GET     recent alerts: ``since`` (alert sequence), ``limit``
+``/v1/history``            GET     one itemset's support per pane close: ``items`` (once per
+                                   item), ``since`` (pane close)
 ``/v1/transactions``       POST    ingest a body of transactions (only with HTTP ingest on)
+``/``, ``/page/*``         GET     the page (:mod:`.page`; no token needed, it holds no data)
 =========================  ======  ==========================================================
+
+``/v1/rules`` also takes ``since``: the ``version`` of the rules the reader holds (answered
+with ``"unchanged": true`` and no list while they are current).
 
 ``HEAD`` is answered like ``GET``; the adapter leaves the body out. Every error is JSON
 ``{"error": {"code": ..., "message": ...}}``: 400 for a bad parameter or body, 401 without the
@@ -45,6 +51,7 @@ from urllib.parse import parse_qs, urlsplit
 from streamcount import __version__
 from streamcount.config.load import parse_listen
 from streamcount.errors import InputError
+from streamcount.service.page import PAGE_FILES, page_file
 
 __all__ = [
     "MAX_LIMIT",
@@ -93,6 +100,15 @@ class ApiBackend(Protocol):
     ) -> dict[str, Any]: ...
 
     def alerts(self, since: int | None, limit: int) -> dict[str, Any]: ...
+
+    def history(self, items: list[str], since: int | None) -> dict[str, Any]:
+        """One itemset's history after pane close ``since``; :class:`InputError` for a bad
+        itemset."""
+        ...
+
+    def page_enabled(self) -> bool:
+        """Whether ``GET /`` serves the page (``page.enabled``)."""
+        ...
 
     def ingest_enabled(self) -> bool:
         """Whether ``POST /v1/transactions`` exists (``input.http_ingest``)."""
@@ -166,6 +182,10 @@ class _Query:
             raise _BadParameter(name, raw, f"must be a whole number >= {low}")
         return value
 
+    def text(self, name: str) -> str | None:
+        raw = self._values.get(name)
+        return None if raw is None or raw == "" else raw
+
     def limit(self) -> int:
         value = self.integer("limit", low=1)
         return _DEFAULT_LIMIT if value is None else min(value, MAX_LIMIT)
@@ -224,12 +244,14 @@ def _itemsets(
 def _rules(
     backend: ApiBackend, query: Mapping[str, list[str]], body: bytes, ctype: str
 ) -> Response:
-    q = _Query(query, ("sort", "limit", "min_confidence", "min_lift", "min_support"))
+    q = _Query(query, ("sort", "limit", "min_confidence", "min_lift", "min_support", "since"))
     sort = q.choice("sort", RULE_SORTS)
     min_confidence = q.number("min_confidence", low=0.0, high=1.0, text=_FRACTION)
     min_lift = q.number("min_lift", low=0.0, text=">= 0")
     min_support = q.number("min_support", low=0.0, high=1.0, text=_FRACTION)
-    payload = backend.rules(sort, q.limit(), min_confidence, min_lift, min_support)
+    since = q.text("since")
+    extra = {} if since is None else {"since": since}
+    payload = backend.rules(sort, q.limit(), min_confidence, min_lift, min_support, **extra)
     return _json_response(200, payload)
 
 
@@ -239,6 +261,35 @@ def _alerts(
     q = _Query(query, ("since", "limit"))
     since = q.integer("since", low=0)
     return _json_response(200, backend.alerts(since, q.limit()))
+
+
+def _history(
+    backend: ApiBackend, query: Mapping[str, list[str]], body: bytes, ctype: str
+) -> Response:
+    # items may repeat (one per item: any name, commas included, is one value)
+    items = list(query.get("items", []))
+    q = _Query({k: v for k, v in query.items() if k != "items"}, ("since",))
+    since = q.integer("since", low=0)
+    if not items:
+        raise _BadParameter("items", "", "required: one items= parameter per item of the itemset")
+    try:
+        return _json_response(200, backend.history(items, since))
+    except InputError as exc:
+        return _error(400, "bad_parameter", str(exc))
+
+
+def _page(path: str) -> _Handler:
+    """The handler of one page file (the query string is ignored)."""
+
+    def handler(
+        backend: ApiBackend, query: Mapping[str, list[str]], body: bytes, ctype: str
+    ) -> Response:
+        if not backend.page_enabled():
+            return _error(404, "not_found", "the page is off (page.enabled: false)")
+        content, headers = page_file(path)
+        return Response(200, headers, content)
+
+    return handler
 
 
 def _ingest(
@@ -272,7 +323,10 @@ _ROUTES: dict[str, _Route] = {
     "/v1/itemsets": _Route(_GET, _itemsets),
     "/v1/rules": _Route(_GET, _rules),
     "/v1/alerts": _Route(_GET, _alerts),
+    "/v1/history": _Route(_GET, _history),
     "/v1/transactions": _Route(("POST",), _ingest),
+    # the page's files hold no data: they load without the token, then ask for it
+    **{path: _Route(_GET, _page(path), public=True) for path in PAGE_FILES},
 }
 
 
