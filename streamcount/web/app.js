@@ -33,6 +33,8 @@ const state = {
   filter: "",
   hash: null,
   busy: false,
+  gated: false, // waiting for a token: no reading until one is given
+  epoch: 0, // grows when the token changes: a reading begun before is dropped
 };
 
 // ---------------------------------------------------------------------------------------------
@@ -233,7 +235,7 @@ async function readAll() {
 
 function schedule() {
   clearTimeout(state.timer);
-  if (!state.paused) state.timer = setTimeout(refresh, state.refreshSeconds * 1000);
+  if (!state.paused && !state.gated) state.timer = setTimeout(refresh, state.refreshSeconds * 1000);
 }
 
 function resetCursors() {
@@ -245,14 +247,17 @@ function resetCursors() {
 }
 
 async function refresh() {
-  if (state.busy) return;
+  if (state.busy || state.gated) return;
   state.busy = true;
+  const epoch = state.epoch;
   try {
     let got = await readAll();
+    if (epoch !== state.epoch) return; // the token changed meanwhile
     if (got && state.asOf && got.status.as_of.pane_close < state.asOf.pane_close) {
       // the service went back (restarted from an older state): read everything again
       resetCursors();
       got = await readAll();
+      if (epoch !== state.epoch) return;
     }
     if (!got) {
       setStamp("The numbers moved while they were read; the previous reading stays until the next refresh.", true);
@@ -261,6 +266,7 @@ async function refresh() {
     }
     showBoard();
   } catch (err) {
+    if (epoch !== state.epoch) return;
     if (err instanceof Refused) {
       askToken(state.token ? "The service refused this token." : "");
     } else {
@@ -268,7 +274,9 @@ async function refresh() {
     }
   } finally {
     state.busy = false;
-    if (state.selected && !state.hist && state.asOf && !state.paused) {
+    if (state.gated) {
+      clearTimeout(state.timer);
+    } else if (state.selected && !state.hist && state.asOf && !state.paused) {
       // a new choice during this reading: read its history now rather than at the next refresh
       clearTimeout(state.timer);
       state.timer = setTimeout(refresh, 0);
@@ -337,6 +345,9 @@ function setStamp(text, warn = false) {
 // the token gate
 
 function askToken(message) {
+  state.gated = true;
+  state.epoch += 1;
+  clearTimeout(state.timer);
   state.token = null;
   sessionStorage.removeItem(TOKEN_KEY);
   state.asOf = null;
@@ -370,6 +381,8 @@ $("gate-form").addEventListener("submit", (ev) => {
   if (!token) return;
   state.token = token;
   sessionStorage.setItem(TOKEN_KEY, token);
+  state.gated = false;
+  state.epoch += 1;
   refresh();
 });
 
@@ -495,10 +508,10 @@ function measureCell(r, name, scale) {
 
 function changeCell(r) {
   const c = r.last_change;
-  if (!c) return el("td", { "data-label": "last change", class: "no-change" }, el("span", { class: "empty" }, "none since start"));
+  if (!c) return el("td", { "data-label": "last change", class: "change-cell" }, el("span", { class: "empty" }, "none since start"));
   return el(
     "td",
-    { "data-label": "last change" },
+    { "data-label": "last change", class: "change-cell" },
     kindNode(c.kind),
     ` at order ${int(c.seq)}`,
     c.evidence ? el("span", { class: "evidence-line" }, evidenceLine(c.evidence)) : el("span", { class: "evidence-line" }, "record no longer held"),
