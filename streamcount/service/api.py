@@ -119,6 +119,9 @@ class ServiceApi:
         self._clock = clock
         #: (monotonic time, transactions_seen) at each publish, for orders_per_second
         self._seen: deque[tuple[float, int]] = deque(maxlen=256)
+        #: the last full rules answer: (view, arguments, answer); pages open on one service
+        #: ask the same question of the same view, so it is built once per view
+        self._rules_cache: tuple[View, tuple[Any, ...], dict[str, Any]] | None = None
 
     # -- called by the loop -------------------------------------------------------------------
 
@@ -216,6 +219,10 @@ class ServiceApi:
                 "window": window,
                 "unchanged": True,
             }
+        args = (sort, limit, min_confidence, min_lift, min_support)
+        cached = self._rules_cache
+        if cached is not None and cached[0] is view and cached[1] == args:
+            return cached[2]
         chosen = [
             r
             for r in view.rules
@@ -228,13 +235,15 @@ class ServiceApi:
         chosen.sort(key=_SORT_KEYS[sort], reverse=True)
         notes = view.rule_notes
         blank = {"since_seq": None, "since_pane": None, "last_change": None}
-        return {
+        answer = {
             "as_of": dict(view.as_of),
             "version": view.rules_version,
             # rules are evaluated at pane close: this is the window they were measured on
             "window": window,
             "rules": [{**r.as_dict(), **notes.get(r.key, blank)} for r in chosen[:limit]],
         }
+        self._rules_cache = (view, args, answer)  # one reference swap: safe across threads
+        return answer
 
     def alerts(self, since: int | None, limit: int) -> dict[str, Any]:
         view = self._view
