@@ -630,7 +630,8 @@ function alertItem(a) {
     ...pair("budget", `${ev.budget_per_million} per million orders over ${int(ev.tests)} tests (level ${Number(ev.level).toExponential(2)})`),
   ];
   for (const [name, m] of Object.entries(a.measures || {})) fields.push(...pair(name, measureText(m, FORMAT[name] || dec)));
-  fields.push(...pair("p-value", a.p_value === null ? "–" : Number(a.p_value).toExponential(2)));
+  const p = a.p_value;
+  fields.push(...pair("p-value", p === null ? "–" : p === 0 ? "below 1e-300" : Number(p).toExponential(2)));
   const w = a.window || {};
   fields.push(...pair("window", `orders ${int(w.first_seq)} to ${int(w.last_seq)} (${int(w.transactions)}), undercount ≤ ${int(w.max_error)}`));
   const t = a.thresholds || {};
