@@ -12,12 +12,13 @@ from __future__ import annotations
 
 import time
 from collections import deque
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Mapping, Sequence
 from concurrent.futures import Future
 from concurrent.futures import TimeoutError as FutureTimeout
 from dataclasses import dataclass, field
 from typing import Any
 
+from streamcount.alerts.listing import ListedRule, RuleKey
 from streamcount.config.settings import PageConfig
 from streamcount.engine.snapshot import EngineStatistics, WindowSnapshot
 from streamcount.errors import InputError
@@ -26,7 +27,7 @@ from streamcount.rules.derive import Rule
 from streamcount.service.history import HistoryView
 from streamcount.service.server import RULE_SORTS
 
-__all__ = ["ServiceApi", "View"]
+__all__ = ["ServiceApi", "View", "rule_notes"]
 
 
 @dataclass(frozen=True, slots=True)
@@ -308,3 +309,34 @@ class ServiceApi:
                 f"{first['detail']}"
             )
         return {"accepted": receipt.accepted, "rejected": receipt.rejected}
+
+
+def rule_notes(
+    listed: Sequence[ListedRule], alerts: Sequence[Mapping[str, Any]]
+) -> dict[RuleKey, dict[str, Any]]:
+    """Per active rule (by key): since when it is active and its last change, with that alert's
+    evidence while the record is still held (``alerts.history``).
+
+    Parameters
+    ----------
+    listed:
+        The listing's active rules (read on the loop's thread, copied here).
+    alerts:
+        The alert records held, to find each last change's evidence by id.
+    """
+    by_id: dict[str, Mapping[str, Any]] | None = None
+    out = {}
+    for state in listed:
+        change = None
+        if state.last_change is not None:
+            if by_id is None:
+                by_id = {str(a["id"]): a for a in alerts}
+            change = dict(state.last_change)
+            record = by_id.get(str(change.get("id")))
+            change["evidence"] = None if record is None else record.get("evidence")
+        out[state.rule.key] = {
+            "since_seq": int(state.since_seq),
+            "since_pane": int(state.since_pane),
+            "last_change": change,
+        }
+    return out

@@ -36,7 +36,7 @@ from streamcount.intake.records import Decoded, RecordBatch
 from streamcount.intake.sources import SOURCES, Source, build_sources
 from streamcount.pipeline import Pipeline
 from streamcount.rules.derive import Rule, measure_rules
-from streamcount.service.api import ServiceApi, View
+from streamcount.service.api import ServiceApi, View, rule_notes
 from streamcount.service.checkpoint import load_latest_checkpoint, save_checkpoint
 from streamcount.service.history import HistoryStore
 from streamcount.service.metrics import Metrics, RuleSample, ServiceState
@@ -461,7 +461,7 @@ class Service:
             key,
             as_of=as_of,
             history=history,
-            rule_notes=_rule_notes(listed, alerts),
+            rule_notes=rule_notes(listed, alerts),
             rules_version=f"{closes}.{rules_seq}",
         )
 
@@ -575,26 +575,3 @@ class Service:
     def positions(self) -> Mapping[str, Any]:
         """Every source's current position, by name."""
         return {i.source.name: i.source.position() for i in self.inputs}
-
-
-def _rule_notes(
-    listed: list[Any], alerts: tuple[dict[str, Any], ...]
-) -> dict[tuple[tuple[str, ...], tuple[str, ...]], dict[str, Any]]:
-    """Per active rule: since when it is active and its last change, with that alert's
-    evidence while the record is still held (``alerts.history``)."""
-    by_id: dict[str, dict[str, Any]] | None = None
-    out = {}
-    for state in listed:
-        change = None
-        if state.last_change is not None:
-            if by_id is None:
-                by_id = {str(a["id"]): a for a in alerts}
-            change = dict(state.last_change)
-            record = by_id.get(str(change.get("id")))
-            change["evidence"] = None if record is None else record.get("evidence")
-        out[state.rule.key] = {
-            "since_seq": int(state.since_seq),
-            "since_pane": int(state.since_pane),
-            "last_change": change,
-        }
-    return out
