@@ -97,7 +97,11 @@ class ApiBackend(Protocol):
         min_confidence: float | None,
         min_lift: float | None,
         min_support: float | None,
-    ) -> dict[str, Any]: ...
+        since: str | None = None,
+    ) -> dict[str, Any]:
+        """The active rules; with ``since`` equal to their ``version``, only that they are
+        unchanged."""
+        ...
 
     def alerts(self, since: int | None, limit: int) -> dict[str, Any]: ...
 
