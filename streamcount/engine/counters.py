@@ -43,9 +43,9 @@ from typing import Protocol
 
 import numpy as np
 
-from streamcount.engine.keys import combination_table, fits_int64, lookup, pack, unpack
+from streamcount.engine.keys import PairKeys, combination_table, fits_int64, lookup, pack, unpack
 
-__all__ = ["Level", "LossySummary", "Summary", "bucket_width"]
+__all__ = ["Level", "LossySummary", "Summary", "bucket_width", "drop_excluded_pairs"]
 
 # Rows of combinations materialised at once while enumerating a batch (bounds peak memory:
 # about 8 bytes x k per row plus the packed key).
@@ -155,6 +155,9 @@ class LossySummary:
         true count of this summary's ``n`` transactions (exactly: ``<= ceil(n / w)``).
     max_itemset_size:
         Largest itemset size counted (K).
+    excluded_pairs:
+        Pairs of item ids never counted (an item with one of its catalogue ancestors, see
+        :func:`drop_excluded_pairs`); shared with the engine, which updates it. ``None``: none.
 
     Examples
     --------
@@ -172,11 +175,14 @@ class LossySummary:
     Manku, G. S. & Motwani, R. (2002). Approximate Frequency Counts over Data Streams. VLDB.
     """
 
-    __slots__ = ("_levels", "epsilon", "max_itemset_size", "n", "width")
+    __slots__ = ("_levels", "epsilon", "excluded_pairs", "max_itemset_size", "n", "width")
 
-    def __init__(self, epsilon: float, max_itemset_size: int) -> None:
+    def __init__(
+        self, epsilon: float, max_itemset_size: int, excluded_pairs: PairKeys | None = None
+    ) -> None:
         if max_itemset_size < 1:
             raise ValueError(f"max_itemset_size = {max_itemset_size!r}: must be >= 1")
+        self.excluded_pairs = excluded_pairs
         self.epsilon = float(epsilon)
         self.width = bucket_width(epsilon)
         self.max_itemset_size = int(max_itemset_size)
@@ -320,9 +326,14 @@ class LossySummary:
             in_old = np.zeros(batch_keys.shape[0], dtype=bool)
             in_old[pos[found]] = True
             new_sel = (batch_counts >= min_new) & ~in_old
-            keys = np.concatenate((old_keys[keep_old], batch_keys[new_sel]))
-            f = np.concatenate((f_old[keep_old], batch_counts[new_sel]))
-            d = np.concatenate((old_d[keep_old], np.full(int(new_sel.sum()), b0, dtype=np.int64)))
+            new_keys, new_counts = batch_keys[new_sel], batch_counts[new_sel]
+            if k == 2 and self.excluded_pairs is not None and len(self.excluded_pairs):
+                new_keys, new_counts = drop_excluded_pairs(
+                    new_keys, new_counts, survivors, m, self.excluded_pairs
+                )
+            keys = np.concatenate((old_keys[keep_old], new_keys))
+            f = np.concatenate((f_old[keep_old], new_counts))
+            d = np.concatenate((old_d[keep_old], np.full(new_keys.shape[0], b0, dtype=np.int64)))
             order = np.argsort(keys, kind="stable")
             keys = keys[order]
             rows_local = _unpack_local(keys, m, k)
@@ -351,8 +362,9 @@ class LossySummary:
         n: int,
         arrays: dict[str, np.ndarray],
         prefix: str,
+        excluded_pairs: PairKeys | None = None,
     ) -> LossySummary:
-        s = cls(epsilon, max_itemset_size)
+        s = cls(epsilon, max_itemset_size, excluded_pairs)
         s.n = int(n)
         for k in range(1, max_itemset_size + 1):
             s._levels[k - 1] = Level(
@@ -397,6 +409,35 @@ class LossySummary:
                     else:
                         ok = False
                     assert ok, f"L{k}: an itemset has an untracked subset (not downward closed)"
+
+
+def drop_excluded_pairs(
+    keys: np.ndarray, counts: np.ndarray, survivors: np.ndarray, m: int, excluded: PairKeys
+) -> tuple[np.ndarray, np.ndarray]:
+    """The level-2 entries about to be inserted, without the pairs in ``excluded``.
+
+    ``keys`` are pairs packed in the batch-local radix ``m`` (``a * m + b``, ``a < b`` local
+    ids) and ``survivors[a]`` is the item id of local id ``a``. Dropping a pair before it is
+    inserted keeps it untracked, so Apriori pruning keeps every larger itemset holding it out
+    too: with ``excluded`` the pairs of an item and one of its catalogue ancestors, no tracked
+    itemset holds an item together with its own ancestor (Srikant & Agrawal, VLDB 1995). Cost:
+    one sorted look-up per key, O(n log |excluded|).
+
+    >>> pairs = PairKeys()
+    >>> pairs.replace(np.array([10]), np.array([30]))  # item 10's ancestor is item 30
+    >>> survivors = np.array([10, 20, 30])  # local ids 0, 1, 2
+    >>> keys = np.array([0 * 3 + 1, 0 * 3 + 2, 1 * 3 + 2])  # (10, 20), (10, 30), (20, 30)
+    >>> kept, counts = drop_excluded_pairs(keys, np.array([4, 9, 2]), survivors, 3, pairs)
+    >>> kept.tolist(), counts.tolist()
+    ([1, 5], [4, 2])
+    """
+    if keys.shape[0] == 0 or not len(excluded):
+        return keys, counts
+    radix = max(m, 1)
+    a = survivors[keys // radix]
+    b = survivors[keys % radix]
+    keep = ~excluded.contains(a, b)
+    return keys[keep], counts[keep]
 
 
 # ---- private helpers ------------------------------------------------------------------------

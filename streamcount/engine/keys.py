@@ -16,9 +16,20 @@ from itertools import combinations
 
 import numpy as np
 
-__all__ = ["combination_table", "fits_int64", "lookup", "pack", "unique_with_sum", "unpack"]
+__all__ = [
+    "PairKeys",
+    "combination_table",
+    "fits_int64",
+    "lookup",
+    "pack",
+    "pair_keys",
+    "unique_with_sum",
+    "unpack",
+]
 
 _INT64_LIMIT = 2**63
+#: bits of one id in a pair key (ids are int32, so below 2**31)
+_PAIR_SHIFT = 31
 
 
 def fits_int64(radix: int, size: int) -> bool:
@@ -113,3 +124,47 @@ def combination_table(length: int, size: int) -> np.ndarray:
     table = table.reshape(-1, size)
     table.setflags(write=False)
     return table
+
+
+def pair_keys(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """One int64 key per unordered pair of int32 ids: ``min << 31 | max`` (ids are < 2**31).
+
+    >>> pair_keys(np.array([3, 1]), np.array([1, 3])).tolist() == [(1 << 31) | 3] * 2
+    True
+    """
+    lo = np.minimum(a, b).astype(np.int64)
+    hi = np.maximum(a, b).astype(np.int64)
+    keys: np.ndarray = (lo << _PAIR_SHIFT) | hi
+    return keys
+
+
+class PairKeys:
+    """A set of unordered item-id pairs as sorted int64 keys (:func:`pair_keys`), shared by
+    reference: its owner replaces :attr:`keys` when the set changes, and every reader sees
+    the new set from its next use.
+
+    It holds the pairs no summary may count: an item with one of its own ancestors in a
+    catalogue (Srikant & Agrawal 1995 drop such itemsets; their count equals the item's).
+
+    >>> pairs = PairKeys()
+    >>> pairs.replace(np.array([2, 5]), np.array([0, 2]))
+    >>> pairs.contains(np.array([0, 2, 5]), np.array([2, 5, 0])).tolist()
+    [True, True, False]
+    """
+
+    __slots__ = ("keys",)
+
+    def __init__(self) -> None:
+        self.keys: np.ndarray = np.zeros(0, dtype=np.int64)
+
+    def __len__(self) -> int:
+        return int(self.keys.shape[0])
+
+    def replace(self, a: np.ndarray, b: np.ndarray) -> None:
+        """Hold exactly the pairs ``(a[i], b[i])``."""
+        self.keys = np.unique(pair_keys(np.asarray(a), np.asarray(b)))
+
+    def contains(self, a: np.ndarray, b: np.ndarray) -> np.ndarray:
+        """Whether each pair ``(a[i], b[i])`` is in the set (bool array)."""
+        _, found = lookup(self.keys, pair_keys(np.asarray(a), np.asarray(b)))
+        return found
