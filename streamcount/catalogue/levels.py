@@ -17,8 +17,9 @@
     level stands for it).
 
 ``describe(name)``
-    The level of a counted item, its counted ancestors nearest first (the pairs no itemset
-    may hold together) and its display name.
+    The level of a counted item, its parent (nearest counted ancestor), its catalogue
+    ancestors when several levels are counted (the items no itemset may hold with it: an
+    itemset never holds an item with its own ancestor) and its display name.
 
 Filters see the names as read; renames and the catalogue see them after the filters. An
 ancestor counts whatever the filters say of its name (filters are about lines of an order).
@@ -36,8 +37,10 @@ Examples
 ((('sock-m', 'sock'), -1, True), (('sock-l', 'sock'), -1, True), (('mug',), -1, True))
 >>> cat.expand("fee:delivery"), cat.expand("gift-card")
 (((), 0, True), (('gift-card',), -1, False))
->>> cat.describe("sock-m"), cat.describe("sock")
-((0, ('sock',), None), (1, (), None))
+>>> cat.describe("sock-m")
+ItemFacts(level=0, parent='sock', ancestors=('sock', 'apparel'), display_name=None)
+>>> cat.describe("gift-card")
+ItemFacts(level=-1, parent=None, ancestors=(), display_name=None)
 """
 
 from __future__ import annotations
@@ -50,6 +53,7 @@ from dataclasses import dataclass
 from streamcount.catalogue.filters import ItemFilter
 from streamcount.catalogue.rename import RenameRules
 from streamcount.catalogue.table import CatalogueTable
+from streamcount.engine.taxonomy import ItemFacts
 from streamcount.errors import CatalogueError
 
 __all__ = ["ItemCatalogue"]
@@ -132,23 +136,36 @@ class ItemCatalogue:
         renamed = self.rename(name) if self.rename else name
         known = self.table is None or renamed in self.table.level
         base = self._at(renamed, self.counted[0])
-        _, ancestors, _ = self.describe(base)
-        return (base, *ancestors), -1, known
+        return (base, *self._counted_ancestors(base)), -1, known
 
-    def describe(self, name: str) -> tuple[int, tuple[str, ...], str | None]:
+    def describe(self, name: str) -> ItemFacts:
         table = self.table
         if table is None or name not in table.level:
-            return -1, (), None
+            return ItemFacts()
+        counted = self._counted_ancestors(name)
+        return ItemFacts(
+            table.level[name],
+            counted[0] if counted else None,
+            tuple(table.chain(name)[1:]) if len(self.counted) > 1 else (),
+            table.display.get(name),
+        )
+
+    # -- helpers -------------------------------------------------------------------------------
+
+    def _counted_ancestors(self, name: str) -> tuple[str, ...]:
+        """The items standing for ``name`` at the counted levels above its own, nearest
+        first (``name`` itself excluded)."""
+        table = self.table
+        if table is None or name not in table.level:
+            return ()
         own = table.level[name]
-        ancestors: list[str] = []
+        out: list[str] = []
         for c in self.counted:
             if c > own:
                 up = self._at(name, c)
-                if up != name and up not in ancestors:
-                    ancestors.append(up)
-        return own, tuple(ancestors), table.display.get(name)
-
-    # -- helpers -------------------------------------------------------------------------------
+                if up != name and up not in out:
+                    out.append(up)
+        return tuple(out)
 
     def _at(self, name: str, level: int) -> str:
         """The item standing for ``name`` at ``level``: its most general ancestor (itself
@@ -170,5 +187,5 @@ class ItemCatalogue:
 
     def level_of(self, name: str) -> str | None:
         """The level name of ``name`` (``None``: not in the catalogue)."""
-        level, _, _ = self.describe(name)
+        level = self.describe(name).level
         return None if level < 0 else self.level_names[level]

@@ -10,11 +10,12 @@ per item:
   (ignored by a filter), itself, its base-level ancestor (e.g. its product), or that plus its
   ancestors at the other counted levels (generalised itemsets, Srikant & Agrawal 1995: each
   transaction is extended with the ancestors of its items);
-* **ancestors** (CSR ``anc_ptr`` / ``anc_ids``): the counted ancestors of a counted item,
-  nearest first; their pairs with the item form :attr:`ItemTables.excluded`, the pairs no
-  summary counts (an itemset never holds an item with its own ancestor);
-* the level of each item, which filter removed it, whether the catalogue knows it, and its
-  display name.
+* **ancestors** (CSR ``anc_ptr`` / ``anc_ids``): with several levels counted, every catalogue
+  ancestor of an item, nearest first; their pairs with the item form
+  :attr:`ItemTables.excluded`, the pairs no summary counts (an itemset never holds an item
+  with its own ancestor);
+* the **parent** of each item (its nearest counted ancestor, for the R-interest measure), its
+  level, which filter removed it, whether the catalogue knows it, and its display name.
 
 A new catalogue version (:meth:`ItemTables.reset`) rebuilds the tables from the vocabulary; ids
 never change. :meth:`ItemTables.view` hands out a frozen :class:`ItemTaxonomy` for snapshots.
@@ -32,7 +33,31 @@ from numpy.typing import NDArray
 from streamcount.engine.keys import PairKeys
 from streamcount.engine.vocab import ItemVocabulary
 
-__all__ = ["ItemResolver", "ItemTables", "ItemTaxonomy"]
+__all__ = ["ItemFacts", "ItemResolver", "ItemTables", "ItemTaxonomy"]
+
+
+@dataclass(frozen=True, slots=True)
+class ItemFacts:
+    """What the catalogue says of one counted item.
+
+    Attributes
+    ----------
+    level:
+        Index of its level in the resolver's ``level_names``; -1: not in the catalogue.
+    parent:
+        Its nearest ancestor among the levels counted (``None``: none).
+    ancestors:
+        With several levels counted, every catalogue ancestor, nearest first: no counted
+        itemset holds the item with one of them. Empty with one level (items are counted as
+        mapped, and nothing is excluded).
+    display_name:
+        The name people read (``None``: none).
+    """
+
+    level: int = -1
+    parent: str | None = None
+    ancestors: tuple[str, ...] = ()
+    display_name: str | None = None
 
 
 class ItemResolver(Protocol):
@@ -67,10 +92,9 @@ class ItemResolver(Protocol):
         it (-1: none) and whether the catalogue knows it."""
         ...
 
-    def describe(self, name: str) -> tuple[int, tuple[str, ...], str | None]:
-        """``(level, ancestors, display name)`` of a counted item: the index of its level in
-        :attr:`level_names` (-1: not in the catalogue), its counted ancestors nearest first,
-        and its display name (``None``: none)."""
+    def describe(self, name: str) -> ItemFacts:
+        """What the catalogue says of a counted item (its level, parent, ancestors, display
+        name)."""
         ...
 
 
@@ -89,8 +113,11 @@ class ItemTaxonomy:
     level:
         Per item id, the index of its level in ``level_names``; -1 when the catalogue does
         not know it.
+    parent:
+        Per item id, its nearest counted ancestor; -1: none.
     ancestors:
-        ``(n, depth)`` counted ancestors of each item, nearest first, padded with -1.
+        ``(n, depth)`` catalogue ancestors of each item, nearest first, padded with -1 (empty
+        with one level counted).
     display_names:
         Display names by item id (only items that have one). Shared, append-only.
     """
@@ -98,6 +125,7 @@ class ItemTaxonomy:
     version: str
     level_names: tuple[str, ...]
     level: NDArray[np.int8]
+    parent: NDArray[np.int32]
     ancestors: NDArray[np.int32]
     display_names: Mapping[int, str] = field(default_factory=dict)
 
@@ -118,14 +146,12 @@ class ItemTaxonomy:
         """The nearest counted ancestor of each id (-1: none), vectorised."""
         ids = np.asarray(ids, dtype=np.int32)
         out = np.full(ids.shape, -1, dtype=np.int32)
-        if self.ancestors.shape[1] == 0:
-            return out
         inside = (ids >= 0) & (ids < len(self))
-        out[inside] = self.ancestors[ids[inside], 0]
+        out[inside] = self.parent[ids[inside]]
         return out
 
     def is_ancestor(self, a: NDArray[np.int32], b: NDArray[np.int32]) -> NDArray[np.bool_]:
-        """Elementwise: is ``a[i]`` a counted ancestor of ``b[i]``?"""
+        """Elementwise: is ``a[i]`` a catalogue ancestor of ``b[i]``?"""
         a = np.asarray(a, dtype=np.int32)
         b = np.asarray(b, dtype=np.int32)
         out = np.zeros(np.broadcast_shapes(a.shape, b.shape), dtype=bool)
@@ -216,6 +242,7 @@ class ItemTables:
         self.filter_of: NDArray[np.int16] = np.zeros(0, dtype=np.int16)
         self.known: NDArray[np.bool_] = np.zeros(0, dtype=bool)
         self.level: NDArray[np.int8] = np.zeros(0, dtype=np.int8)
+        self.parent: NDArray[np.int32] = np.zeros(0, dtype=np.int32)
         self.unknown_seen: NDArray[np.bool_] = np.zeros(0, dtype=bool)
         #: display names by id; append-only until the next reset (views share it)
         self.display_names: dict[int, str] = {}
@@ -243,28 +270,30 @@ class ItemTables:
             lo, hi = self.size, len(vocabulary)
             expansions: list[list[int]] = []
             ancestors: list[list[int]] = []
+            parents: list[int] = []
             filters: list[int] = []
             known: list[bool] = []
             levels: list[int] = []
+            intern = vocabulary.encode_flat
             for item_id in range(lo, hi):
                 name = names[item_id]
                 counted, flt, is_known = resolver.expand(name)
-                level, ancestor_names, display = resolver.describe(name)
-                expansions.append(vocabulary.encode_flat(counted, len(counted)).tolist())
-                ancestors.append(
-                    vocabulary.encode_flat(ancestor_names, len(ancestor_names)).tolist()
-                )
+                facts = resolver.describe(name)
+                expansions.append(intern(counted, len(counted)).tolist())
+                ancestors.append(intern(facts.ancestors, len(facts.ancestors)).tolist())
+                parents.append(-1 if facts.parent is None else int(intern([facts.parent])[0]))
                 filters.append(flt)
                 known.append(is_known)
-                levels.append(level)
-                if display is not None:
-                    self.display_names[item_id] = display
+                levels.append(facts.level)
+                if facts.display_name is not None:
+                    self.display_names[item_id] = facts.display_name
             grew_ancestors |= any(ancestors)
             self.exp_ptr, self.exp_ids = _append_csr(self.exp_ptr, self.exp_ids, expansions)
             self.anc_ptr, self.anc_ids = _append_csr(self.anc_ptr, self.anc_ids, ancestors)
             self.filter_of = np.concatenate((self.filter_of, np.array(filters, dtype=np.int16)))
             self.known = np.concatenate((self.known, np.array(known, dtype=bool)))
             self.level = np.concatenate((self.level, np.array(levels, dtype=np.int8)))
+            self.parent = np.concatenate((self.parent, np.array(parents, dtype=np.int32)))
             self.unknown_seen = np.concatenate((self.unknown_seen, np.zeros(hi - lo, dtype=bool)))
             self.size = hi
         if grew_ancestors:
@@ -318,6 +347,7 @@ class ItemTables:
                 self.resolver.version,
                 tuple(self.resolver.level_names),
                 self.level.copy(),
+                self.parent.copy(),
                 matrix,
                 self.display_names,
             )
@@ -330,6 +360,7 @@ class ItemTables:
         assert self.exp_ptr.shape == (n + 1,) and self.anc_ptr.shape == (n + 1,), "CSR ptr"
         assert int(self.exp_ptr[-1]) == self.exp_ids.shape[0], "expansion CSR length"
         assert int(self.anc_ptr[-1]) == self.anc_ids.shape[0], "ancestor CSR length"
-        for arr in (self.exp_ids, self.anc_ids):
+        for arr in (self.exp_ids, self.anc_ids, self.parent[self.parent >= 0]):
             assert arr.size == 0 or (int(arr.min()) >= 0 and int(arr.max()) < vocabulary_size)
         assert self.filter_of.shape == self.known.shape == self.level.shape == (n,), "columns"
+        assert self.parent.shape == (n,), "parents"

@@ -70,6 +70,7 @@ def interesting(
     ...     a = np.array(c, dtype=np.int64)
     ...     return LevelCounts(len(rows[0]), np.array(rows, dtype=np.int32), a, a)
     >>> tax = ItemTaxonomy("v", ("sku", "product"), np.array([0, 0, 1, 1], dtype=np.int8),
+    ...                    np.array([2, 2, -1, -1], dtype=np.int32),
     ...                    np.array([[2], [2], [-1], [-1]], dtype=np.int32))
     >>> snap = WindowSnapshot(1, 100, 100, 0, 0.0, None, 1,
     ...     (lv([[0], [1], [2], [3]], [30, 30, 60, 40]), lv([[0, 3], [1, 3], [2, 3]], [6, 14, 20])),
@@ -82,7 +83,7 @@ def interesting(
     n, k = rows.shape
     keep = np.ones(n, dtype=bool)
     taxonomy = snapshot.taxonomy
-    if taxonomy is None or n == 0 or taxonomy.ancestors.shape[1] == 0:
+    if taxonomy is None or n == 0 or not (taxonomy.parent >= 0).any():
         return keep
     upper = np.asarray(upper, dtype=np.float64)
     for j in range(k):
