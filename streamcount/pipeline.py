@@ -144,7 +144,7 @@ class Pipeline:
         return self.catalogue.status(self._pane_spans())
 
     def _pane_spans(self) -> list[tuple[int, int, int]]:
-        return [(p.index, p.first_seq, p.last_seq) for p in self.engine.window.panes.values()]
+        return [(p.index, *p.seq_range()) for p in self.engine.window.panes.values()]
 
     # -- intake -------------------------------------------------------------------------------
 

@@ -82,6 +82,17 @@ class Pane:
     def absent_bound(self) -> int:
         return self.summary.b_current
 
+    def seq_range(self) -> tuple[int, int]:
+        """``(first, last)`` sequence numbers of the pane's transactions, counted or still
+        buffered; ``(0, 0)`` when it holds none."""
+        lo, hi = self.first_seq, self.last_seq
+        if self.buffered:
+            b_lo = min(int(s.min()) for s in self._buf_seq if s.size)
+            b_hi = max(int(s.max()) for s in self._buf_seq if s.size)
+            lo = b_lo if lo == 0 else min(lo, b_lo)
+            hi = max(hi, b_hi)
+        return lo, hi
+
     @property
     def nbytes(self) -> int:
         parts = self._buf_flat + self._buf_len + self._buf_seq + self._buf_ts
