@@ -322,3 +322,35 @@ def test_restart_with_a_newer_catalogue_records_it(
     )
     with pytest.raises(CheckpointError, match=r"items\.levels"):
         Pipeline(other, alerts=False).load_state(meta, arrays)
+
+
+def test_a_pair_excluded_by_a_reload_leaves_the_open_pane_only(tmp_path: Path) -> None:
+    """Pane 0 (orders 1-10) closes under the first file; pane 1 counts orders 11-15 under it,
+    then the file puts b under p, so (b, p) holds an item with its ancestor: pane 1 drops it
+    (and the triple holding it) at its next batch, pane 0 keeps what it counted."""
+    path = write(tmp_path / "catalogue.csv", "sku,product\na,p\nb,q\n")
+    cfg = config_from_mapping(
+        {
+            "items": {"catalogue": str(path), "levels": ["sku", "product"]},
+            "engine": {
+                "epsilon": 0.0,
+                "max_itemset_size": 3,
+                "window_size": 100,
+                "pane_size": 10,
+                "batch_size": 5,
+            },
+        }
+    )
+    pipeline = Pipeline(cfg, alerts=False)
+    pipeline.add(Decoded([["a", "b", "x"]] * 15))
+    write(path, "sku,product\na,p\nb,p\n")
+    pipeline.catalogue.requested = True  # type: ignore[union-attr]
+    assert pipeline.poll_catalogue().changed  # type: ignore[union-attr]
+    pipeline.add(Decoded([["a", "b", "x"]] * 5))
+    pipeline.engine.check_invariants()
+    got = counts(pipeline)
+    # by hand: pane 0 counted (b, p) and (b, p, x) 10 times; pane 1 dropped them
+    assert got[("b", "p")] == 10 and got[("b", "p", "x")] == 10
+    # (a, q) and (q,) were counted by orders 1-15; p by all 20
+    assert got[("a", "q")] == 15 and got[("q",)] == 15 and got[("p",)] == 20
+    assert got[("a", "b")] == 20 and got[("p", "x")] == 20

@@ -306,11 +306,20 @@ class LossySummary:
                 cur_txn = cur_txn[sel]
             membership = _Membership(prev_keys, m, k - 1)
             batch_keys, batch_counts = _count_combinations(cur_items, cur_txn, t, k, m, membership)
+            excluding = k == 2 and self.excluded_pairs is not None and len(self.excluded_pairs) > 0
+            if excluding:
+                assert self.excluded_pairs is not None
+                batch_keys, batch_counts = drop_excluded_pairs(
+                    batch_keys, batch_counts, survivors, m, self.excluded_pairs
+                )
 
             # tracked entries: to local ids; drop those with a pruned item or subset
             if len(old):
                 loc_rows = local[old.items] if old.items.size else old.items.astype(np.int64)
                 ok = np.asarray((loc_rows >= 0).all(axis=1))
+                if excluding:  # pairs excluded since they were counted (a catalogue reload)
+                    assert self.excluded_pairs is not None
+                    ok &= ~self.excluded_pairs.contains(old.items[:, 0], old.items[:, 1])
                 loc_rows = np.where(ok[:, None], loc_rows, 0)
                 ok &= membership.all_subsets_present(loc_rows)
                 old_keys = _pack_local(loc_rows[ok], m)
@@ -326,14 +335,9 @@ class LossySummary:
             in_old = np.zeros(batch_keys.shape[0], dtype=bool)
             in_old[pos[found]] = True
             new_sel = (batch_counts >= min_new) & ~in_old
-            new_keys, new_counts = batch_keys[new_sel], batch_counts[new_sel]
-            if k == 2 and self.excluded_pairs is not None and len(self.excluded_pairs):
-                new_keys, new_counts = drop_excluded_pairs(
-                    new_keys, new_counts, survivors, m, self.excluded_pairs
-                )
-            keys = np.concatenate((old_keys[keep_old], new_keys))
-            f = np.concatenate((f_old[keep_old], new_counts))
-            d = np.concatenate((old_d[keep_old], np.full(new_keys.shape[0], b0, dtype=np.int64)))
+            keys = np.concatenate((old_keys[keep_old], batch_keys[new_sel]))
+            f = np.concatenate((f_old[keep_old], batch_counts[new_sel]))
+            d = np.concatenate((old_d[keep_old], np.full(int(new_sel.sum()), b0, dtype=np.int64)))
             order = np.argsort(keys, kind="stable")
             keys = keys[order]
             rows_local = _unpack_local(keys, m, k)
@@ -414,14 +418,16 @@ class LossySummary:
 def drop_excluded_pairs(
     keys: np.ndarray, counts: np.ndarray, survivors: np.ndarray, m: int, excluded: PairKeys
 ) -> tuple[np.ndarray, np.ndarray]:
-    """The level-2 entries about to be inserted, without the pairs in ``excluded``.
+    """A batch's level-2 counts without the pairs in ``excluded``.
 
-    ``keys`` are pairs packed in the batch-local radix ``m`` (``a * m + b``, ``a < b`` local
-    ids) and ``survivors[a]`` is the item id of local id ``a``. Dropping a pair before it is
-    inserted keeps it untracked, so Apriori pruning keeps every larger itemset holding it out
-    too: with ``excluded`` the pairs of an item and one of its catalogue ancestors, no tracked
-    itemset holds an item together with its own ancestor (Srikant & Agrawal, VLDB 1995). Cost:
-    one sorted look-up per key, O(n log |excluded|).
+    Applied to the batch's pair counts before they update tracked entries or insert new ones
+    (tracked pairs that became excluded since they were counted, after a catalogue reload, are
+    deleted in the same batch). ``keys`` are pairs packed in the batch-local radix ``m``
+    (``a * m + b``, ``a < b`` local ids) and ``survivors[a]`` is the item id of local id ``a``.
+    A pair dropped here stays untracked, so Apriori pruning keeps every larger itemset holding
+    it out too: with ``excluded`` the pairs of an item and one of its catalogue ancestors, no
+    tracked itemset holds an item together with its own ancestor (Srikant & Agrawal, VLDB
+    1995). Cost: one sorted look-up per key, O(n log |excluded|).
 
     >>> pairs = PairKeys()
     >>> pairs.replace(np.array([10]), np.array([30]))  # item 10's ancestor is item 30

@@ -189,6 +189,11 @@ class Service:
         """Stop after the current turn (signal handlers call this)."""
         self._stop.set()
 
+    def request_catalogue_reload(self, *_: object) -> None:
+        """Reload the catalogue at the start of the next turn (the SIGHUP handler)."""
+        if self.pipeline.catalogue is not None:
+            self.pipeline.catalogue.requested = True
+
     def start_server(self) -> tuple[str, int] | None:
         """Start the HTTP listener (``server.listen``); returns the bound address."""
         listen = self.config.server.listen
@@ -238,6 +243,8 @@ class Service:
         if install_signals and threading.current_thread() is threading.main_thread():
             signal.signal(signal.SIGTERM, self.request_stop)
             signal.signal(signal.SIGINT, self.request_stop)
+            if self.pipeline.catalogue is not None:
+                signal.signal(signal.SIGHUP, self.request_catalogue_reload)
         if self.server is None:
             self.start_server()
         logger.info("streamcount %s started: %s", __version__, describe(self.config))
@@ -265,6 +272,10 @@ class Service:
         """
         started = time.perf_counter()
         self.api.beat()
+        reload = self.pipeline.poll_catalogue()  # SIGHUP or a changed file; next transaction on
+        if reload is not None:
+            self.metrics.observe_catalogue_reload(reload.error is None)
+            self._unpublished = True
         accepted, rejected, seen = 0, Counter[str](), 0
         wait = timeout if len(self.inputs) == 1 else 0.0
         for item in self.inputs:
@@ -411,6 +422,7 @@ class Service:
             "overlay": fresh,
             "sources": [i.source.name for i in self.inputs],
             "alerts_budget": None if budget is None else budget.as_dict(),
+            "catalogue": self.pipeline.catalogue_status(),
         }
         alerts = tuple(self.pipeline.alert_history)
         return View(window, stats, rules, alerts, status, rules_window, key)
