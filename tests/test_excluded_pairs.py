@@ -18,7 +18,7 @@ from hypothesis import strategies as st
 from oracle import exact_counts
 
 from streamcount.engine.counters import LossySummary, drop_excluded_pairs
-from streamcount.engine.keys import PairKeys
+from streamcount.engine.keys import PairSet
 
 ITEMS = 8
 
@@ -31,8 +31,8 @@ baskets_strategy = st.lists(
 )
 
 
-def excluded_set(pairs: list[tuple[int, int]]) -> PairKeys:
-    out = PairKeys()
+def excluded_set(pairs: list[tuple[int, int]]) -> PairSet:
+    out = PairSet()
     out.replace(np.array([a for a, _ in pairs]), np.array([b for _, b in pairs]))
     return out
 

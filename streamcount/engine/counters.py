@@ -43,7 +43,7 @@ from typing import Protocol
 
 import numpy as np
 
-from streamcount.engine.keys import PairKeys, combination_table, fits_int64, lookup, pack, unpack
+from streamcount.engine.keys import PairSet, combination_table, fits_int64, lookup, pack, unpack
 
 __all__ = ["Level", "LossySummary", "Summary", "bucket_width", "drop_excluded_pairs"]
 
@@ -178,7 +178,7 @@ class LossySummary:
     __slots__ = ("_levels", "epsilon", "excluded_pairs", "max_itemset_size", "n", "width")
 
     def __init__(
-        self, epsilon: float, max_itemset_size: int, excluded_pairs: PairKeys | None = None
+        self, epsilon: float, max_itemset_size: int, excluded_pairs: PairSet | None = None
     ) -> None:
         if max_itemset_size < 1:
             raise ValueError(f"max_itemset_size = {max_itemset_size!r}: must be >= 1")
@@ -366,7 +366,7 @@ class LossySummary:
         n: int,
         arrays: dict[str, np.ndarray],
         prefix: str,
-        excluded_pairs: PairKeys | None = None,
+        excluded_pairs: PairSet | None = None,
     ) -> LossySummary:
         s = cls(epsilon, max_itemset_size, excluded_pairs)
         s.n = int(n)
@@ -416,7 +416,7 @@ class LossySummary:
 
 
 def drop_excluded_pairs(
-    keys: np.ndarray, counts: np.ndarray, survivors: np.ndarray, m: int, excluded: PairKeys
+    keys: np.ndarray, counts: np.ndarray, survivors: np.ndarray, m: int, excluded: PairSet
 ) -> tuple[np.ndarray, np.ndarray]:
     """A batch's level-2 counts without the pairs in ``excluded``.
 
@@ -429,7 +429,7 @@ def drop_excluded_pairs(
     tracked itemset holds an item together with its own ancestor (Srikant & Agrawal, VLDB
     1995). Cost: one sorted look-up per key, O(n log |excluded|).
 
-    >>> pairs = PairKeys()
+    >>> pairs = PairSet()
     >>> pairs.replace(np.array([10]), np.array([30]))  # item 10's ancestor is item 30
     >>> survivors = np.array([10, 20, 30])  # local ids 0, 1, 2
     >>> keys = np.array([0 * 3 + 1, 0 * 3 + 2, 1 * 3 + 2])  # (10, 20), (10, 30), (20, 30)

@@ -15,7 +15,7 @@ from typing import Any
 import numpy as np
 
 from streamcount.engine.counters import LossySummary, Summary
-from streamcount.engine.keys import PairKeys
+from streamcount.engine.keys import PairSet
 
 __all__ = ["Pane"]
 
@@ -56,7 +56,7 @@ class Pane:
         index: int,
         epsilon: float,
         max_itemset_size: int,
-        excluded_pairs: PairKeys | None = None,
+        excluded_pairs: PairSet | None = None,
     ) -> None:
         self.index = int(index)
         #: item pairs never counted (an item with its own catalogue ancestor), or ``None``
@@ -197,7 +197,7 @@ class Pane:
         prefix: str,
         epsilon: float,
         max_itemset_size: int,
-        excluded_pairs: PairKeys | None = None,
+        excluded_pairs: PairSet | None = None,
     ) -> Pane:
         pane = cls(int(meta["index"]), epsilon, max_itemset_size, excluded_pairs)
         pane.summary = LossySummary.from_arrays(

@@ -30,7 +30,7 @@ from typing import Protocol
 import numpy as np
 from numpy.typing import NDArray
 
-from streamcount.engine.keys import PairKeys
+from streamcount.engine.keys import PairSet
 from streamcount.engine.vocab import ItemVocabulary
 
 __all__ = ["ItemFacts", "ItemResolver", "ItemTables", "ItemTaxonomy"]
@@ -217,7 +217,7 @@ class ItemTables:
     """
 
     def __init__(self, resolver: ItemResolver) -> None:
-        self.excluded = PairKeys()
+        self.excluded = PairSet()
         self.unknown = 0
         self._ignored_before: dict[str, int] = {}
         self.resolver = resolver

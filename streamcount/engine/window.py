@@ -25,7 +25,7 @@ from typing import Any
 import numpy as np
 from sortedcontainers import SortedDict
 
-from streamcount.engine.keys import PairKeys
+from streamcount.engine.keys import PairSet
 from streamcount.engine.pane import Pane
 from streamcount.engine.panesum import PaneSum, merge_sums, subtract_panes, sum_panes
 from streamcount.engine.snapshot import WindowSnapshot
@@ -75,7 +75,7 @@ class SlidingWindow:
         epsilon: float,
         max_itemset_size: int,
         pane_size: int | None,
-        excluded_pairs: PairKeys | None = None,
+        excluded_pairs: PairSet | None = None,
     ) -> None:
         self.excluded_pairs = excluded_pairs
         self.window_panes = int(window_panes)
