@@ -354,3 +354,36 @@ def test_a_pair_excluded_by_a_reload_leaves_the_open_pane_only(tmp_path: Path) -
     # (a, q) and (q,) were counted by orders 1-15; p by all 20
     assert got[("a", "q")] == 15 and got[("q",)] == 15 and got[("p",)] == 20
     assert got[("a", "b")] == 20 and got[("p", "x")] == 20
+
+
+# ---- what readers show -----------------------------------------------------------------------
+
+
+def test_item_details_and_generalisation_from_a_snapshot(tmp_path: Path) -> None:
+    from streamcount.catalogue.view import ItemDetails
+
+    write(tmp_path / "catalogue.csv", GOOD)
+    cfg = config_from_mapping(
+        {
+            "items": {"catalogue": str(tmp_path / "catalogue.csv"), "levels": list(COLUMNS)},
+            "engine": {"epsilon": 0.0, "max_itemset_size": 2, "window_size": 10, "pane_size": 10},
+        }
+    )
+    pipeline = Pipeline(cfg, alerts=False)
+    pipeline.add(Decoded([["throw-ochre", "throw-sage", "tea-green", "gift-card"]]))
+    details = ItemDetails(pipeline.engine.fresh_snapshot())
+    assert details(["throw-ochre", "wool-throw", "linens", "gift-card"]) == [
+        {"item": "throw-ochre", "level": "sku", "display_name": "Wool throw, ochre"},
+        {"item": "wool-throw", "level": "product", "display_name": "Wool throw"},
+        {"item": "linens", "level": "category", "display_name": None},
+        {"item": "gift-card", "level": None, "display_name": None},
+    ]
+    # the product-level itemset generalises its SKU-level echoes, not the reverse
+    assert details.generalises(["tea", "wool-throw"], ["tea-green", "throw-ochre"])
+    assert details.generalises(["tea-and-coffee", "linens"], ["tea-green", "throw-sage"])
+    assert not details.generalises(["tea-green", "throw-ochre"], ["tea", "wool-throw"])
+    assert not details.generalises(["tea", "wool-throw"], ["tea", "wool-throw"])
+    assert not details.generalises(["tea", "linens"], ["tea-green", "gift-card"])
+    # one ancestor stands for one item only: {wool-throw, linens} is no generalisation of
+    # {throw-ochre, tea-green} (linens is not an ancestor of tea-green)
+    assert not details.generalises(["wool-throw", "linens"], ["throw-ochre", "tea-green"])

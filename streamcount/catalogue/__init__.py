@@ -7,7 +7,8 @@
   (``items.levels``), the engine's :class:`~streamcount.engine.taxonomy.ItemResolver`;
 * :mod:`.state` keeps the version in force, reloads it (SIGHUP, file change) and remembers
   which transactions were counted under which version;
-* :mod:`.text` checks untrusted catalogue text (display names).
+* :mod:`.text` checks untrusted catalogue text (display names);
+* :mod:`.view` gives readers (API, alerts, the page) each item's level and display name.
 """
 
 from __future__ import annotations
