@@ -94,11 +94,14 @@ class Pipeline:
         #: the catalogue in force (filters, renames, levels), or ``None`` when not configured;
         #: a bad catalogue file raises CatalogueError here (file, line, column)
         self.catalogue = (
-            CatalogueState(config.items) if catalogue_configured(config.items) else None
+            CatalogueState(config.items, nfc=config.input.normalize == "nfc")
+            if catalogue_configured(config.items)
+            else None
         )
         self.engine = Engine(
             config.engine, on_pane_closed=self._on_pane_closed, items=self._items()
         )
+        self.engine.on_remap = self._on_remap
         self.monitor = (
             RuleMonitor(
                 config.rules,
@@ -242,6 +245,10 @@ class Pipeline:
         for close_listener in self._close_listeners:
             close_listener(self.closes, window, records)
 
+    def _on_remap(self, mapping: np.ndarray) -> None:
+        if self.monitor is not None:
+            self.monitor.remap(mapping)
+
     # -- views --------------------------------------------------------------------------------
 
     @property
@@ -286,6 +293,7 @@ class Pipeline:
             on_pane_closed=self._on_pane_closed,
             items=self._items(),
         )
+        self.engine.on_remap = self._on_remap
         if self.catalogue is not None:
             self.catalogue.load_state(
                 meta.get("catalogue"), self.engine.next_seq, self._pane_spans()

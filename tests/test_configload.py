@@ -333,7 +333,10 @@ def test_fingerprint_follows_counting_settings_only() -> None:
     assert fingerprint(base) == fingerprint(Config())
     assert len(fingerprint(base)) == 64
     assert set(fingerprint_settings(base)) == set(FINGERPRINT_KEYS)
-    same = apply_overrides(base, {"rules.min_support": 0.2, "server.listen": "0.0.0.0:1"})
+    same = apply_overrides(
+        base,
+        {"rules.min_support": 0.2, "server.listen": "0.0.0.0:1", "server.behind_proxy": True},
+    )
     assert fingerprint(same) == fingerprint(base)
     for key, value in [
         ("engine.epsilon", 0.002),

@@ -92,7 +92,9 @@ def test_a_quiet_csv_feed_closes_its_last_orders_after_the_idle_time(
     feed = tmp_path / "lines.csv"
     feed.write_bytes(b"order_id,item,ts\n")
     now = time.time()
-    orders = [(f"o{i}", ["oat-loaf", "plum-jam"] if i % 2 else ["scone"], now + i) for i in range(9)]
+    orders = [
+        (f"o{i}", ["oat-loaf", "plum-jam"] if i % 2 else ["scone"], now + i) for i in range(9)
+    ]
     service = services.start(
         {
             "input": {

@@ -294,3 +294,51 @@ def test_snapshot_taxonomy_names_levels_and_ancestors(tmp_path: Path) -> None:
     parents = tax.parents(np.array([ids["throw-ochre"], ids["wool-throw"], ids["linens"]]))
     assert parents.tolist() == [ids["wool-throw"], ids["linens"], -1]
     assert engine.statistics().items_unknown == 1
+
+
+# ---- with the release of unused names ---------------------------------------------------------
+
+
+def test_released_names_leave_the_catalogue_mapping_intact(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Seasonal SKUs come and go (each seen once): the engine releases the names no pane uses,
+    renumbering the ids; the catalogue's tables follow, ancestors are never released, and the
+    counts still equal the definition over the window."""
+    import streamcount.engine.engine as engine_module
+
+    rows = [(f"s{i}", f"p{i % 7}", f"c{i % 3}") for i in range(7)]
+    rows += [(f"season-{t}", f"p{t % 7}", f"c{t % 7 % 3}") for t in range(0, 6000, 3)]
+    taxonomy = Taxonomy(rows)
+    rng = np.random.default_rng(5)
+    baskets = []
+    for t in range(6000):
+        basket = [f"s{i}" for i in rng.choice(7, size=int(rng.integers(1, 4)), replace=False)]
+        if t % 3 == 0:
+            basket.append(f"season-{t}")
+        baskets.append(basket)
+    monkeypatch.setattr(engine_module, "COMPACT_MIN_RELEASED", 50)
+    engine = build_engine(
+        taxonomy,
+        tmp_path,
+        COLUMNS,
+        epsilon=0.0,
+        max_itemset_size=2,
+        window_size=600,
+        pane_size=200,
+        batch_size=100,
+    )
+    largest = 0
+    for i in range(0, len(baskets), 250):
+        engine.add(baskets[i : i + 250])
+        engine.check_invariants()
+        largest = max(largest, len(engine.vocabulary))
+    snap = engine.snapshot()
+    window = baskets[snap.first_seq - 1 : snap.last_seq]
+    assert tracked_counts(engine) == dict(oracle_counts(taxonomy, window, COLUMNS, 2))
+    # names were released (2,000 seasonal SKUs went through), the ancestors stayed
+    # 2,017 names went through; the window (600 orders) holds about 200 seasonal ones
+    assert len(engine.vocabulary) < 500 and largest < 1000
+    names = set(engine.vocabulary.names)
+    assert {f"p{i}" for i in range(7)} | {"c0", "c1", "c2"} <= names
+    assert engine.snapshot().taxonomy.level_of(engine.vocabulary.get("p3")) == "product"

@@ -279,7 +279,5 @@ def test_no_committed_file_holds_merge_conflict_markers() -> None:
         text = _text(REPO_DIR / rel)
         if text is None:
             continue
-        found += [
-            f"{rel}:{text.count(chr(10), 0, m.start()) + 1}" for m in _MARKER.finditer(text)
-        ]
+        found += [f"{rel}:{text.count(chr(10), 0, m.start()) + 1}" for m in _MARKER.finditer(text)]
     assert not found, "merge conflict markers left in:\n" + "\n".join(found)

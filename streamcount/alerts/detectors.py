@@ -32,7 +32,7 @@ Adding a kind is one detector here and one entry in the alert schema.
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from typing import Any, Protocol
 
@@ -228,28 +228,52 @@ def _by_size(pairs: list[tuple[int, int]]) -> Keys:
     return {k: np.unique(np.array(v, dtype=np.int64)) for k, v in out.items()}
 
 
-# ---------------------------------------------------------------------------------------------
-# emerged
-
-
-class EmergedDetector:
-    """Rules that now hold and whose co-purchase rate has risen."""
-
-    kind = "emerged"
+class _RuleDetector:
+    """What the rule detectors share: the family tolerance, and no state of their own (the
+    rule list and the change tests hold it)."""
 
     def __init__(self, config: AlertsConfig) -> None:
         self.tolerance = float(config.family_lift_tolerance)
 
-    def eligible(self, close: PaneClose) -> Keys:
+    def _eligible(self, close: PaneClose, rules: Iterable[Rule]) -> Keys:
+        """Packed keys of the itemsets of ``rules`` that the change tests follow."""
         index = {name: i for i, name in enumerate(close.window.item_names)}
         pairs = []
-        for rule in close.entry:
-            if any(s.announced for s in close.listing.over(rule.items)):
-                continue
+        for rule in rules:
             key = close.key_of(rule.items, index)
             if key is not None and len(rule.items) in close.tracker.banks:
                 pairs.append((len(rule.items), key))
         return _by_size(pairs)
+
+    def keep(self, tracker: ChangeTracker) -> Keys:
+        return {}
+
+    def state_dict(self) -> dict[str, Any]:
+        return {}
+
+    def load_state(self, state: Mapping[str, Any]) -> None:
+        return None
+
+    def check_invariants(self) -> None:
+        return None
+
+
+# ---------------------------------------------------------------------------------------------
+# emerged
+
+
+class EmergedDetector(_RuleDetector):
+    """Rules that now hold and whose co-purchase rate has risen."""
+
+    kind = "emerged"
+
+    def eligible(self, close: PaneClose) -> Keys:
+        fresh = [
+            rule
+            for rule in close.entry
+            if not any(s.announced for s in close.listing.over(rule.items))
+        ]
+        return self._eligible(close, fresh)
 
     def fire(
         self, close: PaneClose, keys: Keys, alarms: Mapping[int, CusumAlarms], budget: Budget
@@ -283,41 +307,19 @@ class EmergedDetector:
                 close.tracker.rebase(size, np.array([key]), "up")
         return out
 
-    def keep(self, tracker: ChangeTracker) -> Keys:
-        return {}
-
-    def state_dict(self) -> dict[str, Any]:
-        return {}
-
-    def load_state(self, state: Mapping[str, Any]) -> None:
-        return None
-
-    def check_invariants(self) -> None:
-        return None
-
 
 # ---------------------------------------------------------------------------------------------
 # faded
 
 
-class FadedDetector:
+class FadedDetector(_RuleDetector):
     """Active rules whose co-purchase rate has fallen."""
 
     kind = "faded"
 
-    def __init__(self, config: AlertsConfig) -> None:
-        self.tolerance = float(config.family_lift_tolerance)
-
     def eligible(self, close: PaneClose) -> Keys:
-        index = {name: i for i, name in enumerate(close.window.item_names)}
-        pairs = []
-        for state in close.listing.rules.values():
-            if not state.active:
-                continue
-            key = close.key_of(state.rule.items, index)
-            if key is not None and len(state.rule.items) in close.tracker.banks:
-                pairs.append((len(state.rule.items), key))
-        return _by_size(pairs)
+        active = [s.rule for s in close.listing.rules.values() if s.active]
+        return self._eligible(close, active)
 
     def fire(
         self, close: PaneClose, keys: Keys, alarms: Mapping[int, CusumAlarms], budget: Budget
@@ -347,18 +349,6 @@ class FadedDetector:
             else:
                 close.tracker.rebase(size, np.array([key]), "down")
         return out
-
-    def keep(self, tracker: ChangeTracker) -> Keys:
-        return {}
-
-    def state_dict(self) -> dict[str, Any]:
-        return {}
-
-    def load_state(self, state: Mapping[str, Any]) -> None:
-        return None
-
-    def check_invariants(self) -> None:
-        return None
 
 
 # ---------------------------------------------------------------------------------------------
@@ -490,6 +480,15 @@ class SurgedDetector:
 
     def keep(self, tracker: ChangeTracker) -> Keys:
         return self._latched_keys(tracker)
+
+    def remap(self, mapping: np.ndarray) -> None:
+        """Renumber the latched itemsets' ids (the vocabulary was compacted)."""
+        latched = {}
+        for ids, latch in self.latched.items():
+            new = tuple(int(mapping[i]) for i in ids)
+            if min(new) >= 0:
+                latched[new] = latch
+        self.latched = latched
 
     def state_dict(self) -> dict[str, Any]:
         return {

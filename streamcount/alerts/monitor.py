@@ -284,6 +284,11 @@ class RuleMonitor:
             logger.debug("pane close at seq %d: %d alerts", out[0].seq, len(out))
         return out
 
+    def remap(self, mapping: np.ndarray) -> None:
+        """The engine compacted its vocabulary: renumber every id the monitor holds."""
+        self.tracker.remap(mapping)
+        self.surged.remap(mapping)
+
     # ------------------------------------------------------------------ checkpoints
     def state(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
         """JSON-able state plus the change tests' arrays."""

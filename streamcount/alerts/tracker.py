@@ -117,6 +117,28 @@ class ChangeTracker:
             bank.remap(remap)
         self.radix = radix
 
+    def remap(self, mapping: np.ndarray) -> None:
+        """The vocabulary was compacted: renumber every key through the old-to-new id map
+        (increasing); itemsets holding a released id stop being followed."""
+        table = np.asarray(mapping, dtype=np.int64)
+        radix = max(int((table >= 0).sum()), 1)
+        old = self.radix
+        for k, bank in self.banks.items():
+            if not len(bank):
+                continue
+
+            def renumber(keys: np.ndarray, k: int = k) -> tuple[np.ndarray, np.ndarray]:
+                rows = table[unpack(keys, old, k)]
+                keep = (rows >= 0).all(axis=1)
+                rows[~keep] = 0
+                return pack(rows.astype(np.int32), radix), keep
+
+            if fits_int64(radix, k):
+                bank.remap(renumber)
+            else:
+                bank.drop(bank.keys.copy())
+        self.radix = radix
+
     def sync(
         self,
         window: WindowSnapshot,

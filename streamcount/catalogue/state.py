@@ -113,6 +113,9 @@ class CatalogueState:
     ----------
     config:
         The ``items`` settings.
+    nfc:
+        Put catalogue names in Unicode normal form C, as the decoders do with the feed's
+        names (``input.normalize: nfc``).
     clock:
         Wall time for the history's timestamps.
 
@@ -122,8 +125,11 @@ class CatalogueState:
         At start-up, when the file cannot be read or breaks a rule (file, line and column).
     """
 
-    def __init__(self, config: ItemsConfig, *, clock: Callable[[], float] = time.time) -> None:
+    def __init__(
+        self, config: ItemsConfig, *, nfc: bool = True, clock: Callable[[], float] = time.time
+    ) -> None:
         self.config = config
+        self.nfc = nfc
         self.clock = clock
         self.filters = ItemFilter.from_config(config.ignore, config.allow)
         self.rename = RenameRules.parse(config.rename)
@@ -142,7 +148,9 @@ class CatalogueState:
     def _read(self) -> CatalogueTable | None:
         if not self.path:
             return None
-        return load_catalogue(self.path, self.config.level_columns, self.config.display_name_suffix)
+        return load_catalogue(
+            self.path, self.config.level_columns, self.config.display_name_suffix, nfc=self.nfc
+        )
 
     def _build(self, table: CatalogueTable | None) -> ItemCatalogue:
         cfg = self.config
@@ -153,6 +161,7 @@ class CatalogueState:
             "levels": list(cfg.levels),
             "level_columns": list(cfg.level_columns),
             "display_name_suffix": cfg.display_name_suffix,
+            "nfc": self.nfc,
         }
         return ItemCatalogue.build(table, cfg.levels, self.filters, self.rename, settings=settings)
 

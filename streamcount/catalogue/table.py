@@ -18,7 +18,8 @@ Layout (header names set by ``items.level_columns`` and ``items.display_name_suf
   a SKU on one row and a product on another); every item has one parent (a product is in one
   category); a SKU is listed once (or again with the same ancestors); names and display names
   hold no control characters (:mod:`streamcount.catalogue.text`); one display name per item.
-* Cells are read as UTF-8 (a byte-order mark is allowed) and stripped of surrounding spaces.
+* Cells are read as UTF-8 (a byte-order mark is allowed), stripped of surrounding spaces and,
+  with ``nfc`` (``input.normalize: nfc``, as the feed's names), put in Unicode normal form C.
 
 The file's SHA-256 is its version.
 
@@ -41,7 +42,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from streamcount.catalogue.text import text_problem
+from streamcount.catalogue.text import normalize_name, text_problem
 from streamcount.errors import CatalogueError
 
 __all__ = ["CatalogueTable", "load_catalogue", "parse_catalogue"]
@@ -86,7 +87,7 @@ class CatalogueTable:
 
 
 def load_catalogue(
-    path: str | Path, level_columns: Sequence[str], display_name_suffix: str
+    path: str | Path, level_columns: Sequence[str], display_name_suffix: str, *, nfc: bool = True
 ) -> CatalogueTable:
     """Read and check a catalogue file.
 
@@ -104,7 +105,7 @@ def load_catalogue(
         raise CatalogueError(text_path, "is a directory, not a CSV file") from None
     except OSError as exc:
         raise CatalogueError(text_path, f"cannot be read ({exc.strerror})") from None
-    return parse_catalogue(data, text_path, level_columns, display_name_suffix)
+    return parse_catalogue(data, text_path, level_columns, display_name_suffix, nfc=nfc)
 
 
 def _decode(data: bytes, path: str) -> str:
@@ -221,7 +222,12 @@ class _Builder:
 
 
 def parse_catalogue(
-    data: bytes, path: str, level_columns: Sequence[str], display_name_suffix: str
+    data: bytes,
+    path: str,
+    level_columns: Sequence[str],
+    display_name_suffix: str,
+    *,
+    nfc: bool = True,
 ) -> CatalogueTable:
     """Parse and check the bytes of a catalogue file (see the module docstring).
 
@@ -281,7 +287,7 @@ def parse_catalogue(
             )
         cells: list[tuple[int, int, str]] = []
         for lvl, f in enumerate(level_fields):
-            name = row[f].strip()
+            name = normalize_name(row[f].strip(), nfc)
             if not name:
                 continue
             problem = text_problem(name)
@@ -297,7 +303,7 @@ def parse_catalogue(
             )
         displays: dict[int, tuple[int, str]] = {}
         for lvl, f in display_fields.items():
-            shown = row[f].strip()
+            shown = normalize_name(row[f].strip(), nfc)
             problem = text_problem(shown)
             if problem is not None:
                 raise CatalogueError(path, f"display name {problem}", line=line, column=f + 1)

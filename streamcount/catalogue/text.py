@@ -6,22 +6,19 @@ or paragraph separators, and no bidirectional marks, embeddings, overrides or is
 (Unicode UAX #9), which can make one name look like another where it is shown. Escaping is the
 output's business (JSON encoding, HTML escaping on the page), as for item names.
 
-The character set is the one the feed decoders refuse under the reason ``control_chars``; once
-those decoders share theirs (``CONTROL_CHARS`` in ``intake/formats/text.py``), this module
-should import it instead of keeping its own copy.
+The character set is the one the feed decoders refuse under the reason ``control_chars``
+(:data:`streamcount.intake.formats.text.CONTROL_CHARS`, shared), and names are put in the
+Unicode normal form the decoders use (``input.normalize``), so a catalogue name matches the
+same name read from the feed.
 """
 
 from __future__ import annotations
 
-import re
 import unicodedata
 
-__all__ = ["CONTROL_CHARS", "text_problem"]
+from streamcount.intake.formats.text import CONTROL_CHARS, normalize_name
 
-#: characters refused in catalogue names and display names (see the module docstring)
-CONTROL_CHARS = re.compile(
-    r"[\x00-\x08\x0a-\x1f\x7f-\x9f\u061c\u200e\u200f\u2028\u2029\u202a-\u202e\u2066-\u2069]"
-)
+__all__ = ["CONTROL_CHARS", "normalize_name", "text_problem"]
 
 
 def text_problem(text: str) -> str | None:

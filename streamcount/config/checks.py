@@ -16,6 +16,7 @@ registry defines (formats, sources, significance tests) is read from that regist
 from __future__ import annotations
 
 import codecs
+import ipaddress
 import re
 import typing
 from collections.abc import Callable
@@ -134,6 +135,21 @@ def _significance_names() -> tuple[str, ...]:
     return SIGNIFICANCE_TESTS
 
 
+def _nats_url(url: str) -> bool:
+    parts = urlsplit(url if "://" in url else f"nats://{url}")
+    try:
+        parts.port  # noqa: B018 - raises on a port that is not a number
+    except ValueError:
+        return False
+    return parts.scheme in ("nats", "tls") and bool(parts.hostname)
+
+
+#: a JetStream stream or consumer name: no whitespace, dots, wildcards or path separators
+_NATS_NAME = re.compile(r"[^\s.*>/\\]+\Z")
+#: a subject: dot-separated tokens, no whitespace, ``*`` a whole token, ``>`` the last one
+_NATS_SUBJECT = re.compile(r"([^\s.*>]+|\*)(\.([^\s.*>]+|\*))*(\.>)?\Z|>\Z")
+
+
 _NON_EMPTY: _Check = (lambda v: v != "", "must not be empty")
 _NO_EMPTY_NAME: _Check = (lambda v: all(name.strip() for name in v), "must not hold an empty name")
 
@@ -156,6 +172,7 @@ KEY_RULES: dict[str, tuple[_Check, ...]] = {
             "each must be one of " + ", ".join(repr(n) for n in _source_names()),
         ),
     ),
+    "input.normalize": (_one_of("nfc", "none"),),
     "input.path": (
         _NON_EMPTY,
         (
@@ -194,6 +211,46 @@ KEY_RULES: dict[str, tuple[_Check, ...]] = {
         ),
     ),
     "input.csv.order_close_seconds": (_at_least(0),),
+    "input.nats.servers": (
+        (
+            lambda v: all(_nats_url(u) for u in v),
+            "each must be a server URL nats://HOST:PORT or tls://HOST:PORT",
+        ),
+    ),
+    "input.nats.stream": (
+        (
+            lambda v: bool(_NATS_NAME.match(v)),
+            "must be a stream name: no spaces, dots, '*', '>' or slashes",
+        ),
+    ),
+    "input.nats.subject": (
+        (
+            lambda v: bool(_NATS_SUBJECT.match(v)),
+            "must be a subject such as orders.3 or orders.* (tokens separated by dots, '*' "
+            "for one whole token, '>' only as the last)",
+        ),
+    ),
+    "input.nats.durable": (
+        (
+            lambda v: bool(_NATS_NAME.match(v)),
+            "must be a consumer name: no spaces, dots, '*', '>' or slashes",
+        ),
+    ),
+    "input.nats.creds_file": (_NON_EMPTY,),
+    "input.nats.token_env": (
+        (
+            lambda v: bool(_ENV_NAME.match(v)),
+            "must be the name of an environment variable (letters, digits, _), "
+            "not the token itself",
+        ),
+    ),
+    "input.nats.ack_wait_seconds": (_above(0),),
+    "input.nats.max_ack_pending": (_at_least(1),),
+    "input.nats.pull_batch": (_at_least(1),),
+    "input.nats.max_buffered_messages": (_at_least(1),),
+    "input.nats.connect_timeout_seconds": (_above(0),),
+    "input.nats.reconnect_wait_seconds": (_above(0),),
+    "input.nats.max_reconnect_wait_seconds": (_above(0),),
     "items.ignore": (_NO_EMPTY_NAME,),
     "items.allow": (_NO_EMPTY_NAME,),
     "items.rename": (
@@ -261,8 +318,17 @@ KEY_RULES: dict[str, tuple[_Check, ...]] = {
             "not the token itself",
         ),
     ),
+    "server.token_file": (_NON_EMPTY,),
+    "server.tls_certificate": (_NON_EMPTY,),
+    "server.tls_key": (_NON_EMPTY,),
     "server.max_request_bytes": (_at_least(1),),
     "server.request_timeout_seconds": (_above(0),),
+    "server.keepalive_timeout_seconds": (_above(0),),
+    "server.max_connections": (_at_least(1),),
+    "server.max_connections_per_client": (_at_least(0),),
+    "server.backlog": (_at_least(1),),
+    "server.workers": (_at_least(1),),
+    "server.auth_failures_per_minute": (_at_least(1),),
     "metrics.top_rules": (
         (
             lambda v: 0 <= v <= _MAX_TOP_RULES,
@@ -388,6 +454,8 @@ def cross_checks(cfg: Config) -> None:
             hook.max_backoff_seconds,
             f"must be >= sinks.webhook.backoff_seconds ({hook.backoff_seconds:g})",
         )
+    _server_checks(cfg)
+    _nats_cross_checks(cfg)
     if "http" in cfg.input.source and cfg.server.listen is None:
         _fail(
             "input.source",
@@ -405,6 +473,88 @@ def cross_checks(cfg: Config) -> None:
                     "with input.csv.header = false, columns are named by 0-based number; "
                     "write e.g. '0', or set header: true",
                 )
+
+
+def _nats_cross_checks(cfg: Config) -> None:
+    nats = cfg.input.nats
+    interval = cfg.checkpoint.checkpoint_interval_seconds
+    if nats.ack_wait_seconds is not None and nats.ack_wait_seconds <= interval:
+        _fail(
+            "input.nats.ack_wait_seconds",
+            nats.ack_wait_seconds,
+            f"must be > checkpoint.checkpoint_interval_seconds ({interval:g}): messages are "
+            "acknowledged at checkpoints, so a shorter wait redelivers every message (null "
+            "derives it: twice the interval plus 60)",
+        )
+    if nats.pull_batch > nats.max_buffered_messages:
+        _fail(
+            "input.nats.pull_batch",
+            nats.pull_batch,
+            f"must be <= input.nats.max_buffered_messages ({nats.max_buffered_messages})",
+        )
+    if nats.max_reconnect_wait_seconds < nats.reconnect_wait_seconds:
+        _fail(
+            "input.nats.max_reconnect_wait_seconds",
+            nats.max_reconnect_wait_seconds,
+            f"must be >= input.nats.reconnect_wait_seconds ({nats.reconnect_wait_seconds:g})",
+        )
+    if "nats" in cfg.input.source and cfg.input.format == "csv" and cfg.input.csv.header:
+        _fail(
+            "input.csv.header",
+            True,
+            "must be false with input.source nats: messages on a bus carry no header row, so "
+            "columns are named by 0-based number (input.csv.order_field: '0'...)",
+        )
+    if nats.creds_file is not None and nats.token_env is not None:
+        _fail(
+            "input.nats.token_env",
+            nats.token_env,
+            "set either input.nats.creds_file or input.nats.token_env, not both",
+        )
+
+
+def _loopback(host: str) -> bool:
+    """Whether ``host`` (from server.listen) only accepts connections from this machine."""
+    if host.lower() == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False  # a host name may resolve to anything
+
+
+def _server_checks(cfg: Config) -> None:
+    srv = cfg.server
+    if srv.token_env is not None and srv.token_file is not None:
+        _fail(
+            "server.token_file",
+            srv.token_file,
+            f"cannot be set together with server.token_env ({srv.token_env!r}); keep one "
+            "(a file can be rotated without a restart)",
+        )
+    if (srv.tls_certificate is None) != (srv.tls_key is None):
+        key, other = (
+            ("server.tls_certificate", "server.tls_key")
+            if srv.tls_certificate is not None
+            else ("server.tls_key", "server.tls_certificate")
+        )
+        _fail(key, getattr(srv, key.split(".")[1]), f"needs {other} set too (or both null)")
+    if srv.listen is not None and srv.tls_certificate is None and not srv.behind_proxy:
+        host, _ = parse_listen(srv.listen)
+        if not _loopback(host):
+            _fail(
+                "server.listen",
+                srv.listen,
+                "listens beyond this machine without TLS: set server.tls_certificate and "
+                "server.tls_key, or server.behind_proxy: true when a TLS-terminating reverse "
+                "proxy is in front (README, 'Exposing the service')",
+            )
+    if srv.max_connections_per_client > srv.max_connections:
+        _fail(
+            "server.max_connections_per_client",
+            srv.max_connections_per_client,
+            f"must be <= server.max_connections ({srv.max_connections})",
+        )
 
 
 def window_panes(cfg: Config) -> int:

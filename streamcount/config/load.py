@@ -376,4 +376,15 @@ def check_config_main(path: str | Path) -> int:
             "here; `streamcount run` will refuse to start without it",
             file=sys.stderr,
         )
+    for key, file in (
+        ("server.token_file", cfg.server.token_file),
+        ("server.tls_certificate", cfg.server.tls_certificate),
+        ("server.tls_key", cfg.server.tls_key),
+    ):
+        if file and not os.access(file, os.R_OK):
+            print(
+                f"warning: {key} = {file!r}: cannot be read here; `streamcount run` will "
+                "refuse to start without it",
+                file=sys.stderr,
+            )
     return 0

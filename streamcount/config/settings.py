@@ -28,6 +28,7 @@ __all__ = [
     "JsonlConfig",
     "LoggingConfig",
     "MetricsConfig",
+    "NatsConfig",
     "RulesConfig",
     "ServerConfig",
     "SinksConfig",
@@ -74,10 +75,49 @@ class CsvConfig:
 
 
 @dataclass(frozen=True, slots=True)
+class NatsConfig:
+    """The ``nats`` source: a durable pull consumer on a NATS JetStream stream.
+
+    Credentials never go here: ``creds_file`` names a file and ``token_env`` an environment
+    variable. The stream must exist (file storage, limits retention); the consumer is
+    streamcount's own and is re-created at the checkpointed sequence on every start.
+    """
+
+    #: server URLs (nats://host:port or tls://host:port); one or several of a cluster
+    servers: tuple[str, ...] = ("nats://127.0.0.1:4222",)
+    #: the JetStream stream to read
+    stream: str = "ORDERS"
+    #: subject filter within the stream (wildcards allowed); null: every subject
+    subject: str | None = None
+    #: name of the durable pull consumer (one streamcount process per name)
+    durable: str = "streamcount"
+    #: a NATS credentials file (user JWT and seed); null: none
+    creds_file: str | None = None
+    #: name of the environment variable holding a token (never the token itself)
+    token_env: str | None = None
+    #: seconds before the server redelivers an unacknowledged message; null: twice
+    #: checkpoint.checkpoint_interval_seconds plus 60 (messages are acknowledged at checkpoints)
+    ack_wait_seconds: float | None = None
+    #: messages delivered but not yet acknowledged (checkpointed) before the server pauses
+    max_ack_pending: int = 1000000
+    #: messages asked for per pull request
+    pull_batch: int = 1000
+    #: messages fetched and waiting to be counted, at most
+    max_buffered_messages: int = 20000
+    connect_timeout_seconds: float = 2.0
+    #: first wait before connecting again after a failure; doubles up to the maximum
+    reconnect_wait_seconds: float = 0.5
+    max_reconnect_wait_seconds: float = 30.0
+    #: resume even when the stream no longer holds the message after the checkpointed one
+    #: (retention removed it while streamcount was stopped); the gap is logged and counted
+    accept_gap: bool = False
+
+
+@dataclass(frozen=True, slots=True)
 class InputConfig:
     """Where transactions come from and how they are read."""
 
-    #: where records come from: one name or a list of them (file | stdin | http); several
+    #: where records come from: one name or a list of them (file | stdin | http | nats); several
     #: run at once, each with its own position in the checkpoint
     source: tuple[str, ...] = ("file",)
     #: the file the ``file`` source follows
@@ -85,7 +125,8 @@ class InputConfig:
     format: str = "basket"  # basket | jsonl | csv
     #: keep reading appended lines (``false``: stop at end of file)
     follow: bool = True
-    #: where to start a followed file when no checkpoint exists: beginning | end
+    #: where to start a followed file or a NATS stream when no checkpoint exists:
+    #: beginning | end
     start_at: str = "beginning"
     poll_interval_seconds: float = 0.2
     #: wall-clock seconds with nothing new while every source is caught up after which the
@@ -94,6 +135,9 @@ class InputConfig:
     idle_seconds: float = 10.0
     max_record_bytes: int = 65536
     encoding: str = "utf-8"
+    #: item names in Unicode normal form C (``nfc``), so one name written with a precomposed
+    #: letter or with a combining accent is one item; ``none`` keeps the bytes as read
+    normalize: str = "nfc"
     #: largest body POST /v1/transactions accepts (the ``http`` source)
     max_body_bytes: int = 1048576
     #: events stamped more than this many seconds ahead of the wall clock are set aside
@@ -102,6 +146,7 @@ class InputConfig:
     dead_letter_path: str | None = "dead-letter.jsonl"
     jsonl: JsonlConfig = field(default_factory=JsonlConfig)
     csv: CsvConfig = field(default_factory=CsvConfig)
+    nats: NatsConfig = field(default_factory=NatsConfig)
 
 
 @dataclass(frozen=True, slots=True)
@@ -229,8 +274,33 @@ class ServerConfig:
     listen: str | None = DEFAULT_LISTEN
     #: name of the environment variable holding the bearer token (the token never goes here)
     token_env: str | None = None
+    #: file holding the bearer token instead (re-read on SIGHUP: rotation without a restart)
+    token_file: str | None = None
+    #: serve /metrics without the token, minus the per-rule gauges (their labels hold item
+    #: names); false: /metrics needs the token like the API when one is set
+    public_metrics: bool = False
+    #: PEM certificate (chain) and key for HTTPS; needed to listen beyond loopback unless
+    #: behind_proxy is true
+    tls_certificate: str | None = None
+    tls_key: str | None = None
+    #: a TLS-terminating reverse proxy is in front: plain HTTP beyond loopback is allowed and
+    #: limits per client use the address the proxy appends to X-Forwarded-For
+    behind_proxy: bool = False
     max_request_bytes: int = 1048576
+    #: deadline for reading a whole request (headers and body) and for writing its answer
     request_timeout_seconds: float = 10.0
+    #: an idle keep-alive connection is closed after this many seconds
+    keepalive_timeout_seconds: float = 5.0
+    #: open connections in all, and per client address (0: no per-address cap); over a cap a
+    #: connection gets 503 with Retry-After
+    max_connections: int = 512
+    max_connections_per_client: int = 64
+    #: connections the kernel queues before they are accepted
+    backlog: int = 512
+    #: worker threads answering API requests (probes and /metrics have two of their own)
+    workers: int = 8
+    #: failed authentications one address may make per minute before it gets 429
+    auth_failures_per_minute: int = 10
 
 
 @dataclass(frozen=True, slots=True)

@@ -49,7 +49,7 @@ from streamcount.config.settings import (
 from streamcount.demo.generator import Drift, GeneratorParams, SyntheticFeed
 from streamcount.demo.shop import SHOP_NAME
 from streamcount.demo.skus import EVENING, EVENING_START, FEE, SkuFeed, write_catalogue
-from streamcount.intake.records import RecordBatch
+from streamcount.intake.records import RecordBatch, SourceHealth
 
 __all__ = [
     "BUNDLE",
@@ -186,6 +186,9 @@ class PacedFeedSource:
 
     def drain(self) -> list[RecordBatch]:
         return []
+
+    def health(self) -> SourceHealth:
+        return SourceHealth()
 
     def close(self) -> None:
         self.exhausted = True

@@ -140,6 +140,10 @@ class Summary(Protocol):
         """The entries as named arrays (for checkpoints); :meth:`from_arrays` reverses it."""
         ...
 
+    def remap(self, mapping: np.ndarray) -> None:
+        """Renumber item ids through an increasing old-to-new map."""
+        ...
+
     def check_invariants(self) -> None:
         """Assert every structural invariant."""
         ...
@@ -377,6 +381,17 @@ class LossySummary:
                 np.asarray(arrays[f"{prefix}L{k}.delta"], dtype=np.int64),
             )
         return s
+
+    def remap(self, mapping: np.ndarray) -> None:
+        """Renumber item ids through an increasing ``mapping`` (old id -> new id); every id
+        in use must map to one (``>= 0``). Rows stay sorted, so nothing is re-sorted."""
+        table = np.asarray(mapping, dtype=np.int32)
+        for k, level in enumerate(self._levels, start=1):
+            if len(level):
+                items = table[level.items]
+                if (items < 0).any():
+                    raise ValueError(f"remap: a tracked itemset of size {k} uses a released id")
+                self._levels[k - 1] = Level(items, level.f, level.delta)
 
     def check_invariants(self) -> None:
         """Assert every structural invariant; raises AssertionError naming the broken one."""

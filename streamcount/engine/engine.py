@@ -25,7 +25,7 @@ from __future__ import annotations
 import dataclasses
 import math
 from collections import Counter
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -40,9 +40,12 @@ from streamcount.engine.taxonomy import ItemResolver, ItemTables
 from streamcount.engine.vocab import ItemVocabulary
 from streamcount.engine.window import SlidingWindow
 
-__all__ = ["STATE_VERSION", "AddResult", "Engine", "Rejection"]
+__all__ = ["COMPACT_MIN_RELEASED", "STATE_VERSION", "AddResult", "Engine", "Rejection"]
 
 STATE_VERSION = 1
+
+#: the vocabulary is compacted only when at least this many names can be released
+COMPACT_MIN_RELEASED = 4096
 
 
 @dataclass(frozen=True, slots=True)
@@ -147,6 +150,11 @@ class Engine:
         self.max_event_ts: float | None = None
         #: the pane closed most recently (what ``on_pane_closed`` is called about)
         self.last_closed: Pane | None = None
+        #: called with the old-to-new id map when the vocabulary is compacted (followers of
+        #: item ids, e.g. the change tests, renumber theirs)
+        self.on_remap: Callable[[np.ndarray], None] | None = None
+        #: names that must keep their ids whatever the panes hold (e.g. catalogue ancestors)
+        self.pinned: Callable[[], Iterable[str]] | None = None
 
     # -- intake -------------------------------------------------------------------------------
 
@@ -252,6 +260,8 @@ class Engine:
                 closes = self._route_time(flat, lengths, seq, ts_ok, pane_idx[keep])
             else:
                 closes = self._route_count(flat, lengths, seq, ts_ok)
+        if closes:
+            self.compact_vocabulary()
         by_reason = Counter(r.reason for r in rejections)
         self.rejected.update(by_reason)
         rejections.sort(key=lambda r: r.index)
@@ -388,6 +398,40 @@ class Engine:
         if self.on_pane_closed is not None:
             self.on_pane_closed(self)
 
+    def compact_vocabulary(self, *, force: bool = False) -> np.ndarray | None:
+        """Release the item names no held pane uses any more (and that are not pinned), so the
+        name table is bounded by the window, not by the feed's history.
+
+        Done at the end of an :meth:`add` that closed a pane (never in the middle: the rest of
+        its transactions are already encoded), when at least half the names (and at least
+        :data:`COMPACT_MIN_RELEASED`) can go, or always with ``force``; a function of the input
+        alone, so restarts and replays compact at the same points. Ids are renumbered in order
+        (an increasing map), every pane and buffer is remapped, ``on_remap`` is called with the
+        map, and snapshots built before keep the names they were built with. Returns the map,
+        or ``None`` when nothing was released. Cost: O(names + tracked entries).
+        """
+        size = len(self.vocabulary)
+        used = self.window.ids_in_use(size)
+        if self.items is not None:  # ancestors an item maps to are never released
+            used |= self.items.pinned_mask(size)
+        if self.pinned is not None:
+            for name in self.pinned():
+                item = self.vocabulary.get(name)
+                if item is not None:
+                    used[item] = True
+        released = size - int(used.sum())
+        if released == 0 or (
+            not force and (released < COMPACT_MIN_RELEASED or 2 * released < size)
+        ):
+            return None
+        mapping = self.vocabulary.compact(used)
+        self.window.remap(mapping)
+        if self.items is not None:
+            self.items.remap(mapping, self.vocabulary)
+        if self.on_remap is not None:
+            self.on_remap(mapping)
+        return mapping
+
     def advance_watermark(self, now: float) -> int:
         """Time-based windows on a quiet feed: close the panes that end before ``now`` minus
         ``allowed_lateness_seconds`` as if events up to ``now`` had been seen, and slide the
@@ -406,6 +450,7 @@ class Engine:
             self._close(pane)
         self.window.closed_through = limit
         self.window.advance_to(limit)
+        self.compact_vocabulary()
         return moved
 
     def flush(self) -> None:

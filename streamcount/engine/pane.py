@@ -130,6 +130,22 @@ class Pane:
             self._exact = exact
         return self._exact
 
+    def ids_in_use(self, used: np.ndarray) -> None:
+        """Mark in ``used`` (bool, by item id) every id this pane's summary or buffer holds
+        (the summary is downward closed, so its single items cover every tracked itemset)."""
+        level = self.summary.levels[0]
+        if len(level):
+            used[level.items[:, 0]] = True
+        for part in self._buf_flat:
+            used[part] = True
+
+    def remap(self, mapping: np.ndarray) -> None:
+        """Renumber item ids (an increasing old-to-new map) in the summary and the buffer."""
+        table = np.asarray(mapping, dtype=np.int32)
+        self.summary.remap(table)
+        self._buf_flat = [table[part] for part in self._buf_flat]
+        self._exact = None
+
     def count_buffer(self, limit: int | None = None) -> int:
         """Count the first ``limit`` buffered transactions (all when ``None``) as one batch."""
         if self.buffered == 0:

@@ -302,6 +302,29 @@ class ItemTables:
             self.excluded.replace(items, self.anc_ids)
         self._view = None
 
+    def pinned_mask(self, size: int) -> NDArray[np.bool_]:
+        """The ids the tables map to other than an item itself (ancestors, parents, base
+        items), over a vocabulary of ``size``: the names the engine's release of unused names
+        must keep, so an ancestor is never released while an item maps to it."""
+        mask = np.zeros(size, dtype=bool)
+        rows = np.repeat(np.arange(self.size, dtype=np.int64), np.diff(self.exp_ptr))
+        targets = self.exp_ids[self.exp_ids != rows]
+        for ids in (self.anc_ids, self.parent[self.parent >= 0], targets):
+            mask[ids[ids < size]] = True
+        return mask
+
+    def remap(self, mapping: NDArray[np.int32], vocabulary: ItemVocabulary) -> None:
+        """The vocabulary was compacted (``mapping``: old id -> new id, -1 released): rebuild
+        the tables for the new ids (the catalogue is asked again, name by name); the counters
+        of removed and unknown items carry on."""
+        seen = self.unknown_seen
+        self.reset(self.resolver)
+        self.sync(vocabulary)
+        old = np.flatnonzero(seen[: mapping.shape[0]])
+        new = mapping[old]
+        new = new[(new >= 0) & (new < self.unknown_seen.shape[0])]
+        self.unknown_seen[new] = True
+
     # -- per batch ----------------------------------------------------------------------------
 
     def expand(

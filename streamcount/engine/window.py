@@ -239,6 +239,19 @@ class SlidingWindow:
         self._sum_cache = window
         return window.snapshot, recent.snapshot, baseline.snapshot
 
+    def ids_in_use(self, vocabulary_size: int) -> np.ndarray:
+        """Which item ids any held pane still uses (its summary or its buffer)."""
+        used = np.zeros(vocabulary_size, dtype=bool)
+        for pane in self.panes.values():
+            pane.ids_in_use(used)
+        return used
+
+    def remap(self, mapping: np.ndarray) -> None:
+        """Renumber item ids in every pane; the cached window sum (old ids) is dropped."""
+        for pane in self.panes.values():
+            pane.remap(mapping)
+        self._sum_cache = None
+
     # -- statistics, checks, persistence ------------------------------------------------------
 
     @property

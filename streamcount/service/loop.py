@@ -13,6 +13,7 @@ at the saved positions, so a followed file is counted exactly once.
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import signal
 import threading
@@ -22,14 +23,19 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass, replace
 from typing import Any
 
-from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, generate_latest
+from prometheus_client import (
+    CONTENT_TYPE_LATEST,
+    CollectorRegistry,
+    ProcessCollector,
+    generate_latest,
+)
 
 from streamcount import __version__
 from streamcount.alerts.sinks import Sink, SinkFanout, build_sinks
 from streamcount.config.load import describe, fingerprint, fingerprint_settings
 from streamcount.config.settings import Config
 from streamcount.engine.snapshot import WindowSnapshot
-from streamcount.errors import CheckpointError, InputError
+from streamcount.errors import CheckpointError, InputError, describe_os_error
 from streamcount.intake.deadletter import DeadLetterFile
 from streamcount.intake.formats import Decoder, make_decoder
 from streamcount.intake.records import Decoded, RecordBatch
@@ -119,6 +125,8 @@ class Service:
             if state:
                 item.decoder.load_state(state)
         self.dead_letter = DeadLetterFile(config.input.dead_letter_path)
+        # the process's resident memory, CPU time and open files (process_*), next to ours
+        ProcessCollector(registry=self.registry)
         self.metrics = Metrics(
             self.registry,
             statistics=lambda: self.api.view.statistics,
@@ -190,9 +198,16 @@ class Service:
         self._stop.set()
 
     def request_catalogue_reload(self, *_: object) -> None:
-        """Reload the catalogue at the start of the next turn (the SIGHUP handler)."""
+        """Reload the catalogue at the start of the next turn."""
         if self.pipeline.catalogue is not None:
             self.pipeline.catalogue.requested = True
+
+    def reload_on_signal(self, *_: object) -> None:
+        """The SIGHUP handler: the server re-reads its token file and TLS files, and the
+        catalogue is reloaded at the start of the next turn."""
+        if self.server is not None:
+            self.server.request_reload()
+        self.request_catalogue_reload()
 
     def start_server(self) -> tuple[str, int] | None:
         """Start the HTTP listener (``server.listen``); returns the bound address."""
@@ -201,7 +216,7 @@ class Service:
             return None
         import os
 
-        from streamcount.service.server import start_server
+        from streamcount.service.server import ServerOptions, start_server
 
         token = None
         if self.config.server.token_env:
@@ -221,7 +236,9 @@ class Service:
             token=token,
             max_request_bytes=limit,
             request_timeout_seconds=self.config.server.request_timeout_seconds,
+            options=ServerOptions.from_config(self.config.server),
         )
+        self.metrics.watch_server(self.server.stats)
         host, port = self.server.server_address[:2]
         logger.info("listening on http://%s:%d (metrics at /metrics)", host, port)
         return str(host), int(port)
@@ -243,13 +260,15 @@ class Service:
         if install_signals and threading.current_thread() is threading.main_thread():
             signal.signal(signal.SIGTERM, self.request_stop)
             signal.signal(signal.SIGINT, self.request_stop)
-            if self.pipeline.catalogue is not None:
-                signal.signal(signal.SIGHUP, self.request_catalogue_reload)
         if self.server is None:
             self.start_server()
+        if install_signals and threading.current_thread() is threading.main_thread():
+            # SIGHUP: re-read server.token_file and TLS, and the catalogue file
+            signal.signal(signal.SIGHUP, self.reload_on_signal)
         logger.info("streamcount %s started: %s", __version__, describe(self.config))
         self.api.set_ready(True)
         clean = False
+        saved = True
         try:
             while not self._stop.is_set():
                 self.turn(timeout=timeout)
@@ -261,7 +280,15 @@ class Service:
                     break
             clean = True
         finally:
-            self.shutdown(clean=clean)
+            saved = self.shutdown(clean=clean)
+        if not saved:
+            # the counting state since the last good checkpoint is lost: say so in the exit code
+            logger.error(
+                "the final checkpoint to %s failed (see above); a restart resumes from the last "
+                "good checkpoint and counts what came after it again",
+                self.config.checkpoint.checkpoint_dir,
+            )
+            return 1
         return 0
 
     def turn(self, timeout: float = 0.0) -> int:
@@ -295,6 +322,7 @@ class Service:
             accepted += self._idle()
         if seen or rejected:
             self.dead_letter.flush()
+            self.metrics.observe_dead_letters(self.dead_letter.failed_writes)
             self.metrics.observe_batch(accepted, rejected, time.perf_counter() - started)
             self._unpublished = True
         self.turns += 1
@@ -307,6 +335,7 @@ class Service:
         if self._unpublished and now - self._last_publish >= _PUBLISH_SECONDS:
             self._publish()
         self._observe_sinks()
+        self._observe_sources()
         interval = self.config.checkpoint.checkpoint_interval_seconds
         if self.config.checkpoint.checkpoint_dir and now - self._last_checkpoint_mono >= interval:
             self.checkpoint()
@@ -359,6 +388,15 @@ class Service:
     def _alerts_raised(self, records: list[dict[str, Any]]) -> None:
         self.metrics.observe_alerts(Counter(str(r["kind"]) for r in records))
         self._publish(self.pipeline.last_close)
+
+    def _observe_sources(self) -> None:
+        """Readiness follows the sources (a bus that is away), and bus sources' totals go to
+        the metrics."""
+        healths = [(i.source.name, i.source.health()) for i in self.inputs]
+        self.api.set_sources_ready(all(h.connected for _, h in healths))
+        for name, health in healths:
+            if health.bus is not None:
+                self.metrics.observe_source(name, **dataclasses.asdict(health.bus))
 
     def _observe_sinks(self) -> None:
         stats = self.sinks.stats_by_sink()
@@ -420,12 +458,22 @@ class Service:
             "max_event_ts": stats.max_event_ts,
             "rules_window": rules_window,
             "overlay": fresh,
-            "sources": [i.source.name for i in self.inputs],
+            "sources": [self._source_status(i.source) for i in self.inputs],
             "alerts_budget": None if budget is None else budget.as_dict(),
             "catalogue": self.pipeline.catalogue_status(),
         }
         alerts = tuple(self.pipeline.alert_history)
         return View(window, stats, rules, alerts, status, rules_window, key)
+
+    @staticmethod
+    def _source_status(source: Source) -> dict[str, Any]:
+        health = source.health()
+        out: dict[str, Any] = {"name": source.name, "connected": health.connected}
+        if health.bus is not None:
+            out["lag_messages"] = health.bus.lag_messages
+        if health.gap is not None:
+            out["gap"] = health.gap
+        return out
 
     def _window_key(self) -> tuple[tuple[int, int], ...]:
         """What the window's counts depend on: each live pane and how much of it is counted."""
@@ -480,7 +528,10 @@ class Service:
                 settings=fingerprint_settings(self.config),
             )
         except (OSError, ValueError, CheckpointError) as exc:
-            logger.warning("checkpoint to %s failed: %s", directory, exc)
+            reason: object = exc
+            if isinstance(exc, OSError):
+                reason = describe_os_error("checkpoint", directory, exc)
+            logger.warning("checkpoint to %s failed: %s", directory, reason)
             self.metrics.observe_checkpoint(False, now)
         else:
             ok = True
@@ -493,20 +544,22 @@ class Service:
         self._last_checkpoint_mono = time.monotonic()
         return ok
 
-    def shutdown(self, *, clean: bool = True) -> None:
+    def shutdown(self, *, clean: bool = True) -> bool:
         """Stop serving, count what the sources already accepted from outside (HTTP ingest
-        bodies), write the final checkpoint and release everything.
+        bodies), write the final checkpoint and release everything; returns whether the final
+        checkpoint (if any is due) was written.
 
         After an unexpected error (``clean=False``) no checkpoint is written: the state may be
         half-updated, so the last good checkpoint is kept and a restart re-reads from it.
         """
+        saved = True
         self.api.set_ready(False)
         if self.server is not None:  # no new requests from here on
             self.server.shutdown()
             self.server.server_close()
         if clean:
             self._drain()
-            self.checkpoint()
+            saved = self.checkpoint()
         else:
             logger.warning("stopping after an error; the last good checkpoint is kept")
         self._publish()
@@ -515,6 +568,7 @@ class Service:
         for item in self.inputs:
             item.source.close()
         logger.info("stopped after %d transactions", self.pipeline.engine.transactions_seen)
+        return saved
 
     def _drain(self) -> None:
         """Count the batches sources hold for senders already answered or waiting."""

@@ -4,7 +4,9 @@ Two kinds of metric live here:
 
 * counters and a histogram that the counting loop updates once per *batch* (never per record)
   through :meth:`Metrics.observe_batch`, :meth:`Metrics.observe_alerts`,
-  :meth:`Metrics.observe_checkpoint` and :meth:`Metrics.observe_sinks`;
+  :meth:`Metrics.observe_checkpoint`, :meth:`Metrics.observe_sinks`,
+  :meth:`Metrics.observe_dead_letters` and, for a message-bus source,
+  :meth:`Metrics.observe_source`;
 * gauges of engine state produced at scrape time by a custom collector that calls a function
   returning the latest immutable :class:`~streamcount.snapshot.EngineStatistics` (and a
   :class:`ServiceState`), so a scrape never touches the counting loop's mutable state.
@@ -28,9 +30,9 @@ from __future__ import annotations
 import threading
 from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-from prometheus_client import CollectorRegistry, Counter, Histogram
+from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
 from prometheus_client.registry import Collector
 
@@ -38,10 +40,15 @@ from streamcount.alerts.kinds import ALERT_KINDS
 from streamcount.engine.snapshot import EngineStatistics
 from streamcount.errors import REASONS
 
+if TYPE_CHECKING:
+    from streamcount.service.httpd import HttpStats
+
 __all__ = [
     "ALERT_KINDS",
     "CATALOGUE_RELOAD_RESULTS",
     "CHECKPOINT_RESULTS",
+    "HTTP_REFUSALS",
+    "ITEM_TEXT_METRICS",
     "METRIC_NAMES",
     "REJECT_REASONS",
     "SINK_NAMES",
@@ -102,6 +109,30 @@ _RULE_GAUGES: dict[str, str] = {
     "streamcount_rule_support": "Support of one of the top rules by lift (point value).",
 }
 
+#: Families whose labels hold item text (names from the feed): left out of a /metrics served
+#: without the token (``server.public_metrics``).
+ITEM_TEXT_METRICS: tuple[str, ...] = tuple(_RULE_GAUGES)
+#: ``reason`` label values of ``streamcount_http_refused_total``
+HTTP_REFUSALS: tuple[str, ...] = (
+    "busy",
+    "max_connections",
+    "max_connections_per_client",
+    "rate_limited",
+    "timeout",
+)
+_HTTP_FAMILIES: dict[str, str] = {
+    "streamcount_auth_failures": (
+        "Requests refused for a missing or wrong API token (401); each also counts against "
+        "its address's server.auth_failures_per_minute."
+    ),
+    "streamcount_http_refused": (
+        "Requests or connections the HTTP server refused, by reason: over a connection cap "
+        "(503), not read in time (408), no worker or body budget free (503), too many failed "
+        "authentications from the address (429)."
+    ),
+    "streamcount_http_connections": "HTTP connections open now.",
+}
+
 #: Every metric family name streamcount exposes (counters with their ``_total`` suffix).
 METRIC_NAMES: tuple[str, ...] = (
     "streamcount_transactions_total",
@@ -111,8 +142,18 @@ METRIC_NAMES: tuple[str, ...] = (
     "streamcount_sink_dropped_total",
     "streamcount_checkpoints_total",
     "streamcount_catalogue_reloads_total",
+    "streamcount_dead_letters_lost_total",
     "streamcount_batch_seconds",
     *(f"{name}_total" for name in _STAT_COUNTERS),
+    "streamcount_auth_failures_total",
+    "streamcount_http_refused_total",
+    "streamcount_http_connections",
+    "streamcount_source_connected",
+    "streamcount_source_lag_messages",
+    "streamcount_source_redeliveries_total",
+    "streamcount_source_reconnects_total",
+    "streamcount_source_gap_messages_total",
+    "streamcount_source_terminated_total",
     *_GAUGES,
     *_RULE_GAUGES,
 )
@@ -224,6 +265,8 @@ class _StateCollector(Collector):
             lag.add_metric([], float(state.event_lag_seconds))
         yield lag
 
+        yield from self._http_families()
+
         top = self._owner.top_rules
         if top > 0:
             families = {name: gauge(name, ["antecedent", "consequent"]) for name in _RULE_GAUGES}
@@ -233,6 +276,27 @@ class _StateCollector(Collector):
                 families["streamcount_rule_confidence"].add_metric(labels, rule.confidence)
                 families["streamcount_rule_support"].add_metric(labels, rule.support)
             yield from families.values()
+
+    def _http_families(self) -> Iterator[Metric]:
+        stats = self._owner._server_stats() if self._owner._server_stats is not None else None
+        failures = CounterMetricFamily(
+            "streamcount_auth_failures", _HTTP_FAMILIES["streamcount_auth_failures"]
+        )
+        failures.add_metric([], float(stats.auth_failures if stats is not None else 0))
+        yield failures
+        refused = CounterMetricFamily(
+            "streamcount_http_refused",
+            _HTTP_FAMILIES["streamcount_http_refused"],
+            labels=["reason"],
+        )
+        for reason in HTTP_REFUSALS:
+            refused.add_metric([reason], float(stats.refused[reason] if stats is not None else 0))
+        yield refused
+        connections = GaugeMetricFamily(
+            "streamcount_http_connections", _HTTP_FAMILIES["streamcount_http_connections"]
+        )
+        connections.add_metric([], float(stats.open_connections if stats is not None else 0))
+        yield connections
 
 
 class Metrics:
@@ -274,6 +338,9 @@ class Metrics:
         self._lock = threading.Lock()
         self._last_checkpoint = 0.0
         self._sink_seen: dict[tuple[str, str], int] = {}
+        self._dead_letters_seen = 0
+        self._server_stats: Callable[[], HttpStats] | None = None
+        self._source_seen: dict[tuple[str, str], int] = {}
 
         self.transactions = Counter(
             "streamcount_transactions",
@@ -317,12 +384,58 @@ class Metrics:
             ["result"],
             registry=registry,
         )
+        self.dead_letters_lost = Counter(
+            "streamcount_dead_letters_lost",
+            "Records set aside that could not be written to the dead-letter file (disk full, "
+            "permissions); they are still counted in streamcount_records_rejected_total.",
+            registry=registry,
+        )
         self.batch_seconds = Histogram(
             "streamcount_batch_seconds",
             "Seconds spent counting one batch of transactions.",
             buckets=_BATCH_BUCKETS,
             registry=registry,
         )
+        self.source_connected = Gauge(
+            "streamcount_source_connected",
+            "1 while a message-bus source is connected with its consumer set up, else 0.",
+            ["source"],
+            registry=registry,
+        )
+        self.source_lag = Gauge(
+            "streamcount_source_lag_messages",
+            "Messages on the bus for this source not yet counted (consumer lag).",
+            ["source"],
+            registry=registry,
+        )
+        self.source_totals = {
+            "redeliveries": Counter(
+                "streamcount_source_redeliveries",
+                "Messages the bus delivered more than once (each dropped after the first).",
+                ["source"],
+                registry=registry,
+            ),
+            "reconnects": Counter(
+                "streamcount_source_reconnects",
+                "Connections to the bus made again after losing one.",
+                ["source"],
+                registry=registry,
+            ),
+            "gap_messages": Counter(
+                "streamcount_source_gap_messages",
+                "Messages removed by the stream's retention before they were read, accepted "
+                "with --accept-gap (never counted).",
+                ["source"],
+                registry=registry,
+            ),
+            "terminated": Counter(
+                "streamcount_source_terminated",
+                "Messages terminated on the bus because none of their records could be "
+                "counted (each record is in the dead-letter file).",
+                ["source"],
+                registry=registry,
+            ),
+        }
         for reason in REJECT_REASONS:
             self.records_rejected.labels(reason=reason)
         for kind in alert_kinds:
@@ -362,6 +475,23 @@ class Metrics:
         """Count one catalogue reload attempt."""
         self.catalogue_reloads.labels(result="ok" if ok else "failed").inc()
 
+    def watch_server(self, stats: Callable[[], HttpStats] | None) -> None:
+        """Read the HTTP server's totals at scrape time (``server.stats`` of
+        :func:`~streamcount.service.server.start_server`'s server): failed authentications,
+        refusals by reason, open connections. Until then they read 0."""
+        self._server_stats = stats
+
+    def observe_dead_letters(self, lost_total: int) -> None:
+        """Bring ``streamcount_dead_letters_lost_total`` up to the dead-letter file's own
+        running total (:attr:`~streamcount.intake.deadletter.DeadLetterFile.failed_writes`);
+        call it once per turn. A total that went down (a new file object) counts in full."""
+        with self._lock:
+            before = self._dead_letters_seen
+            self._dead_letters_seen = lost_total
+        delta = lost_total - before if lost_total >= before else lost_total
+        if delta:
+            self.dead_letters_lost.inc(delta)
+
     def observe_sinks(self, failures: Mapping[str, int], dropped: Mapping[str, int]) -> None:
         """Bring the sink counters up to the sinks' own running totals.
 
@@ -383,3 +513,38 @@ class Metrics:
                 delta = total - before if total >= before else total
                 if delta:
                     counter.labels(sink=sink).inc(delta)
+
+    def observe_source(
+        self,
+        source: str,
+        *,
+        connected: bool,
+        lag_messages: int,
+        redeliveries: int,
+        reconnects: int,
+        gap_messages: int,
+        terminated: int,
+    ) -> None:
+        """Bring a message-bus source's metrics up to its own report (e.g.
+        ``observe_source(name, **dataclasses.asdict(source.bus_stats()))``).
+
+        ``connected`` and ``lag_messages`` are current values; the others are the source's
+        running totals, added as the difference since the previous call (a total that went
+        down, from a rebuilt source, counts in full, as Prometheus treats a counter reset).
+        """
+        self.source_connected.labels(source=source).set(1.0 if connected else 0.0)
+        self.source_lag.labels(source=source).set(float(lag_messages))
+        totals = {
+            "redeliveries": redeliveries,
+            "reconnects": reconnects,
+            "gap_messages": gap_messages,
+            "terminated": terminated,
+        }
+        for kind, total in totals.items():
+            with self._lock:
+                before = self._source_seen.get((kind, source), 0)
+                self._source_seen[(kind, source)] = total
+            delta = total - before if total >= before else total
+            counter = self.source_totals[kind].labels(source=source)
+            if delta:
+                counter.inc(delta)

@@ -101,7 +101,9 @@ FORMATS: dict[str, FormatSpec] = {
     for spec in (
         FormatSpec(
             "basket",
-            lambda cfg, cap, _ts: BasketDecoder(cap, cfg.max_record_bytes, cfg.encoding),
+            lambda cfg, cap, _ts: BasketDecoder(
+                cap, cfg.max_record_bytes, cfg.encoding, cfg.normalize
+            ),
             (".txt", ".dat", ".basket"),
             True,
             "one transaction per line, items separated by whitespace and/or commas",
@@ -109,7 +111,12 @@ FORMATS: dict[str, FormatSpec] = {
         FormatSpec(
             "jsonl",
             lambda cfg, cap, ts: JsonlDecoder(
-                cfg.jsonl, cap, cfg.max_record_bytes, cfg.encoding, require_ts=ts
+                cfg.jsonl,
+                cap,
+                cfg.max_record_bytes,
+                cfg.encoding,
+                require_ts=ts,
+                normalize=cfg.normalize,
             ),
             (".jsonl", ".ndjson", ".json"),
             True,
@@ -118,7 +125,12 @@ FORMATS: dict[str, FormatSpec] = {
         FormatSpec(
             "csv",
             lambda cfg, cap, ts: CsvOrderDecoder(
-                cfg.csv, cap, cfg.max_record_bytes, cfg.encoding, require_ts=ts
+                cfg.csv,
+                cap,
+                cfg.max_record_bytes,
+                cfg.encoding,
+                require_ts=ts,
+                normalize=cfg.normalize,
             ),
             (".csv",),
             False,

@@ -14,7 +14,9 @@ from streamcount.config.settings import CsvConfig
 from streamcount.errors import InputError, ParseError
 from streamcount.intake.formats.text import (
     LineDecoder,
+    check_control,
     decode_text,
+    normalize_name,
     parse_ts,
     show,
 )
@@ -55,12 +57,15 @@ class CsvOrderDecoder(LineDecoder):
     rows, ``offset`` where its first row starts and ``end_offset`` where its last row ends.
 
     **Rows set aside** (``feed`` raises, the row joins no order and closes none):
-    unreadable CSV (``malformed``), a short row or a blank order id (``missing_field``), a
+    unreadable CSV (``malformed``), a short row or a blank order id (``missing_field``), an
+    order id or item cell holding a character of
+    :data:`~streamcount.intake.formats.text.CONTROL_CHARS` (``control_chars``), a
     blank item (``empty``), a quantity that is not a number or a time that is neither
     epoch seconds nor ISO-8601 (``wrong_type``), a quantity ``<= 0`` (``empty``: returns and
     cancellations add nothing to a basket), and every row of an order once it has more than
     ``max_basket_items`` distinct items (``too_many_items``; the whole order is dropped,
-    never truncated). A quantity above 0 does not multiply: a basket is a set.
+    never truncated). A quantity above 0 does not multiply: a basket is a set. Item names
+    are NFC-normalised unless ``normalize`` is ``none``; order ids are kept as written.
 
     **Checkpoints.** Either store :meth:`state_dict` and resume the source at the consumed
     end (exact), or store :meth:`safe_offset` and re-read from there with a fresh decoder
@@ -91,6 +96,7 @@ class CsvOrderDecoder(LineDecoder):
         "encoding",
         "max_basket_items",
         "max_record_bytes",
+        "nfc",
         "require_ts",
     )
 
@@ -102,7 +108,9 @@ class CsvOrderDecoder(LineDecoder):
         encoding: str = "utf-8",
         *,
         require_ts: bool = False,
+        normalize: str = "nfc",
     ) -> None:
+        self.nfc = normalize == "nfc"  # input.normalize, checked with the settings
         self.config = config or CsvConfig()
         self.max_basket_items = max_basket_items
         self.max_record_bytes = max_record_bytes
@@ -171,7 +179,7 @@ class CsvOrderDecoder(LineDecoder):
         i_order, i_item, i_ts, i_qty = self._idx
         cfg = self.config
 
-        def cell(index: int, name: str) -> str:
+        def cell(index: int, name: str, *, checked: bool = False) -> str:
             if index >= len(row):
                 raise ParseError(
                     "missing_field",
@@ -179,9 +187,11 @@ class CsvOrderDecoder(LineDecoder):
                     offset=offset,
                     raw=record,
                 )
+            if checked:  # before stripping, which would hide a separator at either end
+                check_control(row[index], f"column {name!r}", offset, record)
             return row[index].strip()
 
-        order_id = cell(i_order, cfg.order_field)
+        order_id = cell(i_order, cfg.order_field, checked=True)
         if not order_id:
             raise ParseError(
                 "missing_field",
@@ -189,7 +199,7 @@ class CsvOrderDecoder(LineDecoder):
                 offset=offset,
                 raw=record,
             )
-        item = cell(i_item, cfg.item_field)
+        item = normalize_name(cell(i_item, cfg.item_field, checked=True), self.nfc)
         if not item:
             raise ParseError(
                 "empty", f"column {cfg.item_field!r} (the item) is blank", offset=offset, raw=record

@@ -9,6 +9,8 @@ dead-letter it and carry on.
 from __future__ import annotations
 
 import math
+import re
+import unicodedata
 from datetime import UTC, datetime
 from typing import Any
 
@@ -20,10 +22,14 @@ from streamcount.intake.deadletter import RAW_CHARS
 from streamcount.intake.records import Decoded, RecordBatch, Transaction
 
 __all__ = [
+    "CONTROL_CHARS",
+    "NORMALIZE_FORMS",
     "LineDecoder",
+    "check_control",
     "decode_text",
     "dedupe",
     "item_name",
+    "normalize_name",
     "parse_ts",
     "show",
     "too_long_error",
@@ -32,6 +38,17 @@ __all__ = [
 
 _SHOW_CHARS = 80
 
+#: Characters refused in item names and order ids (reason ``control_chars``): C0 controls but
+#: tab, DEL and the C1 controls, the line and paragraph separators, and the bidirectional marks
+#: (U+061C, U+200E, U+200F), embeddings, overrides and isolates (Unicode UAX #9), which can make
+#: one name look like another where it is shown (``tea`` + U+202E + ``lam`` is shown as
+#: ``teamal``).
+CONTROL_CHARS = re.compile(
+    r"[\x00-\x08\x0a-\x1f\x7f-\x9f\u061c\u200e\u200f\u2028\u2029\u202a-\u202e\u2066-\u2069]"
+)
+#: values of ``input.normalize``: ``nfc`` (Unicode canonical composition) or ``none`` (as read)
+NORMALIZE_FORMS: tuple[str, ...] = ("nfc", "none")
+
 
 def show(value: object) -> str:
     """``repr`` of a value, truncated so a message stays readable."""
@@ -39,6 +56,37 @@ def show(value: object) -> str:
     if len(text) > _SHOW_CHARS:
         text = text[: _SHOW_CHARS - 3] + "..."
     return text
+
+
+def check_control(text: str, where: str, offset: int | None, raw: bytes) -> None:
+    r"""Raise ``control_chars`` when ``text`` holds one of :data:`CONTROL_CHARS`.
+
+    >>> check_control("tea\u202emal", "item", 0, b"")  # doctest: +ELLIPSIS
+    Traceback (most recent call last):
+    ...
+    streamcount.errors.ParseError: control_chars at offset 0: item = 'tea\u202emal' holds U+202E...
+    """
+    found = CONTROL_CHARS.search(text)
+    if found is not None:
+        char = found.group()
+        label = unicodedata.name(char, "a control character")
+        raise ParseError(
+            "control_chars",
+            f"{where} = {show(text)} holds U+{ord(char):04X} ({label}) at position {found.start()}",
+            offset=offset,
+            raw=raw,
+        )
+
+
+def normalize_name(name: str, nfc: bool) -> str:
+    r"""``name`` in Unicode normal form C when ``nfc`` (ASCII is returned as it is).
+
+    >>> [len(normalize_name("cafe\u0301", nfc)) for nfc in (True, False)]
+    [4, 5]
+    """
+    if nfc and not name.isascii():
+        return unicodedata.normalize("NFC", name)
+    return name
 
 
 def dedupe(items: list[str]) -> list[str]:
@@ -118,8 +166,13 @@ def parse_ts(value: object, where: str, offset: int | None, raw: bytes) -> float
     return ts
 
 
-def item_name(value: object, where: str, offset: int | None, raw: bytes) -> str:
+def item_name(
+    value: object, where: str, offset: int | None, raw: bytes, *, nfc: bool = True
+) -> str:
+    """An item name from a decoded value: a string (checked for :data:`CONTROL_CHARS`,
+    NFC-normalised when ``nfc``) or a number (``str(n)``)."""
     if isinstance(value, str):
+        check_control(value, where, offset, raw)
         if not value.isascii():
             try:  # JSON escapes can smuggle lone surrogates, which cannot be stored as UTF-8
                 value.encode("utf-8")
@@ -130,6 +183,7 @@ def item_name(value: object, where: str, offset: int | None, raw: bytes) -> str:
                     offset=offset,
                     raw=raw,
                 ) from None
+            return normalize_name(value, nfc)
         return value
     if isinstance(value, int | float) and not isinstance(value, bool):
         return str(value)
