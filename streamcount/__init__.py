@@ -6,7 +6,9 @@ Data flow (open the modules in this order to follow one order through the servic
     intake/formats   RecordBatch -> Decoded transactions (basket, JSON lines, CSV order lines);
                      bad records -> ParseError -> intake/deadletter
     pipeline         Decoded -> engine; at each pane close: rules and alerts -> sinks
-    engine/engine    guards, sequence numbers, batching into panes (count- or time-based)
+    catalogue        filters, renames, the catalogue file and its levels; reloads, history
+    engine/engine    guards, catalogue mapping (engine/taxonomy), sequence numbers, batching
+                     into panes (count- or time-based)
       engine/window  SlidingWindow: panes in order, expiry, warm-up, the split cache
       engine/pane    Pane: a counting summary + the buffer not yet counted (its exact overlay)
       engine/counters  LossySummary: itemset counts of one pane, vectorised on integer keys

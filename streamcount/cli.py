@@ -224,6 +224,12 @@ def build_parser() -> argparse.ArgumentParser:
     demo.add_argument("--listen", default="127.0.0.1:0", help="HTTP listener (default a free port)")
     demo.add_argument("--seed", type=int, default=7)
     demo.add_argument(
+        "--levels",
+        default="sku,product",
+        help="catalogue levels counted, comma-separated (items.levels): sku, product, "
+        "category (default sku,product; sku alone misses the planted product pattern)",
+    )
+    demo.add_argument(
         "--rate",
         type=float,
         default=None,

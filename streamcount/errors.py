@@ -5,7 +5,9 @@ One root, so a caller can catch everything streamcount raises with one clause::
     StreamcountError
      ├── ConfigError (also ValueError)      a config key or command-line value breaks a rule
      ├── InputError (also ValueError)       a record or file cannot be read as transactions
-     │    └── ParseError                    one record, with its source offset, raw bytes and reason
+     │    ├── ParseError                    one record, with its source offset, raw bytes and reason
+     │    └── CatalogueError                the catalogue file (items.catalogue) cannot be used;
+     │                                      names the file, line and column
      ├── CheckpointError                    a checkpoint is corrupt, of another version or settings
      └── SinkError                          an alert sink failed (counted, never fatal to counting)
 
@@ -20,6 +22,7 @@ import os
 
 __all__ = [
     "REASONS",
+    "CatalogueError",
     "CheckpointError",
     "ConfigError",
     "InputError",
@@ -48,6 +51,8 @@ REASONS: dict[str, str] = {
         "override or isolate (U+061C, U+200E, U+200F, U+202A-U+202E, U+2066-U+2069), which "
         "could disguise a name where it is shown"
     ),
+    "emptied_by_filter": "a transaction left with no items once items.ignore / items.allow "
+    "removed the ignored ones (e.g. an order holding only a delivery fee)",
 }
 
 
@@ -112,6 +117,36 @@ class ParseError(InputError):
         self.raw = raw
         where = f" at offset {offset}" if offset is not None else ""
         super().__init__(f"{reason}{where}: {detail}")
+
+
+class CatalogueError(InputError):
+    """A catalogue file (``items.catalogue``) that cannot be used: unreadable, not CSV, a
+    missing column, or a row that breaks a rule.
+
+    Attributes
+    ----------
+    path:
+        The file.
+    line, column:
+        1-based line of the file and 1-based field (column) of the row, or ``None`` when the
+        problem is the whole file (or the whole row).
+    problem:
+        What is wrong, as advice.
+    """
+
+    def __init__(
+        self, path: str, problem: str, *, line: int | None = None, column: int | None = None
+    ) -> None:
+        self.path = path
+        self.line = line
+        self.column = column
+        self.problem = problem
+        where = path
+        if line is not None:
+            where += f", line {line}"
+        if column is not None:
+            where += f", column {column}"
+        super().__init__(f"catalogue {where}: {problem}")
 
 
 class CheckpointError(StreamcountError):

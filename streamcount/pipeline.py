@@ -23,6 +23,12 @@ import numpy as np
 
 from streamcount.alerts.monitor import RuleMonitor
 from streamcount.alerts.sinks import Sink
+from streamcount.catalogue.state import (
+    CatalogueState,
+    ReloadOutcome,
+    catalogue_configured,
+    check_saved_levels,
+)
 from streamcount.config.settings import Config
 from streamcount.engine.engine import Engine
 from streamcount.engine.snapshot import WindowSnapshot
@@ -85,7 +91,16 @@ class Pipeline:
         self.config = config
         self.sinks = sinks
         self.clock = clock
-        self.engine = Engine(config.engine, on_pane_closed=self._on_pane_closed)
+        #: the catalogue in force (filters, renames, levels), or ``None`` when not configured;
+        #: a bad catalogue file raises CatalogueError here (file, line, column)
+        self.catalogue = (
+            CatalogueState(config.items, nfc=config.input.normalize == "nfc")
+            if catalogue_configured(config.items)
+            else None
+        )
+        self.engine = Engine(
+            config.engine, on_pane_closed=self._on_pane_closed, items=self._items()
+        )
         self.engine.on_remap = self._on_remap
         self.monitor = (
             RuleMonitor(
@@ -108,6 +123,31 @@ class Pipeline:
         self.closes = 0
         self._listeners: list[AlertListener] = []
         self._close_listeners: list[CloseListener] = []
+
+    # -- catalogue ----------------------------------------------------------------------------
+
+    def _items(self) -> Any:
+        return None if self.catalogue is None else self.catalogue.catalogue
+
+    def poll_catalogue(self) -> ReloadOutcome | None:
+        """Reload the catalogue when asked (``catalogue.requested``, set on SIGHUP) or when its
+        file changed; a new version maps items from the next transaction on, and what was
+        counted stays. ``None`` when nothing was tried."""
+        if self.catalogue is None:
+            return None
+        outcome = self.catalogue.poll(self.engine.next_seq)
+        if outcome is not None and outcome.changed:
+            self.engine.set_items(self.catalogue.catalogue)
+        return outcome
+
+    def catalogue_status(self) -> dict[str, Any] | None:
+        """The ``catalogue`` object of ``/v1/status`` (``None`` without a catalogue)."""
+        if self.catalogue is None:
+            return None
+        return self.catalogue.status(self._pane_spans())
+
+    def _pane_spans(self) -> list[tuple[int, int, int]]:
+        return [(p.index, *p.seq_range()) for p in self.engine.window.panes.values()]
 
     # -- intake -------------------------------------------------------------------------------
 
@@ -236,6 +276,7 @@ class Pipeline:
             "alert_counts": dict(self.alert_counts),
             "rejected_counts": dict(self.rejected_counts),
             "closes": self.closes,
+            "catalogue": None if self.catalogue is None else self.catalogue.state(),
         }
         return meta, arrays
 
@@ -246,9 +287,19 @@ class Pipeline:
         :class:`~streamcount.errors.CheckpointError`) when the state does not fit.
         """
         self.engine = Engine.from_state(
-            self.config.engine, meta["engine"], arrays, on_pane_closed=self._on_pane_closed
+            self.config.engine,
+            meta["engine"],
+            arrays,
+            on_pane_closed=self._on_pane_closed,
+            items=self._items(),
         )
         self.engine.on_remap = self._on_remap
+        if self.catalogue is not None:
+            self.catalogue.load_state(
+                meta.get("catalogue"), self.engine.next_seq, self._pane_spans()
+            )
+        else:
+            check_saved_levels(meta.get("catalogue"), self.config.items)
         if self.monitor is not None:
             self.monitor.load_state(meta.get("monitor") or {}, arrays)
         self.alert_history.clear()

@@ -32,7 +32,7 @@ def _service(tmp_path: Any = None, **changes: Any) -> Service:
             config, checkpoint=CheckpointConfig(checkpoint_dir=str(tmp_path / "ck"))
         )
     config = dataclasses.replace(config, **changes)
-    return Service(config, sources=[PacedFeedSource(demo_feed(7, ORDERS), 0)])
+    return Service(config, sources=[PacedFeedSource(demo_feed(7, ORDERS).transactions(), 0)])
 
 
 @pytest.fixture(scope="module")

@@ -151,6 +151,19 @@ _NATS_SUBJECT = re.compile(r"([^\s.*>]+|\*)(\.([^\s.*>]+|\*))*(\.>)?\Z|>\Z")
 
 
 _NON_EMPTY: _Check = (lambda v: v != "", "must not be empty")
+_NO_EMPTY_NAME: _Check = (lambda v: all(name.strip() for name in v), "must not hold an empty name")
+
+
+def _rename_problem(rules: tuple[str, ...]) -> str | None:
+    from streamcount.catalogue.rename import parse_rule  # the catalogue imports the settings
+
+    for i, text in enumerate(rules):
+        try:
+            parse_rule(text)
+        except ValueError as exc:
+            return f"rule {i} ({text!r}): {exc}"
+    return None
+
 
 KEY_RULES: dict[str, tuple[_Check, ...]] = {
     "input.source": (
@@ -238,6 +251,20 @@ KEY_RULES: dict[str, tuple[_Check, ...]] = {
     "input.nats.connect_timeout_seconds": (_above(0),),
     "input.nats.reconnect_wait_seconds": (_above(0),),
     "input.nats.max_reconnect_wait_seconds": (_above(0),),
+    "items.ignore": (_NO_EMPTY_NAME,),
+    "items.allow": (_NO_EMPTY_NAME,),
+    "items.rename": (
+        (
+            lambda v: all(" => " in rule for rule in v),
+            "each rule must read PATTERN => REPLACEMENT (spaces around =>), e.g. "
+            "'(.+)-(S|M|L) => \\1'",
+        ),
+    ),
+    "items.catalogue": (_NON_EMPTY,),
+    "items.level_columns": (_NO_EMPTY_NAME,),
+    "items.levels": (_NO_EMPTY_NAME,),
+    "items.display_name_suffix": (_NON_EMPTY,),
+    "items.reload_seconds": (_above(0),),
     "engine.epsilon": ((lambda v: 0 <= v < 1, "must be in [0, 1) (0 counts exactly)"),),
     "engine.max_itemset_size": ((lambda v: 1 <= v <= 8, "must be between 1 and 8"),),
     "engine.max_basket_items": (_at_least(1),),
@@ -256,6 +283,13 @@ KEY_RULES: dict[str, tuple[_Check, ...]] = {
     "rules.max_p_value": ((lambda v: 0 < v <= 1, "must be in (0, 1] (null turns the test off)"),),
     "rules.exit_ratio": ((lambda v: 0 < v <= 1, "must be in (0, 1]"),),
     "rules.max_rules": (_at_least(1),),
+    "rules.min_interest": (
+        _at_least(1),
+        (
+            lambda v: v <= 100,
+            "must be at most 100 (R of the R-interest measure; 1.1 is a usual value)",
+        ),
+    ),
     "alerts.false_alerts_per_million": (
         (
             lambda v: 0 < v <= 1e6,
@@ -387,6 +421,34 @@ def cross_checks(cfg: Config) -> None:
             cfg.rules.max_consequent_size,
             f"must be < engine.max_itemset_size ({eng.max_itemset_size}) "
             "so every rule keeps an antecedent",
+        )
+    items = cfg.items
+    problem = _rename_problem(items.rename)
+    if problem is not None:
+        _fail("items.rename", list(items.rename), problem)
+    unknown = [lv for lv in items.levels if lv not in items.level_columns]
+    if unknown:
+        _fail(
+            "items.levels",
+            list(items.levels),
+            f"{unknown} is not a catalogue column; choose from items.level_columns "
+            f"({list(items.level_columns)})",
+        )
+    order = [items.level_columns.index(lv) for lv in items.levels]
+    if order != sorted(order):
+        _fail(
+            "items.levels",
+            list(items.levels),
+            "list the levels most specific first, in the order of items.level_columns "
+            f"({list(items.level_columns)})",
+        )
+    if tuple(items.levels) != (items.level_columns[0],) and items.catalogue is None:
+        _fail(
+            "items.levels",
+            list(items.levels),
+            "counting levels other than "
+            f"{items.level_columns[0]!r} needs items.catalogue (the file that maps each "
+            f"{items.level_columns[0]} to its ancestors)",
         )
     hook = cfg.sinks.webhook
     if hook.max_backoff_seconds < hook.backoff_seconds:

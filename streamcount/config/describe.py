@@ -81,8 +81,17 @@ def describe(config: Config) -> str:
     if config.sinks.webhook.url:
         sinks.append("webhook")
     checkpoints = config.checkpoint.checkpoint_dir or "off"
+    items = config.items
+    catalogue = ""
+    if items.catalogue or items.ignore or items.allow is not None or items.rename:
+        parts = [f"levels {'+'.join(items.levels)}"]
+        if items.catalogue:
+            parts.insert(0, f"catalogue {items.catalogue}")
+        if items.ignore or items.allow is not None:
+            parts.append(f"{len(items.ignore)} ignore, {'an' if items.allow else 'no'} allow list")
+        catalogue = "; " + ", ".join(parts)
     return (
-        f"input {source} ({inp.format}); {window}; {error}; itemsets up to "
+        f"input {source} ({inp.format}){catalogue}; {window}; {error}; itemsets up to "
         f"{eng.max_itemset_size}; rules support>={rules.min_support:g} "
         f"confidence>={rules.min_confidence:g} lift>={rules.min_lift:g}; "
         f"sinks {', '.join(sinks) or 'none'}; server {config.server.listen or 'off'}; "

@@ -81,8 +81,10 @@ def _type_name(tp: Any) -> str:
     return "null" if tp is type(None) else getattr(tp, "__name__", str(tp))
 
 
-def _check_type(key: str, value: Any, hint: Any) -> Any:
-    """Return ``value`` as the annotated type (int -> float) or raise ConfigError."""
+def _check_type(key: str, value: Any, hint: Any, *, allow_empty: bool = False) -> Any:
+    """Return ``value`` as the annotated type (int -> float) or raise ConfigError.
+
+    ``allow_empty``: an empty list is a valid list of names (for keys whose default is one)."""
     if typing.get_origin(hint) in (typing.Union, types.UnionType):
         options = typing.get_args(hint)
     else:
@@ -98,7 +100,7 @@ def _check_type(key: str, value: Any, hint: Any) -> Any:
             items = [value] if isinstance(value, str) else value
             if not isinstance(items, list | tuple) or not all(isinstance(v, str) for v in items):
                 return _fail(key, value, "must be a name or a list of names")
-            if not items:
+            if not items and not allow_empty:
                 return _fail(key, value, "must name at least one")
             if len(set(items)) != len(items):
                 return _fail(key, value, "names each one once")
@@ -164,6 +166,7 @@ def _build(cls: type, data: object, prefix: str) -> Any:
         _fail(section, data, f"must be a mapping of keys to values ({cls.__name__})")
     hints = typing.get_type_hints(cls)
     names = [f.name for f in dataclasses.fields(cls)]
+    empty_ok = {f.name for f in dataclasses.fields(cls) if f.default == ()}
     for key in data:
         if not isinstance(key, str) or key not in names:
             path = f"{prefix}{key}"
@@ -179,7 +182,7 @@ def _build(cls: type, data: object, prefix: str) -> Any:
         if isinstance(hint, type) and dataclasses.is_dataclass(hint):
             values[name] = _build(hint, data[name], path + ".")
             continue
-        value = _check_type(path, data[name], hint)
+        value = _check_type(path, data[name], hint, allow_empty=name in empty_ok)
         if value is not None:
             if path in NORMALISE:
                 value = NORMALISE[path](value)

@@ -25,6 +25,7 @@ __all__ = [
     "EngineConfig",
     "HistoryConfig",
     "InputConfig",
+    "ItemsConfig",
     "JsonlConfig",
     "LoggingConfig",
     "MetricsConfig",
@@ -171,6 +172,33 @@ class EngineConfig:
 
 
 @dataclass(frozen=True, slots=True)
+class ItemsConfig:
+    """What counts as an item: filters, renames, the catalogue and the levels counted."""
+
+    #: items removed before counting: exact names, or case-sensitive glob patterns (``*``,
+    #: ``?``, ``[...]``); an item both allowed and ignored is ignored
+    ignore: tuple[str, ...] = ()
+    #: when set, only items matching one of these names or patterns are counted
+    allow: tuple[str, ...] | None = None
+    #: rename rules ``PATTERN => REPLACEMENT`` (Python regular expressions matching the whole
+    #: name; the first rule that matches applies), e.g. ``(.+)-(S|M|L) => \1``
+    rename: tuple[str, ...] = ()
+    #: the catalogue: a CSV file mapping each SKU to its ancestors (null: no catalogue)
+    catalogue: str | None = None
+    #: header names of the catalogue's hierarchy columns, most specific first; the ones the
+    #: file holds are its levels
+    level_columns: tuple[str, ...] = ("sku", "product", "category")
+    #: the levels counted, most specific first: one (SKUs, or products...) or several at once
+    #: (generalised itemsets: each order extended with the ancestors of its items)
+    levels: tuple[str, ...] = ("sku",)
+    #: a column named <level column><suffix> holds that level's display names
+    display_name_suffix: str = "_name"
+    #: seconds between looks at the catalogue file for a change (reloaded when it changed);
+    #: null: reload on SIGHUP only
+    reload_seconds: float | None = 5.0
+
+
+@dataclass(frozen=True, slots=True)
 class RulesConfig:
     """Association rules from the window's frequent itemsets, and when they are active."""
 
@@ -191,6 +219,11 @@ class RulesConfig:
     exit_ratio: float = 0.8
     #: cap on rules kept per evaluation (highest lift first)
     max_rules: int = 1000
+    #: R of the R-interest measure for rules across catalogue levels: a rule is dropped when
+    #: its support is below R times what its closest ancestor rule predicts (judged on the
+    #: intervals: only when the upper bound is below R x the expected lower bound); null: keep
+    #: every rule. Has an effect only with several items.levels.
+    min_interest: float | None = 1.1
 
 
 @dataclass(frozen=True, slots=True)
@@ -317,6 +350,7 @@ class Config:
     """The whole validated configuration."""
 
     input: InputConfig = field(default_factory=InputConfig)
+    items: ItemsConfig = field(default_factory=ItemsConfig)
     engine: EngineConfig = field(default_factory=EngineConfig)
     rules: RulesConfig = field(default_factory=RulesConfig)
     alerts: AlertsConfig = field(default_factory=AlertsConfig)

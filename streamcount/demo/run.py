@@ -6,7 +6,15 @@ generator (:mod:`streamcount.demo.generator`) with two planted changes the demo 
 * from the start, a bundle (``chai-spice-mix`` with ``stoneware-mug``) sells together; at
   transaction 9,000 the mugs go out of stock and the pattern stops: a ``faded`` alert;
 * at transaction 7,000 a promotion on ``sourdough-starter-jar`` starts pulling an unplanned
-  companion, ``bread-scoring-blade``: ``surged`` and ``emerged`` alerts.
+  companion, ``bread-scoring-blade``: ``surged`` and ``emerged`` alerts;
+* from transaction 10,000 a wool throw and a beeswax candle sell together, each in any of its
+  colours or scents (:mod:`streamcount.demo.skus`): a pattern between *products* that no pair
+  of SKUs shows. With the product level counted (``--levels sku,product``, the default) it is
+  found; with ``--levels sku`` it goes unseen.
+
+Orders are sold as SKUs and most hold a delivery fee line, which the demo's ``items.ignore``
+removes before counting; the catalogue file (SKU -> product -> category, with display names)
+is written to a temporary directory for the run.
 
 Everything else is the real thing: the engine, rules, alerts, sinks, the HTTP listener with
 ``/metrics`` and the JSON API. The feed is paced to finish in ``--duration`` seconds (45 by
@@ -18,10 +26,12 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+import tempfile
 import threading
 import time
 from collections import Counter
-from collections.abc import Iterator, Mapping
+from collections.abc import Iterable, Iterator, Mapping, Sequence
+from pathlib import Path
 from typing import Any, TextIO
 
 from streamcount.alerts.sinks import SinkStats
@@ -31,15 +41,25 @@ from streamcount.config.settings import (
     Config,
     EngineConfig,
     InputConfig,
+    ItemsConfig,
     RulesConfig,
     ServerConfig,
     SinksConfig,
 )
 from streamcount.demo.generator import Drift, GeneratorParams, SyntheticFeed
 from streamcount.demo.shop import SHOP_NAME
+from streamcount.demo.skus import EVENING, EVENING_START, FEE, SkuFeed, write_catalogue
 from streamcount.intake.records import RecordBatch, SourceHealth
 
-__all__ = ["BUNDLE", "DEMO_TRANSACTIONS", "PROMOTION", "demo_config", "demo_main"]
+__all__ = [
+    "BUNDLE",
+    "DEMO_LEVELS",
+    "DEMO_TRANSACTIONS",
+    "PROMOTION",
+    "demo_config",
+    "demo_main",
+    "demo_orders",
+]
 
 #: planted patterns: (items, first transaction, first transaction without it)
 BUNDLE = ("chai-spice-mix", "stoneware-mug")
@@ -48,6 +68,8 @@ BUNDLE_STOP = 9000
 PROMOTION_START = 7000
 DEMO_TRANSACTIONS = 16000
 _DRIFT_RATE = 0.08
+#: the levels the demo counts unless told otherwise (--levels)
+DEMO_LEVELS: tuple[str, ...] = ("sku", "product")
 
 
 def demo_feed(seed: int, transactions: int | None) -> SyntheticFeed:
@@ -67,10 +89,27 @@ def demo_feed(seed: int, transactions: int | None) -> SyntheticFeed:
     return SyntheticFeed(params, drifts)
 
 
-def demo_config(listen: str | None) -> Config:
-    """Settings sized for the demo: a 6,000-order window in panes of 500."""
+def demo_orders(seed: int, transactions: int | None) -> Iterable[tuple[str, ...]]:
+    """The demo shop's orders as its log holds them: SKUs, fee lines, the planted patterns."""
+    return SkuFeed(demo_feed(seed, transactions).transactions(), seed)
+
+
+def demo_config(
+    listen: str | None,
+    catalogue: str | None = None,
+    levels: Sequence[str] = DEMO_LEVELS,
+) -> Config:
+    """Settings sized for the demo: a 6,000-order window in panes of 500; the fee line
+    ignored; with ``catalogue`` (the file :func:`~streamcount.demo.skus.write_catalogue`
+    writes) the ``levels`` counted."""
     return Config(
         input=InputConfig(path=None, format="jsonl", dead_letter_path=None),
+        items=ItemsConfig(
+            ignore=("fee:*",),
+            catalogue=catalogue,
+            levels=tuple(levels) if catalogue is not None else ("sku",),
+            reload_seconds=None,
+        ),
         engine=EngineConfig(
             epsilon=0.002, max_itemset_size=3, window_size=6000, pane_size=500, batch_size=500
         ),
@@ -96,8 +135,10 @@ class PacedFeedSource:
     name = "demo"
     ingest = None
 
-    def __init__(self, feed: SyntheticFeed, rate: float, *, clock: Any = time.monotonic) -> None:
-        self._it: Iterator[tuple[str, ...]] = feed.transactions()
+    def __init__(
+        self, orders: Iterable[tuple[str, ...]], rate: float, *, clock: Any = time.monotonic
+    ) -> None:
+        self._it: Iterator[tuple[str, ...]] = iter(orders)
         self.rate = rate
         self.clock = clock
         self.started = clock()
@@ -233,8 +274,11 @@ def demo_main(args: argparse.Namespace) -> int:
         rate = DEMO_TRANSACTIONS / max(args.duration, 0.5)
     else:
         rate = max(0.0, args.rate)  # 0: as fast as the machine goes
-    config = demo_config(args.listen)
-    source = PacedFeedSource(demo_feed(args.seed, total), rate)
+    levels = tuple(lv.strip() for lv in str(args.levels).split(",") if lv.strip())
+    workdir = tempfile.TemporaryDirectory(prefix="streamcount-demo-")
+    catalogue = write_catalogue(Path(workdir.name) / "catalogue.csv")
+    config = demo_config(args.listen, str(catalogue), levels)
+    source = PacedFeedSource(demo_orders(args.seed, total), rate)
     console = ConsoleSink(out, as_json=args.json, status_line=tty)
     service = Service(config, sources=[source], extra_sinks=(console,))
     bound = service.start_server()
@@ -243,7 +287,17 @@ def demo_main(args: argparse.Namespace) -> int:
     say(f"{SHOP_NAME}: live order feed, {pace} (invented shop, generated data)")
     say(
         f"Planted: {' + '.join(BUNDLE)} sold together until order {BUNDLE_STOP:,}; a promotion "
-        f"pulls {' + '.join(PROMOTION)} from order {PROMOTION_START:,}."
+        f"pulls {' + '.join(PROMOTION)} from order {PROMOTION_START:,}; from order "
+        f"{EVENING_START:,}, {' + '.join(EVENING)} in any colour or scent (a pattern between "
+        "products, not SKUs)."
+    )
+    say(
+        f"Levels counted: {' + '.join(config.items.levels)}; the {FEE} line is ignored. "
+        + (
+            "(--levels sku counts SKUs only: the product pattern then goes unseen.)"
+            if "product" in config.items.levels
+            else "(--levels sku,product counts products too: the product pattern shows.)"
+        )
     )
     if bound:
         base = f"http://{bound[0]}:{bound[1]}"
@@ -269,7 +323,10 @@ def demo_main(args: argparse.Namespace) -> int:
                 print(line)
         return True
 
-    service.run(on_turn=on_turn, turn_timeout=0.05)
+    try:
+        service.run(on_turn=on_turn, turn_timeout=0.05)
+    finally:
+        workdir.cleanup()
     if tty:
         out.write("\r\033[K")
     _summary(service, console, time.monotonic() - started, say)
@@ -300,11 +357,23 @@ def _summary(service: Any, console: ConsoleSink, elapsed: float, say: Any) -> No
     rules = service.api.rules("lift", 5, None, None, None)["rules"]
     if rules:
         say("Active rules now (top 5 by lift):")
+        taxonomy = service.api.view.window.taxonomy
+        names = service.api.view.window.item_names
+        index = {name: i for i, name in enumerate(names)}
+
+        def shown(items: list[str]) -> str:
+            # a product or category is marked with its level; SKUs are shown as they are
+            out = []
+            for item in items:
+                level = None if taxonomy is None else taxonomy.level_of(index.get(item, -1))
+                out.append(f"{item} [{level}]" if level not in (None, "sku") else item)
+            return " + ".join(out)
+
         for r in rules:
             lift = r["measures"]["lift"] if "measures" in r else r["lift"]
             conf = r["measures"]["confidence"] if "measures" in r else r["confidence"]
             say(
-                f"  {' + '.join(r['antecedent'])} => {' + '.join(r['consequent'])}: "
+                f"  {shown(r['antecedent'])} => {shown(r['consequent'])}: "
                 f"lift {lift['value']:.2f}, confidence {100 * conf['value']:.0f}%"
             )
     say("Alerts are signals for a person to review, not decisions on prices, stock or fraud holds.")

@@ -43,9 +43,9 @@ from typing import Protocol
 
 import numpy as np
 
-from streamcount.engine.keys import combination_table, fits_int64, lookup, pack, unpack
+from streamcount.engine.keys import PairSet, combination_table, fits_int64, lookup, pack, unpack
 
-__all__ = ["Level", "LossySummary", "Summary", "bucket_width"]
+__all__ = ["Level", "LossySummary", "Summary", "bucket_width", "drop_excluded_pairs"]
 
 # Rows of combinations materialised at once while enumerating a batch (bounds peak memory:
 # about 8 bytes x k per row plus the packed key).
@@ -159,6 +159,9 @@ class LossySummary:
         true count of this summary's ``n`` transactions (exactly: ``<= ceil(n / w)``).
     max_itemset_size:
         Largest itemset size counted (K).
+    excluded_pairs:
+        Pairs of item ids never counted (an item with one of its catalogue ancestors, see
+        :func:`drop_excluded_pairs`); shared with the engine, which updates it. ``None``: none.
 
     Examples
     --------
@@ -176,11 +179,14 @@ class LossySummary:
     Manku, G. S. & Motwani, R. (2002). Approximate Frequency Counts over Data Streams. VLDB.
     """
 
-    __slots__ = ("_levels", "epsilon", "max_itemset_size", "n", "width")
+    __slots__ = ("_levels", "epsilon", "excluded_pairs", "max_itemset_size", "n", "width")
 
-    def __init__(self, epsilon: float, max_itemset_size: int) -> None:
+    def __init__(
+        self, epsilon: float, max_itemset_size: int, excluded_pairs: PairSet | None = None
+    ) -> None:
         if max_itemset_size < 1:
             raise ValueError(f"max_itemset_size = {max_itemset_size!r}: must be >= 1")
+        self.excluded_pairs = excluded_pairs
         self.epsilon = float(epsilon)
         self.width = bucket_width(epsilon)
         self.max_itemset_size = int(max_itemset_size)
@@ -304,11 +310,20 @@ class LossySummary:
                 cur_txn = cur_txn[sel]
             membership = _Membership(prev_keys, m, k - 1)
             batch_keys, batch_counts = _count_combinations(cur_items, cur_txn, t, k, m, membership)
+            excluding = k == 2 and self.excluded_pairs is not None and len(self.excluded_pairs) > 0
+            if excluding:
+                assert self.excluded_pairs is not None
+                batch_keys, batch_counts = drop_excluded_pairs(
+                    batch_keys, batch_counts, survivors, m, self.excluded_pairs
+                )
 
             # tracked entries: to local ids; drop those with a pruned item or subset
             if len(old):
                 loc_rows = local[old.items] if old.items.size else old.items.astype(np.int64)
                 ok = np.asarray((loc_rows >= 0).all(axis=1))
+                if excluding:  # pairs excluded since they were counted (a catalogue reload)
+                    assert self.excluded_pairs is not None
+                    ok &= ~self.excluded_pairs.contains(old.items[:, 0], old.items[:, 1])
                 loc_rows = np.where(ok[:, None], loc_rows, 0)
                 ok &= membership.all_subsets_present(loc_rows)
                 old_keys = _pack_local(loc_rows[ok], m)
@@ -355,8 +370,9 @@ class LossySummary:
         n: int,
         arrays: dict[str, np.ndarray],
         prefix: str,
+        excluded_pairs: PairSet | None = None,
     ) -> LossySummary:
-        s = cls(epsilon, max_itemset_size)
+        s = cls(epsilon, max_itemset_size, excluded_pairs)
         s.n = int(n)
         for k in range(1, max_itemset_size + 1):
             s._levels[k - 1] = Level(
@@ -412,6 +428,37 @@ class LossySummary:
                     else:
                         ok = False
                     assert ok, f"L{k}: an itemset has an untracked subset (not downward closed)"
+
+
+def drop_excluded_pairs(
+    keys: np.ndarray, counts: np.ndarray, survivors: np.ndarray, m: int, excluded: PairSet
+) -> tuple[np.ndarray, np.ndarray]:
+    """A batch's level-2 counts without the pairs in ``excluded``.
+
+    Applied to the batch's pair counts before they update tracked entries or insert new ones
+    (tracked pairs that became excluded since they were counted, after a catalogue reload, are
+    deleted in the same batch). ``keys`` are pairs packed in the batch-local radix ``m``
+    (``a * m + b``, ``a < b`` local ids) and ``survivors[a]`` is the item id of local id ``a``.
+    A pair dropped here stays untracked, so Apriori pruning keeps every larger itemset holding
+    it out too: with ``excluded`` the pairs of an item and one of its catalogue ancestors, no
+    tracked itemset holds an item together with its own ancestor (Srikant & Agrawal, VLDB
+    1995). Cost: one sorted look-up per key, O(n log |excluded|).
+
+    >>> pairs = PairSet()
+    >>> pairs.replace(np.array([10]), np.array([30]))  # item 10's ancestor is item 30
+    >>> survivors = np.array([10, 20, 30])  # local ids 0, 1, 2
+    >>> keys = np.array([0 * 3 + 1, 0 * 3 + 2, 1 * 3 + 2])  # (10, 20), (10, 30), (20, 30)
+    >>> kept, counts = drop_excluded_pairs(keys, np.array([4, 9, 2]), survivors, 3, pairs)
+    >>> kept.tolist(), counts.tolist()
+    ([1, 5], [4, 2])
+    """
+    if keys.shape[0] == 0 or not len(excluded):
+        return keys, counts
+    radix = max(m, 1)
+    a = survivors[keys // radix]
+    b = survivors[keys % radix]
+    keep = ~excluded.contains(a, b)
+    return keys[keep], counts[keep]
 
 
 # ---- private helpers ------------------------------------------------------------------------

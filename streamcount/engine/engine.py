@@ -3,7 +3,10 @@
 Flow of one call to :meth:`Engine.add`::
 
     baskets (lists of item names)
-      -> guard: empty / too many distinct items / missing or too-late timestamp -> rejected
+      -> guard: empty / too many distinct items -> rejected
+      -> with a catalogue: names -> ids, then each id to the ids it counts as (filters,
+         renames, levels: engine/taxonomy); a basket left empty -> rejected (emptied_by_filter)
+      -> guard: missing or too-late timestamp -> rejected
       -> vocabulary: names -> int32 ids; sort + de-duplicate within each basket (vectorised)
       -> sequence numbers 1, 2, ... for accepted transactions, in arrival order
       -> route to panes (count-based: ``(seq-1) // pane_size``; time-based:
@@ -33,6 +36,7 @@ from streamcount.config.settings import MAX_TIMESTAMP, EngineConfig
 from streamcount.engine.counters import bucket_width
 from streamcount.engine.pane import Pane
 from streamcount.engine.snapshot import EngineStatistics, WindowSnapshot
+from streamcount.engine.taxonomy import ItemResolver, ItemTables
 from streamcount.engine.vocab import ItemVocabulary
 from streamcount.engine.window import SlidingWindow
 
@@ -73,6 +77,13 @@ class Engine:
         ``pane_size`` or ``window_seconds`` / ``pane_seconds``, ...).
     on_pane_closed:
         Called with the engine right after a pane is closed and counted.
+    items:
+        The catalogue (filters, renames, levels; :mod:`streamcount.catalogue`), or ``None``
+        to count every item as read. With several levels each transaction is extended with
+        the ancestors of its items and no itemset holding an item with its own ancestor is
+        counted (generalised itemsets, Srikant & Agrawal 1995); the guarantee below holds for
+        every other itemset of the extended transactions. ``max_basket_items`` applies to
+        the basket as read, before the ancestors are added.
 
     Guarantee (for every itemset of size ``1..max_itemset_size`` and the window's
     transactions ``first_seq..last_seq``): ``count <= true <= upper`` and
@@ -99,6 +110,7 @@ class Engine:
         config: EngineConfig,
         *,
         on_pane_closed: Callable[[Engine], None] | None = None,
+        items: ItemResolver | None = None,
     ) -> None:
         # the same rules as a config file (a ConfigError names the engine.* key)
         config_from_mapping({"engine": dataclasses.asdict(config)}, source="EngineConfig")
@@ -123,11 +135,14 @@ class Engine:
         w = self.width
         self.batch_size = max(w, (int(config.batch_size) // w) * w) if w else int(config.batch_size)
         self.vocabulary = ItemVocabulary()
+        #: the catalogue's answers per item id (``None``: items are counted as read)
+        self.items = ItemTables(items) if items is not None else None
         self.window = SlidingWindow(
             self.window_panes,
             epsilon=self.epsilon,
             max_itemset_size=self.max_itemset_size,
             pane_size=self.pane_size,
+            excluded_pairs=self.items.excluded if self.items is not None else None,
         )
         self.next_seq = 1
         self.transactions_seen = 0
@@ -152,7 +167,8 @@ class Engine:
 
         Rejected (and reported in the result, with the index into ``baskets``): empty
         baskets (``empty``), more distinct items than ``max_basket_items``
-        (``too_many_items``), and for a time-based window a missing timestamp
+        (``too_many_items``), baskets whose every item a filter removes
+        (``emptied_by_filter``), and for a time-based window a missing timestamp
         (``missing_field``) or one whose pane already closed (``too_late``).
         Cost: O(items log items) vectorised, plus counting when a batch fills.
         """
@@ -177,6 +193,7 @@ class Engine:
                         "raise max_basket_items to count such baskets",
                     )
                 )
+        mapped = self._map_items(baskets, ok, rejections) if self.items is not None else None
         ts = np.full(t, np.nan)
         if timestamps is not None:
             ts = np.array(timestamps, dtype=np.float64)  # None becomes NaN
@@ -225,8 +242,11 @@ class Engine:
                 )
             ok &= ~late
         keep = np.flatnonzero(ok)
-        kept = [baskets[i] for i in keep.tolist()] if keep.shape[0] != t else baskets
-        flat, lengths = self.vocabulary.encode_baskets(kept)
+        if mapped is not None:
+            flat, lengths = _take_rows(*mapped, keep)
+        else:
+            kept = [baskets[i] for i in keep.tolist()] if keep.shape[0] != t else baskets
+            flat, lengths = self.vocabulary.encode_baskets(kept)
         flat, lengths = _sort_dedupe(flat, lengths, len(self.vocabulary))
         n_ok = int(lengths.shape[0])
         seq = np.arange(self.next_seq, self.next_seq + n_ok, dtype=np.int64)
@@ -246,6 +266,36 @@ class Engine:
         self.rejected.update(by_reason)
         rejections.sort(key=lambda r: r.index)
         return AddResult(n_ok, tuple(rejections), closes, self.next_seq - 1, dict(by_reason))
+
+    def _map_items(
+        self, baskets: Sequence[Sequence[str]], ok: np.ndarray, rejections: list[Rejection]
+    ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Map the baskets still ``ok`` through the catalogue; clears ``ok`` for the ones the
+        filters empty. Returns ``(rows, flat, lengths)``: the rows mapped and their CSR."""
+        assert self.items is not None
+        rows = np.flatnonzero(ok)
+        flat, lengths = self.vocabulary.encode_baskets([baskets[i] for i in rows.tolist()])
+        self.items.sync(self.vocabulary)
+        flat, lengths = self.items.expand(flat, lengths)
+        emptied = lengths == 0
+        for i in rows[emptied].tolist():
+            rejections.append(
+                Rejection(
+                    i,
+                    "emptied_by_filter",
+                    "every item of the transaction is removed by items.ignore / items.allow",
+                )
+            )
+        ok[rows[emptied]] = False
+        return rows, flat, lengths
+
+    def set_items(self, items: ItemResolver) -> None:
+        """Map items with another catalogue version from the next transaction on; what was
+        counted stays as it was counted. Needs an engine built with a catalogue."""
+        if self.items is None:
+            raise ValueError("this engine was built without a catalogue (items=None)")
+        self.items.reset(items)
+        self.items.sync(self.vocabulary)
 
     def _route_count(
         self, flat: np.ndarray, lengths: np.ndarray, seq: np.ndarray, ts: np.ndarray
@@ -362,6 +412,8 @@ class Engine:
         """
         size = len(self.vocabulary)
         used = self.window.ids_in_use(size)
+        if self.items is not None:  # ancestors an item maps to are never released
+            used |= self.items.pinned_mask(size)
         if self.pinned is not None:
             for name in self.pinned():
                 item = self.vocabulary.get(name)
@@ -374,6 +426,8 @@ class Engine:
             return None
         mapping = self.vocabulary.compact(used)
         self.window.remap(mapping)
+        if self.items is not None:
+            self.items.remap(mapping, self.vocabulary)
         if self.on_remap is not None:
             self.on_remap(mapping)
         return mapping
@@ -416,18 +470,21 @@ class Engine:
         ``skip_newest=r`` leaves them out (a baseline that excludes the recent window).
         Cost: one sort over the panes' tracked entries per itemset size.
         """
-        return self.window.snapshot(self.vocabulary.names, newest=newest, skip_newest=skip_newest)
+        return self._tag(
+            self.window.snapshot(self.vocabulary.names, newest=newest, skip_newest=skip_newest)
+        )
 
     def fresh_snapshot(self) -> WindowSnapshot:
         """The window with every buffered transaction added as an exact overlay (what the
         API and replay report); see :meth:`SlidingWindow.fresh_snapshot`."""
-        return self.window.fresh_snapshot(self.vocabulary.names)
+        return self._tag(self.window.fresh_snapshot(self.vocabulary.names))
 
     def split_snapshot(
         self, recent_panes: int
     ) -> tuple[WindowSnapshot, WindowSnapshot, WindowSnapshot]:
         """``(window, recent, baseline)``; see :meth:`SlidingWindow.split_snapshot`."""
-        return self.window.split_snapshot(self.vocabulary.names, recent_panes)
+        window, recent, baseline = self.window.split_snapshot(self.vocabulary.names, recent_panes)
+        return self._tag(window), self._tag(recent), self._tag(baseline)
 
     @property
     def window_full(self) -> bool:
@@ -436,7 +493,13 @@ class Engine:
 
     def pane_snapshot(self, pane: Pane) -> WindowSnapshot:
         """Frozen counts of one pane's counted transactions."""
-        return self.window.pane_snapshot(self.vocabulary.names, pane)
+        return self._tag(self.window.pane_snapshot(self.vocabulary.names, pane))
+
+    def _tag(self, snapshot: WindowSnapshot) -> WindowSnapshot:
+        """The snapshot with the catalogue in force attached (levels, ancestors, names)."""
+        if self.items is None:
+            return snapshot
+        return dataclasses.replace(snapshot, taxonomy=self.items.view())
 
     def pane_start_time(self, pane: Pane) -> float | None:
         """When a pane starts: its time span's start (time-based), or its first event time."""
@@ -461,11 +524,16 @@ class Engine:
             buffered_transactions=win.buffered,
             max_event_ts=self.max_event_ts,
             vocabulary_items=len(self.vocabulary),
+            items_ignored={} if self.items is None else self.items.ignored_by_label(),
+            items_unknown=0 if self.items is None else self.items.unknown,
+            items_unknown_distinct=0 if self.items is None else self.items.unknown_distinct,
         )
 
     def check_invariants(self) -> None:
         """Assert the engine's invariants (panes, sequence numbers, window span)."""
         self.window.check_invariants(vocabulary_size=len(self.vocabulary))
+        if self.items is not None:
+            self.items.check_invariants(len(self.vocabulary))
         total = sum(p.counted + p.buffered for p in self.window.panes.values())
         assert total <= self.transactions_seen, "more transactions held than seen"
 
@@ -498,9 +566,13 @@ class Engine:
         arrays: dict[str, np.ndarray],
         *,
         on_pane_closed: Callable[[Engine], None] | None = None,
+        items: ItemResolver | None = None,
     ) -> Engine:
-        """Rebuild an engine saved by :meth:`state`; every estimate is identical afterwards."""
-        eng = cls(config, on_pane_closed=on_pane_closed)
+        """Rebuild an engine saved by :meth:`state`; every estimate is identical afterwards.
+
+        ``items`` is the catalogue to map items with from now on (it may be a newer version
+        than the one the saved panes were counted under)."""
+        eng = cls(config, on_pane_closed=on_pane_closed, items=items)
         if meta.get("state_version") != STATE_VERSION:
             raise ValueError(
                 f"engine state version {meta.get('state_version')!r} is not {STATE_VERSION}"
@@ -512,12 +584,29 @@ class Engine:
                     f"{getattr(eng, key)!r}"
                 )
         eng.vocabulary = ItemVocabulary.from_arrays(arrays)
+        if eng.items is not None:
+            eng.items.sync(eng.vocabulary)
         eng.next_seq = int(meta["next_seq"])
         eng.transactions_seen = int(meta["transactions_seen"])
         eng.rejected = Counter(meta["rejected"])
         eng.max_event_ts = meta["max_event_ts"]
         eng.window.load_state(meta["window"], arrays)
         return eng
+
+
+def _take_rows(
+    rows: np.ndarray, flat: np.ndarray, lengths: np.ndarray, keep: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """The CSR ``flat``/``lengths`` of ``rows`` (ascending) restricted to the rows ``keep``
+    (ascending, a subset of ``rows``)."""
+    if keep.shape[0] == rows.shape[0]:
+        return flat, lengths
+    which = np.searchsorted(rows, keep)
+    ends = np.cumsum(lengths)
+    sel = lengths[which]
+    starts = ends[which] - sel
+    take = np.repeat(starts - (np.cumsum(sel) - sel), sel) + np.arange(int(sel.sum()))
+    return flat[take], sel
 
 
 def _sort_dedupe(

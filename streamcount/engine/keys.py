@@ -16,7 +16,15 @@ from itertools import combinations
 
 import numpy as np
 
-__all__ = ["combination_table", "fits_int64", "lookup", "pack", "unique_with_sum", "unpack"]
+__all__ = [
+    "PairSet",
+    "combination_table",
+    "fits_int64",
+    "lookup",
+    "pack",
+    "unique_with_sum",
+    "unpack",
+]
 
 _INT64_LIMIT = 2**63
 
@@ -113,3 +121,76 @@ def combination_table(length: int, size: int) -> np.ndarray:
     table = table.reshape(-1, size)
     table.setflags(write=False)
     return table
+
+
+class PairSet:
+    """A set of unordered pairs of item ids, shared by reference: its owner calls
+    :meth:`replace` when the set changes, and every reader sees the new set from its next use.
+
+    It holds the pairs no summary may count: an item with one of its own ancestors in a
+    catalogue (Srikant & Agrawal 1995 drop such itemsets; their count equals the item's). Held
+    as a padded table, row ``i`` listing the ids paired with ``i`` (each pair once, under the
+    id given first), so a membership test is a gather and a compare per pair, no search: the
+    table is narrow when each item has few partners (an item's ancestors). Memory: 4 bytes x
+    (largest id + 1) x (most partners of one id).
+
+    >>> pairs = PairSet()
+    >>> pairs.replace(np.array([2, 5]), np.array([0, 2]))
+    >>> pairs.contains(np.array([0, 2, 5, 9]), np.array([2, 5, 0, 2])).tolist()
+    [True, True, False, False]
+    >>> len(pairs)
+    2
+    """
+
+    __slots__ = ("_columns", "_count", "partners")
+
+    def __init__(self) -> None:
+        self.partners: np.ndarray = np.full((0, 0), -1, dtype=np.int32)
+        self._columns: tuple[np.ndarray, ...] = ()
+        self._count = 0
+
+    def __len__(self) -> int:
+        return self._count
+
+    def replace(self, a: np.ndarray, b: np.ndarray) -> None:
+        """Hold exactly the pairs ``(a[i], b[i])``. Give each pair under the id with fewer
+        partners first (an item before its ancestor) to keep the table narrow."""
+        a = np.asarray(a, dtype=np.int64)
+        b = np.asarray(b, dtype=np.int64)
+        keep = a != b
+        a, b = a[keep], b[keep]
+        if a.size:  # repeats merged; a pair stays under the id given first
+            radix = int(max(a.max(), b.max())) + 1
+            key = np.unique(a * radix + b)
+            a, b = key // radix, key % radix
+        self._count = int(a.shape[0])
+        if not self._count:
+            self.partners = np.full((0, 0), -1, dtype=np.int32)
+            self._columns = ()
+            return
+        order = np.argsort(a, kind="stable")
+        a, b = a[order], b[order]
+        starts = np.flatnonzero(np.concatenate(([True], a[1:] != a[:-1])))
+        run = np.diff(np.append(starts, a.shape[0]))
+        column = np.arange(a.shape[0]) - np.repeat(starts, run)
+        # one row per id up to the largest one in a pair, plus an empty last row that every
+        # larger id reads (so a look-up is one gather, with no mask)
+        size = int(max(a.max(), b.max())) + 1
+        table = np.full((size + 1, int(run.max())), -1, dtype=np.int32)
+        table[a, column] = b
+        self.partners = table
+        self._columns = tuple(np.ascontiguousarray(table[:, c]) for c in range(table.shape[1]))
+
+    def contains(self, a: np.ndarray, b: np.ndarray) -> np.ndarray:
+        """Whether each pair ``(a[i], b[i])`` is in the set (bool array). Cost: O(n x width)."""
+        a = np.asarray(a)
+        b = np.asarray(b)
+        out = np.zeros(a.shape[0], dtype=bool)
+        last = self.partners.shape[0] - 1
+        if last < 0:
+            return out
+        row_a, row_b = np.minimum(a, last), np.minimum(b, last)
+        for column in self._columns:  # 1-d gathers: several times faster than row slices
+            out |= column[row_a] == b
+            out |= column[row_b] == a
+        return out

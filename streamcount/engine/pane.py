@@ -15,6 +15,7 @@ from typing import Any
 import numpy as np
 
 from streamcount.engine.counters import LossySummary, Summary
+from streamcount.engine.keys import PairSet
 
 __all__ = ["Pane"]
 
@@ -41,6 +42,7 @@ class Pane:
         "_exact",
         "buffered",
         "closed",
+        "excluded_pairs",
         "first_seq",
         "index",
         "last_seq",
@@ -49,9 +51,17 @@ class Pane:
         "summary",
     )
 
-    def __init__(self, index: int, epsilon: float, max_itemset_size: int) -> None:
+    def __init__(
+        self,
+        index: int,
+        epsilon: float,
+        max_itemset_size: int,
+        excluded_pairs: PairSet | None = None,
+    ) -> None:
         self.index = int(index)
-        self.summary: Summary = LossySummary(epsilon, max_itemset_size)
+        #: item pairs never counted (an item with its own catalogue ancestor), or ``None``
+        self.excluded_pairs = excluded_pairs
+        self.summary: Summary = LossySummary(epsilon, max_itemset_size, excluded_pairs)
         self.closed = False
         self.first_seq = 0  # of counted transactions; 0 while none
         self.last_seq = 0
@@ -71,6 +81,17 @@ class Pane:
     @property
     def absent_bound(self) -> int:
         return self.summary.b_current
+
+    def seq_range(self) -> tuple[int, int]:
+        """``(first, last)`` sequence numbers of the pane's transactions, counted or still
+        buffered; ``(0, 0)`` when it holds none."""
+        lo, hi = self.first_seq, self.last_seq
+        if self.buffered:
+            b_lo = min(int(s.min()) for s in self._buf_seq if s.size)
+            b_hi = max(int(s.max()) for s in self._buf_seq if s.size)
+            lo = b_lo if lo == 0 else min(lo, b_lo)
+            hi = max(hi, b_hi)
+        return lo, hi
 
     @property
     def nbytes(self) -> int:
@@ -97,7 +118,7 @@ class Pane:
         if not self.buffered:
             return None
         if self._exact is None or self._exact.counted != self.buffered:
-            exact = Pane(self.index, 0.0, len(self.summary.levels))
+            exact = Pane(self.index, 0.0, len(self.summary.levels), self.excluded_pairs)
             exact.append(
                 np.concatenate(self._buf_flat),
                 np.concatenate(self._buf_len),
@@ -192,10 +213,11 @@ class Pane:
         prefix: str,
         epsilon: float,
         max_itemset_size: int,
+        excluded_pairs: PairSet | None = None,
     ) -> Pane:
-        pane = cls(int(meta["index"]), epsilon, max_itemset_size)
+        pane = cls(int(meta["index"]), epsilon, max_itemset_size, excluded_pairs)
         pane.summary = LossySummary.from_arrays(
-            epsilon, max_itemset_size, int(meta["n"]), arrays, prefix
+            epsilon, max_itemset_size, int(meta["n"]), arrays, prefix, excluded_pairs
         )
         pane.closed = bool(meta["closed"])
         pane.first_seq = int(meta["first_seq"])

@@ -21,6 +21,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from streamcount.engine.keys import lookup, pack
+from streamcount.engine.taxonomy import ItemTaxonomy
 
 __all__ = ["EngineStatistics", "FrequentItemset", "LevelCounts", "WindowSnapshot"]
 
@@ -107,6 +108,9 @@ class WindowSnapshot:
         snapshot uses, so what the snapshot reads never changes.
     first_ts, last_ts:
         Smallest and largest event timestamp in the span (``None`` without timestamps).
+    taxonomy:
+        The catalogue in force (each item's level, ancestors and display name), or ``None``
+        when no catalogue is configured.
     """
 
     first_seq: int
@@ -120,6 +124,7 @@ class WindowSnapshot:
     item_names: Sequence[str]
     first_ts: float | None = None
     last_ts: float | None = None
+    taxonomy: ItemTaxonomy | None = None
     #: packed keys of each level, computed on first use (a cache, not part of the value)
     _keys: dict[int, tuple[int, np.ndarray]] = field(
         default_factory=dict, init=False, repr=False, compare=False
@@ -243,3 +248,9 @@ class EngineStatistics:
     max_event_ts: float | None
     #: distinct item names interned
     vocabulary_items: int
+    #: feed items removed by items.ignore / items.allow, by filter (cumulative since start)
+    items_ignored: dict[str, int] = field(default_factory=dict)
+    #: feed items the catalogue does not know (occurrences since start; 0 without catalogue)
+    items_unknown: int = 0
+    #: distinct feed items the catalogue does not know, among the names interned
+    items_unknown_distinct: int = 0

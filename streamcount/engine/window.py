@@ -25,6 +25,7 @@ from typing import Any
 import numpy as np
 from sortedcontainers import SortedDict
 
+from streamcount.engine.keys import PairSet
 from streamcount.engine.pane import Pane
 from streamcount.engine.panesum import PaneSum, merge_sums, subtract_panes, sum_panes
 from streamcount.engine.snapshot import WindowSnapshot
@@ -44,6 +45,9 @@ class SlidingWindow:
     pane_size:
         Transactions per pane for a count-based window (``None`` for a time-based one);
         written into snapshots.
+    excluded_pairs:
+        Item pairs no pane counts (an item with its own catalogue ancestor), shared with the
+        engine; ``None``: none.
 
     Notes
     -----
@@ -55,6 +59,7 @@ class SlidingWindow:
         "_sum_cache",
         "closed_through",
         "epsilon",
+        "excluded_pairs",
         "first_index",
         "max_itemset_size",
         "newest_index",
@@ -70,7 +75,9 @@ class SlidingWindow:
         epsilon: float,
         max_itemset_size: int,
         pane_size: int | None,
+        excluded_pairs: PairSet | None = None,
     ) -> None:
+        self.excluded_pairs = excluded_pairs
         self.window_panes = int(window_panes)
         self.epsilon = float(epsilon)
         self.max_itemset_size = int(max_itemset_size)
@@ -92,7 +99,7 @@ class SlidingWindow:
         """The pane ``index``, opened if needed."""
         pane = self.panes.get(index)
         if pane is None:
-            pane = Pane(index, self.epsilon, self.max_itemset_size)
+            pane = Pane(index, self.epsilon, self.max_itemset_size, self.excluded_pairs)
             self.panes[index] = pane
             if self.first_index is None or index < self.first_index:
                 self.first_index = index
@@ -311,5 +318,7 @@ class SlidingWindow:
         self.panes.clear()
         self._sum_cache = None
         for j, pm in enumerate(meta["panes"]):
-            pane = Pane.from_state(pm, arrays, f"pane{j}.", self.epsilon, self.max_itemset_size)
+            pane = Pane.from_state(
+                pm, arrays, f"pane{j}.", self.epsilon, self.max_itemset_size, self.excluded_pairs
+            )
             self.panes[pane.index] = pane

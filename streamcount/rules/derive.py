@@ -16,7 +16,11 @@ as bounds (``a = c(Z)``, ``r = c(X)``, ``q = c(Y)``) and its measures as interva
 4. when ``max_p_value`` is set, the one-sided test named by ``significance`` (``fisher`` or
    ``chi2``) at the least favourable corner of the bounds gives ``p <= max_p_value``. No
    multiple-testing correction is applied: with many rules per window, pick a small
-   ``max_p_value`` (Webb 2007 discusses the problem for rules).
+   ``max_p_value`` (Webb 2007 discusses the problem for rules);
+5. with several catalogue levels counted (the snapshot carries a taxonomy) and
+   ``min_interest`` set, the itemset ``Z`` is R-interesting (:mod:`streamcount.rules.interest`:
+   its support is not certainly below ``min_interest`` times what its closest ancestor
+   predicts). This is checked before steps 3 and 4, on the candidate itemsets.
 
 Rules are sorted by the low end of the lift interval, descending (ties: lift point value,
 support, then names), and at most ``max_rules`` are returned.
@@ -39,6 +43,7 @@ import numpy as np
 
 from streamcount.config.settings import RulesConfig
 from streamcount.engine.snapshot import WindowSnapshot
+from streamcount.rules.interest import interesting
 from streamcount.rules.measures import (
     MEASURE_NAMES,
     CountBounds,
@@ -303,6 +308,11 @@ def derive_rules(
         if not len(level):
             continue
         keep = (level.count >= threshold) & at_least(level.count, config.min_support * n)
+        if config.min_interest is not None and snapshot.taxonomy is not None and keep.any():
+            sub = np.flatnonzero(keep)
+            keep[sub] = interesting(
+                snapshot, level.items[sub], level.upper[sub], config.min_interest
+            )
         if not keep.any():
             continue
         rows = level.items[keep]

@@ -206,6 +206,18 @@ class Service:
         """Stop after the current turn (signal handlers call this)."""
         self._stop.set()
 
+    def request_catalogue_reload(self, *_: object) -> None:
+        """Reload the catalogue at the start of the next turn."""
+        if self.pipeline.catalogue is not None:
+            self.pipeline.catalogue.requested = True
+
+    def reload_on_signal(self, *_: object) -> None:
+        """The SIGHUP handler: the server re-reads its token file and TLS files, and the
+        catalogue is reloaded at the start of the next turn."""
+        if self.server is not None:
+            self.server.request_reload()
+        self.request_catalogue_reload()
+
     def start_server(self) -> tuple[str, int] | None:
         """Start the HTTP listener (``server.listen``); returns the bound address."""
         listen = self.config.server.listen
@@ -259,10 +271,9 @@ class Service:
             signal.signal(signal.SIGINT, self.request_stop)
         if self.server is None:
             self.start_server()
-        if install_signals and self.server is not None:
-            from streamcount.service.server import install_reload_signal
-
-            install_reload_signal(self.server)  # SIGHUP: re-read server.token_file and TLS
+        if install_signals and threading.current_thread() is threading.main_thread():
+            # SIGHUP: re-read server.token_file and TLS, and the catalogue file
+            signal.signal(signal.SIGHUP, self.reload_on_signal)
         logger.info("streamcount %s started: %s", __version__, describe(self.config))
         self.api.set_ready(True)
         clean = False
@@ -297,6 +308,10 @@ class Service:
         """
         started = time.perf_counter()
         self.api.beat()
+        reload = self.pipeline.poll_catalogue()  # SIGHUP or a changed file; next transaction on
+        if reload is not None:
+            self.metrics.observe_catalogue_reload(reload.error is None)
+            self._unpublished = True
         accepted, rejected, seen = 0, Counter[str](), 0
         wait = timeout if len(self.inputs) == 1 else 0.0
         for item in self.inputs:
@@ -484,6 +499,7 @@ class Service:
                 for name, st in self.sinks.stats_by_sink().items()
             },
             "history": history.summary(),
+            "catalogue": self.pipeline.catalogue_status(),
         }
         return View(
             window,

@@ -45,6 +45,7 @@ if TYPE_CHECKING:
 
 __all__ = [
     "ALERT_KINDS",
+    "CATALOGUE_RELOAD_RESULTS",
     "CHECKPOINT_RESULTS",
     "HTTP_REFUSALS",
     "ITEM_TEXT_METRICS",
@@ -65,6 +66,8 @@ REJECT_REASONS: tuple[str, ...] = tuple(sorted(REASONS))
 SINK_NAMES: tuple[str, ...] = ("file", "log", "stdout", "webhook")
 #: ``result`` label values of ``streamcount_checkpoints_total``
 CHECKPOINT_RESULTS: tuple[str, ...] = ("failed", "ok")
+#: ``result`` label values of ``streamcount_catalogue_reloads_total``
+CATALOGUE_RELOAD_RESULTS: tuple[str, ...] = ("failed", "ok")
 
 #: Seconds to count one batch: from a millisecond (tiny batches) to tens of seconds.
 _BATCH_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1, 2.5, 5, 10, 30)
@@ -87,6 +90,18 @@ _GAUGES: dict[str, str] = {
     "streamcount_live_panes": "Panes held (open ones, and closed ones still in the window).",
     "streamcount_buffered_transactions": "Transactions received but not yet counted.",
     "streamcount_vocabulary_items": "Distinct item names interned.",
+}
+#: Counters read from the engine's statistics at scrape time (the catalogue's), by family name
+#: without ``_total``.
+_STAT_COUNTERS: dict[str, str] = {
+    "streamcount_items_ignored": (
+        "Feed items removed before counting by items.ignore / items.allow, by filter (the "
+        "ignore entry as configured, or 'not allowed'); since start."
+    ),
+    "streamcount_catalogue_unknown_items": (
+        "Feed items the catalogue does not know (counted as themselves at every level); "
+        "since start. 0 without a catalogue."
+    ),
 }
 _RULE_GAUGES: dict[str, str] = {
     "streamcount_rule_lift": "Lift of one of the top rules by lift (point value).",
@@ -126,8 +141,10 @@ METRIC_NAMES: tuple[str, ...] = (
     "streamcount_sink_failures_total",
     "streamcount_sink_dropped_total",
     "streamcount_checkpoints_total",
+    "streamcount_catalogue_reloads_total",
     "streamcount_dead_letters_lost_total",
     "streamcount_batch_seconds",
+    *(f"{name}_total" for name in _STAT_COUNTERS),
     "streamcount_auth_failures_total",
     "streamcount_http_refused_total",
     "streamcount_http_connections",
@@ -218,6 +235,22 @@ class _StateCollector(Collector):
                 for size, entries in enumerate(stats.tracked_itemsets, start=1):
                     tracked.add_metric([str(size)], float(entries))
             yield tracked
+            # the catalogue's counters: label values are the configured filters (bounded)
+            ignored = CounterMetricFamily(
+                "streamcount_items_ignored",
+                _STAT_COUNTERS["streamcount_items_ignored"],
+                labels=["filter"],
+            )
+            unknown = CounterMetricFamily(
+                "streamcount_catalogue_unknown_items",
+                _STAT_COUNTERS["streamcount_catalogue_unknown_items"],
+            )
+            if stats is not None:
+                for label, n in sorted(stats.items_ignored.items()):
+                    ignored.add_metric([label], float(n))
+                unknown.add_metric([], float(stats.items_unknown))
+            yield ignored
+            yield unknown
 
         active = gauge("streamcount_active_rules")
         active.add_metric([], float(state.active_rules))
@@ -344,6 +377,13 @@ class Metrics:
             ["result"],
             registry=registry,
         )
+        self.catalogue_reloads = Counter(
+            "streamcount_catalogue_reloads",
+            "Catalogue reloads (SIGHUP or a changed file), by result: ok (read; a new version "
+            "when the file changed) or failed (refused, the previous version stays).",
+            ["result"],
+            registry=registry,
+        )
         self.dead_letters_lost = Counter(
             "streamcount_dead_letters_lost",
             "Records set aside that could not be written to the dead-letter file (disk full, "
@@ -405,6 +445,8 @@ class Metrics:
             self.sink_dropped.labels(sink=sink)
         for result in CHECKPOINT_RESULTS:
             self.checkpoints.labels(result=result)
+        for result in CATALOGUE_RELOAD_RESULTS:
+            self.catalogue_reloads.labels(result=result)
         registry.register(_StateCollector(self))
 
     def observe_batch(self, accepted: int, rejected: Mapping[str, int], seconds: float) -> None:
@@ -428,6 +470,10 @@ class Metrics:
         if ok:
             with self._lock:
                 self._last_checkpoint = max(self._last_checkpoint, float(unix_time))
+
+    def observe_catalogue_reload(self, ok: bool) -> None:
+        """Count one catalogue reload attempt."""
+        self.catalogue_reloads.labels(result="ok" if ok else "failed").inc()
 
     def watch_server(self, stats: Callable[[], HttpStats] | None) -> None:
         """Read the HTTP server's totals at scrape time (``server.stats`` of
