@@ -151,73 +151,142 @@ class Engine:
             return AddResult(0, last_seq=self.next_seq - 1)
         lengths_raw = np.fromiter(map(len, baskets), dtype=np.int64, count=t)
         rejections: list[Rejection] = []
+        distinct = lengths_raw.copy()  # exact where it matters: above the cap
+        for i in np.flatnonzero(lengths_raw > int(self.config.max_basket_items)).tolist():
+            distinct[i] = len(set(baskets[i]))
+        ok = self._size_guards(lengths_raw, distinct, rejections)
+        ts, pane_idx = self._time_guards(t, timestamps, ok, rejections)
+        keep = np.flatnonzero(ok)
+        kept = [baskets[i] for i in keep.tolist()] if keep.shape[0] != t else baskets
+        # items of rejected baskets are never interned
+        flat, lengths = self.vocabulary.encode_baskets(kept)
+        flat, lengths = _sort_dedupe(flat, lengths, len(self.vocabulary))
+        return self._admit(flat, lengths, keep, ts, pane_idx, rejections)
+
+    def add_ids(
+        self,
+        flat: np.ndarray,
+        lengths: np.ndarray,
+        timestamps: Sequence[float | None] | np.ndarray | None = None,
+    ) -> AddResult:
+        """Take a chunk of transactions already interned with :attr:`vocabulary`.
+
+        ``flat`` holds the item ids of every transaction one after another (any order within
+        a transaction, repeats allowed) and ``lengths`` how many belong to each; the same
+        rejections as :meth:`add`, on the distinct ids. For feeds decoded straight to ids.
+
+        Raises
+        ------
+        ValueError
+            An id outside the vocabulary, or lengths that do not add up to ``flat``.
+        """
+        flat = np.asarray(flat, dtype=np.int32)
+        lengths = np.asarray(lengths, dtype=np.int64)
+        t = int(lengths.shape[0])
+        if int(lengths.sum()) != flat.shape[0] or (t and int(lengths.min()) < 0):
+            raise ValueError(f"add_ids: lengths add up to {int(lengths.sum())}, not {flat.size}")
+        if flat.size and (int(flat.min()) < 0 or int(flat.max()) >= len(self.vocabulary)):
+            raise ValueError(f"add_ids: ids must lie in [0, {len(self.vocabulary)})")
+        if t == 0:
+            return AddResult(0, last_seq=self.next_seq - 1)
+        flat, distinct = _sort_dedupe(flat, lengths, len(self.vocabulary))
+        rejections: list[Rejection] = []
+        ok = self._size_guards(lengths, distinct, rejections)
+        ts, pane_idx = self._time_guards(t, timestamps, ok, rejections)
+        keep = np.flatnonzero(ok)
+        if keep.shape[0] != t:
+            flat, distinct = _select_rows(flat, distinct, ok)
+        return self._admit(flat, distinct, keep, ts, pane_idx, rejections)
+
+    def _size_guards(
+        self, lengths_raw: np.ndarray, distinct: np.ndarray, rejections: list[Rejection]
+    ) -> np.ndarray:
+        """Empty baskets and baskets of too many distinct items; the rows left."""
         ok = lengths_raw > 0
         for i in np.flatnonzero(~ok).tolist():
             rejections.append(Rejection(i, "empty", "transaction has no items"))
         cap = int(self.config.max_basket_items)
-        for i in np.flatnonzero(lengths_raw > cap).tolist():
-            distinct = len(set(baskets[i]))
-            if distinct > cap:
-                ok[i] = False
-                rejections.append(
-                    Rejection(
-                        i,
-                        "too_many_items",
-                        f"{distinct} distinct items > max_basket_items={cap}; "
-                        "raise max_basket_items to count such baskets",
-                    )
+        for i in np.flatnonzero(ok & (distinct > cap)).tolist():
+            ok[i] = False
+            rejections.append(
+                Rejection(
+                    i,
+                    "too_many_items",
+                    f"{int(distinct[i])} distinct items > max_basket_items={cap}; "
+                    "raise max_basket_items to count such baskets",
                 )
+            )
+        return ok
+
+    def _time_guards(
+        self,
+        t: int,
+        timestamps: Sequence[float | None] | np.ndarray | None,
+        ok: np.ndarray,
+        rejections: list[Rejection],
+    ) -> tuple[np.ndarray, np.ndarray | None]:
+        """Event times as floats (NaN: none) and, for a time-based window, each row's pane;
+        clears ``ok`` for rows without a usable time or whose pane already closed."""
         ts = np.full(t, np.nan)
         if timestamps is not None:
             ts = np.array(timestamps, dtype=np.float64)  # None becomes NaN
-        pane_idx: np.ndarray | None = None
-        if self.time_based:
-            missing = ok & np.isnan(ts)
-            for i in np.flatnonzero(missing).tolist():
-                rejections.append(
-                    Rejection(i, "missing_field", "a time-based window needs a timestamp")
-                )
-            ok &= ~missing
-            with np.errstate(invalid="ignore"):
-                odd = ok & ~(np.abs(ts) < MAX_TIMESTAMP)
-            for i in np.flatnonzero(odd).tolist():
-                rejections.append(
-                    Rejection(
-                        i,
-                        "wrong_type",
-                        f"event time {float(ts[i])!r} is not epoch seconds below "
-                        f"{MAX_TIMESTAMP:.0e} (milliseconds?)",
-                    )
-                )
-            ok &= ~odd
-            pane_idx = np.zeros(t, dtype=np.int64)
-            pane_idx[ok] = np.floor(ts[ok] / self.pane_seconds).astype(np.int64)
-            # watermark seen by each transaction = running max of earlier event times
-            prev = -np.inf if self.max_event_ts is None else self.max_event_ts
-            filled = np.where(ok, ts, -np.inf)
-            running = np.maximum.accumulate(np.concatenate(([prev], filled)))[:-1]
-            closed_limit = (
-                np.floor((running - self.config.allowed_lateness_seconds) / self.pane_seconds) - 1
+        if not self.time_based:
+            return ts, None
+        missing = ok & np.isnan(ts)
+        for i in np.flatnonzero(missing).tolist():
+            rejections.append(
+                Rejection(i, "missing_field", "a time-based window needs a timestamp")
             )
-            late = ok & (
-                (pane_idx <= np.maximum(closed_limit, self.window.closed_through))
-                | (pane_idx <= self.window.newest_index - self.window_panes)
-            )
-            for i in np.flatnonzero(late).tolist():
-                rejections.append(
-                    Rejection(
-                        i,
-                        "too_late",
-                        f"event time {float(ts[i])!r} falls in pane {int(pane_idx[i])}, "
-                        "already closed (allowed_lateness_seconds="
-                        f"{self.config.allowed_lateness_seconds})",
-                    )
+        ok &= ~missing
+        with np.errstate(invalid="ignore"):
+            odd = ok & ~(np.abs(ts) < MAX_TIMESTAMP)
+        for i in np.flatnonzero(odd).tolist():
+            rejections.append(
+                Rejection(
+                    i,
+                    "wrong_type",
+                    f"event time {float(ts[i])!r} is not epoch seconds below "
+                    f"{MAX_TIMESTAMP:.0e} (milliseconds?)",
                 )
-            ok &= ~late
-        keep = np.flatnonzero(ok)
-        kept = [baskets[i] for i in keep.tolist()] if keep.shape[0] != t else baskets
-        flat, lengths = self.vocabulary.encode_baskets(kept)
-        flat, lengths = _sort_dedupe(flat, lengths, len(self.vocabulary))
+            )
+        ok &= ~odd
+        pane_idx = np.zeros(t, dtype=np.int64)
+        pane_idx[ok] = np.floor(ts[ok] / self.pane_seconds).astype(np.int64)
+        # watermark seen by each transaction = running max of earlier event times
+        prev = -np.inf if self.max_event_ts is None else self.max_event_ts
+        filled = np.where(ok, ts, -np.inf)
+        running = np.maximum.accumulate(np.concatenate(([prev], filled)))[:-1]
+        closed_limit = (
+            np.floor((running - self.config.allowed_lateness_seconds) / self.pane_seconds) - 1
+        )
+        late = ok & (
+            (pane_idx <= np.maximum(closed_limit, self.window.closed_through))
+            | (pane_idx <= self.window.newest_index - self.window_panes)
+        )
+        for i in np.flatnonzero(late).tolist():
+            rejections.append(
+                Rejection(
+                    i,
+                    "too_late",
+                    f"event time {float(ts[i])!r} falls in pane {int(pane_idx[i])}, "
+                    "already closed (allowed_lateness_seconds="
+                    f"{self.config.allowed_lateness_seconds})",
+                )
+            )
+        ok &= ~late
+        return ts, pane_idx
+
+    def _admit(
+        self,
+        flat: np.ndarray,
+        lengths: np.ndarray,
+        keep: np.ndarray,
+        ts: np.ndarray,
+        pane_idx: np.ndarray | None,
+        rejections: list[Rejection],
+    ) -> AddResult:
+        """Number the accepted rows (``keep`` of the chunk, CSR ``flat``/``lengths`` of
+        ascending distinct ids) and route them to their panes."""
         n_ok = int(lengths.shape[0])
         seq = np.arange(self.next_seq, self.next_seq + n_ok, dtype=np.int64)
         self.next_seq += n_ok
@@ -439,6 +508,13 @@ class Engine:
         eng.max_event_ts = meta["max_event_ts"]  # type: ignore[assignment]
         eng.window.load_state(meta["window"], arrays)  # type: ignore[arg-type]
         return eng
+
+
+def _select_rows(
+    flat: np.ndarray, lengths: np.ndarray, ok: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """The rows ``ok`` of a CSR chunk."""
+    return flat[np.repeat(ok, lengths)], lengths[ok]
 
 
 def _sort_dedupe(
