@@ -52,8 +52,11 @@ __all__ = ["Level", "LossySummary", "Summary", "bucket_width"]
 _CHUNK_COMBOS = 1 << 21
 # Dense membership matrices for (k-1)-subsets are used up to this many cells.
 _DENSE_CELLS = 1 << 24
-# Counting by bincount (O(n), no sort) when the key space has at most this many cells.
+# Counting by bincount (O(n + cells), no sort) when the key space has at most this many cells
+# and at most _DENSE_PER_KEY cells per key counted (zeroing and scanning a cell costs about a
+# thirtieth of sorting a key).
 _BINCOUNT_CELLS = 1 << 22
+_DENSE_PER_KEY = 16
 
 
 def bucket_width(epsilon: float) -> int:
@@ -299,7 +302,7 @@ class LossySummary:
                 cur_items = cur_items[sel]
                 cur_txn = cur_txn[sel]
             membership = _Membership(prev_keys, m, k - 1)
-            batch_keys, batch_counts = _count_combinations(cur_items, cur_txn, t, k, m, membership)
+            batch = _count_combinations(cur_items, cur_txn, t, k, m, membership)
 
             # tracked entries: to local ids; drop those with a pruned item or subset
             if len(old):
@@ -313,20 +316,18 @@ class LossySummary:
             else:
                 old_keys = _pack_local(np.zeros((0, k), dtype=np.int64), m)
                 old_f = old_d = np.zeros(0, dtype=np.int64)
-            pos, found = lookup(batch_keys, old_keys)
-            add = np.where(found, batch_counts[pos] if batch_counts.size else 0, 0)
-            f_old = old_f + add
+            # the local radix keeps the order of rows, so old_keys is sorted
+            f_old = old_f + batch.take(old_keys)
             keep_old = np.ones(f_old.shape[0], dtype=bool) if exact else (f_old + old_d > b1)
-            in_old = np.zeros(batch_keys.shape[0], dtype=bool)
-            in_old[pos[found]] = True
-            new_sel = (batch_counts >= min_new) & ~in_old
-            keys = np.concatenate((old_keys[keep_old], batch_keys[new_sel]))
-            f = np.concatenate((f_old[keep_old], batch_counts[new_sel]))
-            d = np.concatenate((old_d[keep_old], np.full(int(new_sel.sum()), b0, dtype=np.int64)))
-            order = np.argsort(keys, kind="stable")
-            keys = keys[order]
+            new_keys, new_counts = batch.fresh(min_new, old_keys)
+            keys, f, d = _merge_sorted(
+                old_keys[keep_old],
+                (f_old[keep_old], old_d[keep_old]),
+                new_keys,
+                (new_counts, np.full(new_keys.shape[0], b0, dtype=np.int64)),
+            )
             rows_local = _unpack_local(keys, m, k)
-            self._levels[k - 1] = Level(survivors[rows_local].astype(np.int32), f[order], d[order])
+            self._levels[k - 1] = Level(survivors[rows_local].astype(np.int32), f, d)
             prev_keys = keys
             if keys.shape[0] == 0:  # nothing of size k is tracked, so nothing larger can be
                 for j in range(k + 1, self.max_itemset_size + 1):
@@ -463,27 +464,139 @@ def _triple_pair_index(length: int) -> tuple[np.ndarray, np.ndarray, np.ndarray,
     return pairs, ab, ac, bc
 
 
+def _merge_sorted(
+    keys_a: np.ndarray,
+    values_a: tuple[np.ndarray, ...],
+    keys_b: np.ndarray,
+    values_b: tuple[np.ndarray, ...],
+) -> tuple[np.ndarray, ...]:
+    """Merge two sorted runs of distinct keys (no key in both) and their value arrays.
+
+    One binary search of ``keys_b`` in ``keys_a`` gives every element's final position, so no
+    sort is needed: O((a + b) + b log a).
+
+    >>> _merge_sorted(np.array([2, 7]), (np.array([20, 70]),), np.array([1, 5, 9]),
+    ...               (np.array([10, 50, 90]),))
+    (array([1, 2, 5, 7, 9]), array([10, 20, 50, 70, 90]))
+    """
+    if keys_b.shape[0] == 0:
+        return (keys_a, *values_a)
+    if keys_a.shape[0] == 0:
+        return (keys_b, *values_b)
+    n = keys_a.shape[0] + keys_b.shape[0]
+    at_b = np.searchsorted(keys_a, keys_b) + np.arange(keys_b.shape[0])
+    is_a = np.ones(n, dtype=bool)
+    is_a[at_b] = False
+    out = []
+    for a, b in zip((keys_a, *values_a), (keys_b, *values_b), strict=True):
+        merged = np.empty(n, dtype=np.result_type(a.dtype, b.dtype))
+        merged[at_b] = b
+        merged[is_a] = a
+        out.append(merged)
+    return tuple(out)
+
+
+class _BatchCounts:
+    """How often each k-itemset occurs in one batch, as a dense array over the local key space
+    (``dense[key]``) or as sorted distinct keys with their counts."""
+
+    __slots__ = ("counts", "dense", "keys")
+
+    def __init__(
+        self,
+        keys: np.ndarray | None = None,
+        counts: np.ndarray | None = None,
+        dense: np.ndarray | None = None,
+    ) -> None:
+        self.keys = keys
+        self.counts = counts
+        self.dense = dense
+
+    @classmethod
+    def of_keys(cls, keys: np.ndarray, cells: int | None) -> _BatchCounts:
+        """Count ``keys`` (one per occurrence); ``cells`` is the key space when the keys are
+        int64 in ``[0, cells)``, else ``None``. A histogram (O(keys + cells), no sort) when
+        the key space is small beside the keys, else one sort."""
+        if (
+            cells is not None
+            and cells <= _BINCOUNT_CELLS
+            and cells <= _DENSE_PER_KEY * max(keys.shape[0], 1)
+        ):
+            return cls(dense=np.bincount(keys, minlength=cells))
+        uniq, counts = np.unique(keys, return_counts=True)
+        return cls(uniq, counts.astype(np.int64))
+
+    def take(self, keys: np.ndarray) -> np.ndarray:
+        """The batch count of each of ``keys`` (0 for one absent from the batch)."""
+        if self.dense is not None:
+            return self.dense[keys].astype(np.int64) if keys.shape[0] else keys[:0].astype(np.int64)
+        assert self.keys is not None and self.counts is not None
+        if not keys.shape[0] or not self.keys.shape[0]:
+            return np.zeros(keys.shape[0], dtype=np.int64)
+        pos, found = lookup(self.keys, keys)
+        return np.where(found, self.counts[pos], 0)
+
+    def fresh(self, min_count: int, tracked: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Sorted keys counted at least ``min_count`` times that are not in the sorted
+        ``tracked``, with their counts (consumes a dense histogram)."""
+        if self.dense is not None:
+            dense = self.dense
+            if tracked.shape[0]:
+                dense[tracked] = 0
+            keys = np.flatnonzero(dense >= min_count)
+            return keys, dense[keys].astype(np.int64)
+        assert self.keys is not None and self.counts is not None
+        sel = self.counts >= min_count
+        if tracked.shape[0] and self.keys.shape[0]:
+            _, found = lookup(tracked, self.keys)
+            sel &= ~found
+        return self.keys[sel], self.counts[sel]
+
+
+def _pair_keys(items: np.ndarray, txn: np.ndarray, t: int, radix: int) -> np.ndarray:
+    """Keys ``a * radix + b`` of every pair ``a < b`` of positions in the same transaction.
+
+    ``items``/``txn`` list each transaction's ids (ascending within it, transactions in
+    order). The item at position ``p`` pairs with the ``r_p`` items after it in its
+    transaction; all pairs come out in one pass: ``repeat`` of the first item and a running
+    index for the second, O(pairs) with no per-length loop.
+
+    >>> _pair_keys(np.array([1, 2, 3, 0, 4]), np.array([0, 0, 0, 1, 1]), 2, 10).tolist()
+    [12, 13, 23, 4]
+    """
+    ends = np.cumsum(np.bincount(txn, minlength=t))
+    pos = np.arange(items.shape[0], dtype=np.int64)
+    later = ends[txn] - pos - 1
+    first_slot = np.cumsum(later) - later  # where the pairs of position p start
+    total = int(first_slot[-1] + later[-1]) if later.shape[0] else 0
+    # second position = slot - first_slot[p] + p + 1 for every slot of position p
+    second = np.arange(total, dtype=np.int64) + np.repeat(pos + 1 - first_slot, later)
+    return np.repeat(items.astype(np.int64) * radix, later) + items[second]
+
+
 def _count_combinations(
     items: np.ndarray, txn: np.ndarray, t: int, k: int, m: int, membership: _Membership
-) -> tuple[np.ndarray, np.ndarray]:
-    """Sorted unique keys (local radix ``m``) of the k-combinations present, with counts.
+) -> _BatchCounts:
+    """The k-combinations present in a batch, counted (keys in local radix ``m``).
 
     ``items``/``txn`` list each transaction's surviving local ids (ascending within a
-    transaction, transactions in order). Transactions are grouped by their surviving length
-    ``L``; each group is a ``(g, L)`` matrix indexed once with the ``C(L, k) x k`` combination
-    table, so the work is a few large numpy operations per distinct length. For triples the
-    pair test runs on the ``C(L, 2)`` pairs of each basket and is combined per triple through
-    index tables, so a triple is materialised only when its three pairs are tracked.
-    Counting is one ``bincount`` when ``m**k`` is small, else one sort.
+    transaction, transactions in order). Pairs are enumerated in one pass
+    (:func:`_pair_keys`). For larger k, transactions are grouped by their surviving length
+    ``L``; each group is a ``(g, L)`` matrix indexed once with the ``C(L, k) x k``
+    combination table, so the work is a few large numpy operations per distinct length. For
+    triples the pair test runs on the ``C(L, 2)`` pairs of each basket and is combined per
+    triple through index tables, so a triple is materialised only when its three pairs are
+    tracked. Counting is one ``bincount`` when the key space is small, else one sort.
     """
-    empty = (_pack_local(np.zeros((0, k), dtype=np.int64), m), np.zeros(0, dtype=np.int64))
+    radix = max(m, 1)
+    cells = radix**k if fits_int64(radix, k) else None
     if items.size == 0:
-        return empty
+        return _BatchCounts.of_keys(_pack_local(np.zeros((0, k), dtype=np.int64), m), None)
+    if k == 2:
+        return _BatchCounts.of_keys(_pair_keys(items, txn, t, radix), cells)
     lengths = np.bincount(txn, minlength=t)
     starts = np.zeros(t + 1, dtype=np.int64)
     np.cumsum(lengths, out=starts[1:])
-    radix = max(m, 1)
-    packs_int = fits_int64(radix, k)
     key_parts: list[np.ndarray] = []
     triple_dense = k == 3 and membership.dense is not None
     for length in np.unique(lengths[lengths >= k]).tolist():
@@ -493,10 +606,6 @@ def _count_combinations(
         for lo in range(0, group.shape[0], step):
             g = group[lo : lo + step]
             mat = items[starts[g][:, None] + np.arange(length)]
-            if k == 2:
-                key = mat[:, table[:, 0]] * radix + mat[:, table[:, 1]]
-                key_parts.append(key.ravel())
-                continue
             if triple_dense:
                 assert membership.dense is not None
                 pairs, ab, ac, bc = _triple_pair_index(length)
@@ -516,11 +625,6 @@ def _count_combinations(
             if combos.shape[0]:
                 key_parts.append(_pack_local(combos, m))
     if not key_parts:
-        return empty
+        return _BatchCounts.of_keys(_pack_local(np.zeros((0, k), dtype=np.int64), m), None)
     keys = np.concatenate(key_parts) if len(key_parts) > 1 else key_parts[0]
-    if packs_int and radix**k <= _BINCOUNT_CELLS and keys.shape[0] * 4 >= radix**k:
-        counts = np.bincount(keys, minlength=radix**k)
-        present = np.flatnonzero(counts)
-        return present.astype(np.int64), counts[present].astype(np.int64)
-    uniq, counts = np.unique(keys, return_counts=True)
-    return uniq, counts.astype(np.int64)
+    return _BatchCounts.of_keys(keys, cells)
