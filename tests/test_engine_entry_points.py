@@ -49,7 +49,7 @@ def scenarios(draw: st.DrawFn) -> dict:
     }
     if timed:
         cfg.update(window_seconds=float(pane * 3), pane_seconds=float(pane))
-        cfg["allowed_lateness_seconds"] = float(draw(st.integers(0, 3)))
+        cfg["allowed_lateness_seconds"] = float(draw(st.integers(0, pane * 3 - 1)))
     else:
         cfg.update(window_size=pane * draw(st.integers(1, 3)), pane_size=pane)
     baskets = draw(st.lists(basket, max_size=60))

@@ -25,38 +25,28 @@ but itself, and by the tests against exact recounts)::
 ``epsilon = 0`` counts exactly: nothing is ever deleted and ``delta = 0``.
 
 Hot path: a batch is a CSR pair (``indptr``, ``items``) of ascending, distinct item ids per
-transaction. Each level enumerates the k-combinations of each transaction's surviving items
-with one fancy-index per basket length (a precomputed combination table), packs them into
-int64 keys in a batch-local dense radix, and counts them with one sort (``np.unique``). No
-Python object is created per itemset.
+transaction. Each level renumbers the surviving items densely for the batch, and
+:mod:`streamcount.engine.batchcount` enumerates and counts the candidate k-itemsets as int64
+keys in that radix (pairs and triples in a few passes, a histogram or a radix sort). The
+tracked entries, in the same radix, take their batch counts by lookup, and the new entries are
+merged into them in order (no re-sort). No Python object is created per itemset.
 
 Memory: per tracked itemset ``4k`` bytes of ids plus 16 bytes of ``(f, delta)``; a batch holds
-its enumerated combinations in chunks of at most ``_CHUNK_COMBOS`` rows.
+its enumerated candidates in chunks of at most :data:`~streamcount.engine.batchcount.CHUNK`.
 """
 
 from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from functools import lru_cache
 from typing import Protocol
 
 import numpy as np
 
-from streamcount.engine.keys import combination_table, fits_int64, lookup, pack, unpack
+from streamcount.engine.batchcount import Membership, count_batch, merge_sorted, unpack_local
+from streamcount.engine.keys import lookup, pack
 
 __all__ = ["Level", "LossySummary", "Summary", "bucket_width"]
-
-# Rows of combinations materialised at once while enumerating a batch (bounds peak memory:
-# about 8 bytes x k per row plus the packed key).
-_CHUNK_COMBOS = 1 << 21
-# Dense membership matrices for (k-1)-subsets are used up to this many cells.
-_DENSE_CELLS = 1 << 24
-# Counting by bincount (O(n + cells), no sort) when the key space has at most this many cells
-# and at most _DENSE_PER_KEY cells per key counted (zeroing and scanning a cell costs about a
-# thirtieth of sorting a key).
-_BINCOUNT_CELLS = 1 << 22
-_DENSE_PER_KEY = 16
 
 
 def bucket_width(epsilon: float) -> int:
@@ -301,8 +291,8 @@ class LossySummary:
                 sel = allowed[cur_items]
                 cur_items = cur_items[sel]
                 cur_txn = cur_txn[sel]
-            membership = _Membership(prev_keys, m, k - 1)
-            batch = _count_combinations(cur_items, cur_txn, t, k, m, membership)
+            membership = Membership(prev_keys, m, k - 1)
+            batch = count_batch(cur_items, cur_txn, t, k, m, membership)
 
             # tracked entries: to local ids; drop those with a pruned item or subset
             if len(old):
@@ -320,7 +310,7 @@ class LossySummary:
             f_old = old_f + batch.take(old_keys)
             keep_old = np.ones(f_old.shape[0], dtype=bool) if exact else (f_old + old_d > b1)
             new_keys, new_counts = batch.fresh(min_new, old_keys)
-            keys, f, d = _merge_sorted(
+            keys, f, d = merge_sorted(
                 old_keys[keep_old],
                 (f_old[keep_old], old_d[keep_old]),
                 new_keys,
@@ -408,223 +398,4 @@ def _pack_local(rows: np.ndarray, m: int) -> np.ndarray:
 
 
 def _unpack_local(keys: np.ndarray, m: int, size: int) -> np.ndarray:
-    return unpack(keys, max(m, 1), size).astype(np.int64)
-
-
-class _Membership:
-    """Is every (k-1)-subset of a k-row tracked?  Dense matrix for pairs, sorted keys beyond.
-
-    For k = 2 every pair of surviving items qualifies (their 1-subsets are the survivors).
-    """
-
-    __slots__ = ("dense", "keys", "m", "size")
-
-    def __init__(self, keys: np.ndarray, m: int, size: int) -> None:
-        self.keys = keys
-        self.m = m
-        self.size = size
-        self.dense: np.ndarray | None = None
-        if size == 2 and m * m <= _DENSE_CELLS:
-            rows = _unpack_local(keys, m, 2)
-            dense = np.zeros((m, m), dtype=bool)
-            dense[rows[:, 0], rows[:, 1]] = True
-            self.dense = dense
-
-    def all_subsets_present(self, rows: np.ndarray) -> np.ndarray:
-        n, k = rows.shape
-        if self.size == 1 or n == 0:
-            return np.ones(n, dtype=bool)
-        ok = np.ones(n, dtype=bool)
-        for cols in _drop_one(k):
-            if self.dense is not None:
-                ok &= self.dense[rows[:, cols[0]], rows[:, cols[1]]]
-            else:
-                _, found = lookup(self.keys, _pack_local(rows[:, cols], self.m))
-                ok &= found
-        return ok
-
-
-@lru_cache(maxsize=16)
-def _drop_one(k: int) -> tuple[list[int], ...]:
-    """Column lists of the k subsets one item smaller: ``(1..k-1), (0, 2..k-1), ...``."""
-    return tuple([c for c in range(k) if c != drop] for drop in range(k))
-
-
-@lru_cache(maxsize=512)
-def _triple_pair_index(length: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """For baskets of ``length`` items: the pair table, and for each triple of the triple
-    table the positions of its pairs (ab, ac, bc) in the pair table."""
-    pairs = combination_table(length, 2)
-    triples = combination_table(length, 3)
-    where = np.full((length, length), -1, dtype=np.int64)
-    where[pairs[:, 0], pairs[:, 1]] = np.arange(pairs.shape[0])
-    ab = where[triples[:, 0], triples[:, 1]]
-    ac = where[triples[:, 0], triples[:, 2]]
-    bc = where[triples[:, 1], triples[:, 2]]
-    return pairs, ab, ac, bc
-
-
-def _merge_sorted(
-    keys_a: np.ndarray,
-    values_a: tuple[np.ndarray, ...],
-    keys_b: np.ndarray,
-    values_b: tuple[np.ndarray, ...],
-) -> tuple[np.ndarray, ...]:
-    """Merge two sorted runs of distinct keys (no key in both) and their value arrays.
-
-    One binary search of ``keys_b`` in ``keys_a`` gives every element's final position, so no
-    sort is needed: O((a + b) + b log a).
-
-    >>> _merge_sorted(np.array([2, 7]), (np.array([20, 70]),), np.array([1, 5, 9]),
-    ...               (np.array([10, 50, 90]),))
-    (array([1, 2, 5, 7, 9]), array([10, 20, 50, 70, 90]))
-    """
-    if keys_b.shape[0] == 0:
-        return (keys_a, *values_a)
-    if keys_a.shape[0] == 0:
-        return (keys_b, *values_b)
-    n = keys_a.shape[0] + keys_b.shape[0]
-    at_b = np.searchsorted(keys_a, keys_b) + np.arange(keys_b.shape[0])
-    is_a = np.ones(n, dtype=bool)
-    is_a[at_b] = False
-    out = []
-    for a, b in zip((keys_a, *values_a), (keys_b, *values_b), strict=True):
-        merged = np.empty(n, dtype=np.result_type(a.dtype, b.dtype))
-        merged[at_b] = b
-        merged[is_a] = a
-        out.append(merged)
-    return tuple(out)
-
-
-class _BatchCounts:
-    """How often each k-itemset occurs in one batch, as a dense array over the local key space
-    (``dense[key]``) or as sorted distinct keys with their counts."""
-
-    __slots__ = ("counts", "dense", "keys")
-
-    def __init__(
-        self,
-        keys: np.ndarray | None = None,
-        counts: np.ndarray | None = None,
-        dense: np.ndarray | None = None,
-    ) -> None:
-        self.keys = keys
-        self.counts = counts
-        self.dense = dense
-
-    @classmethod
-    def of_keys(cls, keys: np.ndarray, cells: int | None) -> _BatchCounts:
-        """Count ``keys`` (one per occurrence); ``cells`` is the key space when the keys are
-        int64 in ``[0, cells)``, else ``None``. A histogram (O(keys + cells), no sort) when
-        the key space is small beside the keys, else one sort."""
-        if (
-            cells is not None
-            and cells <= _BINCOUNT_CELLS
-            and cells <= _DENSE_PER_KEY * max(keys.shape[0], 1)
-        ):
-            return cls(dense=np.bincount(keys, minlength=cells))
-        uniq, counts = np.unique(keys, return_counts=True)
-        return cls(uniq, counts.astype(np.int64))
-
-    def take(self, keys: np.ndarray) -> np.ndarray:
-        """The batch count of each of ``keys`` (0 for one absent from the batch)."""
-        if self.dense is not None:
-            return self.dense[keys].astype(np.int64) if keys.shape[0] else keys[:0].astype(np.int64)
-        assert self.keys is not None and self.counts is not None
-        if not keys.shape[0] or not self.keys.shape[0]:
-            return np.zeros(keys.shape[0], dtype=np.int64)
-        pos, found = lookup(self.keys, keys)
-        return np.where(found, self.counts[pos], 0)
-
-    def fresh(self, min_count: int, tracked: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Sorted keys counted at least ``min_count`` times that are not in the sorted
-        ``tracked``, with their counts (consumes a dense histogram)."""
-        if self.dense is not None:
-            dense = self.dense
-            if tracked.shape[0]:
-                dense[tracked] = 0
-            keys = np.flatnonzero(dense >= min_count)
-            return keys, dense[keys].astype(np.int64)
-        assert self.keys is not None and self.counts is not None
-        sel = self.counts >= min_count
-        if tracked.shape[0] and self.keys.shape[0]:
-            _, found = lookup(tracked, self.keys)
-            sel &= ~found
-        return self.keys[sel], self.counts[sel]
-
-
-def _pair_keys(items: np.ndarray, txn: np.ndarray, t: int, radix: int) -> np.ndarray:
-    """Keys ``a * radix + b`` of every pair ``a < b`` of positions in the same transaction.
-
-    ``items``/``txn`` list each transaction's ids (ascending within it, transactions in
-    order). The item at position ``p`` pairs with the ``r_p`` items after it in its
-    transaction; all pairs come out in one pass: ``repeat`` of the first item and a running
-    index for the second, O(pairs) with no per-length loop.
-
-    >>> _pair_keys(np.array([1, 2, 3, 0, 4]), np.array([0, 0, 0, 1, 1]), 2, 10).tolist()
-    [12, 13, 23, 4]
-    """
-    ends = np.cumsum(np.bincount(txn, minlength=t))
-    pos = np.arange(items.shape[0], dtype=np.int64)
-    later = ends[txn] - pos - 1
-    first_slot = np.cumsum(later) - later  # where the pairs of position p start
-    total = int(first_slot[-1] + later[-1]) if later.shape[0] else 0
-    # second position = slot - first_slot[p] + p + 1 for every slot of position p
-    second = np.arange(total, dtype=np.int64) + np.repeat(pos + 1 - first_slot, later)
-    return np.repeat(items.astype(np.int64) * radix, later) + items[second]
-
-
-def _count_combinations(
-    items: np.ndarray, txn: np.ndarray, t: int, k: int, m: int, membership: _Membership
-) -> _BatchCounts:
-    """The k-combinations present in a batch, counted (keys in local radix ``m``).
-
-    ``items``/``txn`` list each transaction's surviving local ids (ascending within a
-    transaction, transactions in order). Pairs are enumerated in one pass
-    (:func:`_pair_keys`). For larger k, transactions are grouped by their surviving length
-    ``L``; each group is a ``(g, L)`` matrix indexed once with the ``C(L, k) x k``
-    combination table, so the work is a few large numpy operations per distinct length. For
-    triples the pair test runs on the ``C(L, 2)`` pairs of each basket and is combined per
-    triple through index tables, so a triple is materialised only when its three pairs are
-    tracked. Counting is one ``bincount`` when the key space is small, else one sort.
-    """
-    radix = max(m, 1)
-    cells = radix**k if fits_int64(radix, k) else None
-    if items.size == 0:
-        return _BatchCounts.of_keys(_pack_local(np.zeros((0, k), dtype=np.int64), m), None)
-    if k == 2:
-        return _BatchCounts.of_keys(_pair_keys(items, txn, t, radix), cells)
-    lengths = np.bincount(txn, minlength=t)
-    starts = np.zeros(t + 1, dtype=np.int64)
-    np.cumsum(lengths, out=starts[1:])
-    key_parts: list[np.ndarray] = []
-    triple_dense = k == 3 and membership.dense is not None
-    for length in np.unique(lengths[lengths >= k]).tolist():
-        table = combination_table(length, k)
-        group = np.flatnonzero(lengths == length)
-        step = max(1, _CHUNK_COMBOS // table.shape[0])
-        for lo in range(0, group.shape[0], step):
-            g = group[lo : lo + step]
-            mat = items[starts[g][:, None] + np.arange(length)]
-            if triple_dense:
-                assert membership.dense is not None
-                pairs, ab, ac, bc = _triple_pair_index(length)
-                pair_ok = membership.dense[mat[:, pairs[:, 0]], mat[:, pairs[:, 1]]]
-                valid = pair_ok[:, ab] & pair_ok[:, ac] & pair_ok[:, bc]
-                row, combo = np.nonzero(valid)
-                if row.size == 0:
-                    continue
-                sel = table[combo]
-                a = mat[row, sel[:, 0]]
-                b = mat[row, sel[:, 1]]
-                c = mat[row, sel[:, 2]]
-                key_parts.append((a * radix + b) * radix + c)
-                continue
-            combos = mat[:, table].reshape(-1, k)
-            combos = combos[membership.all_subsets_present(combos)]
-            if combos.shape[0]:
-                key_parts.append(_pack_local(combos, m))
-    if not key_parts:
-        return _BatchCounts.of_keys(_pack_local(np.zeros((0, k), dtype=np.int64), m), None)
-    keys = np.concatenate(key_parts) if len(key_parts) > 1 else key_parts[0]
-    return _BatchCounts.of_keys(keys, cells)
+    return unpack_local(keys, m, size)
