@@ -114,7 +114,7 @@ def _parse(path: Path, cfg: Any) -> tuple[Any, list[tuple[Any, Any]]]:
     """Basket lines to integer baskets, as replay does before counting: (vocabulary, chunks
     of (flat ids, lengths)), ids ascending and distinct within each basket (as the kernel's
     parse leaves them)."""
-    from streamcount.engine.engine import _sort_dedupe
+    from streamcount.engine.rows import sort_dedupe
     from streamcount.engine.vocab import ItemVocabulary
     from streamcount.replay import decode_file
 
@@ -122,7 +122,7 @@ def _parse(path: Path, cfg: Any) -> tuple[Any, list[tuple[Any, Any]]]:
     chunks = []
     for decoded in decode_file(str(path), cfg):
         flat, lengths = vocab.encode_baskets(decoded.baskets)
-        chunks.append(_sort_dedupe(flat, lengths, len(vocab)))
+        chunks.append(sort_dedupe(flat, lengths, len(vocab)))
     return vocab, chunks
 
 

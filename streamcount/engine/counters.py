@@ -38,6 +38,7 @@ its enumerated candidates in chunks of at most :data:`~streamcount.engine.batchc
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Protocol
 
@@ -351,6 +352,19 @@ class LossySummary:
                 np.asarray(arrays[f"{prefix}L{k}.f"], dtype=np.int64),
                 np.asarray(arrays[f"{prefix}L{k}.delta"], dtype=np.int64),
             )
+        return s
+
+    @classmethod
+    def from_levels(
+        cls, epsilon: float, max_itemset_size: int, n: int, levels: Sequence[Level]
+    ) -> LossySummary:
+        """A summary of ``n`` transactions with the given entries (e.g. counted by another
+        process); the levels must be in this class's order (see :attr:`levels`)."""
+        if len(levels) != max_itemset_size:
+            raise ValueError(f"{len(levels)} levels for max_itemset_size={max_itemset_size}")
+        s = cls(epsilon, max_itemset_size)
+        s.n = int(n)
+        s._levels = list(levels)
         return s
 
     def check_invariants(self) -> None:

@@ -29,8 +29,9 @@ import numpy as np
 
 from streamcount.config.load import config_from_mapping
 from streamcount.config.settings import MAX_TIMESTAMP, EngineConfig
-from streamcount.engine.counters import bucket_width
+from streamcount.engine.counters import Level, LossySummary, bucket_width
 from streamcount.engine.pane import Pane
+from streamcount.engine.rows import renumber, select_rows, sort_dedupe
 from streamcount.engine.snapshot import EngineStatistics, WindowSnapshot
 from streamcount.engine.vocab import ItemVocabulary
 from streamcount.engine.window import SlidingWindow
@@ -149,6 +150,39 @@ class Engine:
         t = len(baskets)
         if t == 0:
             return AddResult(0, last_seq=self.next_seq - 1)
+        ok, rejections, ts, pane_idx = self._guards(baskets, timestamps)
+        keep = np.flatnonzero(ok)
+        kept = [baskets[i] for i in keep.tolist()] if keep.shape[0] != t else baskets
+        # items of rejected baskets are never interned
+        flat, lengths = self.vocabulary.encode_baskets(kept)
+        flat, lengths = sort_dedupe(flat, lengths, len(self.vocabulary))
+        return self._admit(flat, lengths, keep, ts, pane_idx, rejections)
+
+    def screen(
+        self,
+        baskets: Sequence[Sequence[str]],
+        timestamps: Sequence[float | None] | None = None,
+    ) -> tuple[np.ndarray, list[Rejection]]:
+        """What :meth:`add` would do with ``baskets`` now, without counting or interning:
+        the indices it would accept and the rejections it would report (in index order).
+
+        A worker that decodes part of a feed uses it to know how many transactions the part
+        holds before the part's first sequence number is known.
+        """
+        if not len(baskets):
+            return np.zeros(0, dtype=np.int64), []
+        ok, rejections, _, _ = self._guards(baskets, timestamps)
+        rejections.sort(key=lambda r: r.index)
+        return np.flatnonzero(ok), rejections
+
+    def _guards(
+        self,
+        baskets: Sequence[Sequence[str]],
+        timestamps: Sequence[float | None] | None,
+    ) -> tuple[np.ndarray, list[Rejection], np.ndarray, np.ndarray | None]:
+        """Every rejection rule of :meth:`add` (no state changes): ``(accepted mask,
+        rejections, event times, pane of each row for a time-based window)``."""
+        t = len(baskets)
         lengths_raw = np.fromiter(map(len, baskets), dtype=np.int64, count=t)
         rejections: list[Rejection] = []
         distinct = lengths_raw.copy()  # exact where it matters: above the cap
@@ -156,12 +190,7 @@ class Engine:
             distinct[i] = len(set(baskets[i]))
         ok = self._size_guards(lengths_raw, distinct, rejections)
         ts, pane_idx = self._time_guards(t, timestamps, ok, rejections)
-        keep = np.flatnonzero(ok)
-        kept = [baskets[i] for i in keep.tolist()] if keep.shape[0] != t else baskets
-        # items of rejected baskets are never interned
-        flat, lengths = self.vocabulary.encode_baskets(kept)
-        flat, lengths = _sort_dedupe(flat, lengths, len(self.vocabulary))
-        return self._admit(flat, lengths, keep, ts, pane_idx, rejections)
+        return ok, rejections, ts, pane_idx
 
     def add_ids(
         self,
@@ -189,14 +218,78 @@ class Engine:
             raise ValueError(f"add_ids: ids must lie in [0, {len(self.vocabulary)})")
         if t == 0:
             return AddResult(0, last_seq=self.next_seq - 1)
-        flat, distinct = _sort_dedupe(flat, lengths, len(self.vocabulary))
+        flat, distinct = sort_dedupe(flat, lengths, len(self.vocabulary))
         rejections: list[Rejection] = []
         ok = self._size_guards(lengths, distinct, rejections)
         ts, pane_idx = self._time_guards(t, timestamps, ok, rejections)
         keep = np.flatnonzero(ok)
         if keep.shape[0] != t:
-            flat, distinct = _select_rows(flat, distinct, ok)
+            flat, distinct = select_rows(flat, distinct, ok)
         return self._admit(flat, distinct, keep, ts, pane_idx, rejections)
+
+    def start_at(self, seq: int) -> None:
+        """Number the next accepted transaction ``seq`` (a fresh engine counting a later part
+        of a feed whose first ``seq - 1`` transactions are counted elsewhere)."""
+        if self.transactions_seen or self.next_seq != 1:
+            raise ValueError("start_at: only a fresh engine can start at another sequence number")
+        if seq < 1:
+            raise ValueError(f"start_at: seq = {seq}; sequence numbers start at 1")
+        self.next_seq = int(seq)
+
+    def add_counted_pane(
+        self,
+        levels: Sequence[Level],
+        names: Sequence[str],
+        transactions: int,
+        *,
+        min_ts: float | None = None,
+        max_ts: float | None = None,
+    ) -> AddResult:
+        """Take a whole pane counted elsewhere: the next ``pane_size`` transactions, as the
+        Lossy Counting summary of exactly those transactions (``levels``: one per itemset
+        size, item ids indexing ``names``), then close it as :meth:`add` would.
+
+        Gives the same window as counting those transactions here (a worker that counted
+        them with this engine's settings produced the same summary): the names are interned
+        in the given order, rows are renumbered to this engine's ids, and ``on_pane_closed``
+        runs. Count-based windows only; the pane must start at the next pane boundary.
+
+        Raises
+        ------
+        ValueError
+            A time-based window, a pane that is not whole or not next, or levels that do not
+            fit the settings.
+        """
+        size = self.pane_size
+        if size is None:
+            raise ValueError("add_counted_pane: count-based windows only")
+        if transactions != size or (self.next_seq - 1) % size:
+            raise ValueError(
+                f"add_counted_pane: a pane of {transactions} transactions at sequence number "
+                f"{self.next_seq}; a counted pane must hold pane_size={size} transactions "
+                "and start at a pane boundary"
+            )
+        if len(levels) != self.max_itemset_size:
+            raise ValueError(
+                f"add_counted_pane: {len(levels)} levels for max_itemset_size="
+                f"{self.max_itemset_size}"
+            )
+        index = (self.next_seq - 1) // size
+        if index in self.window.panes:
+            raise ValueError(f"add_counted_pane: pane {index} already holds transactions")
+        ids = self.vocabulary.encode_flat(names, len(names))
+        pane = self.window.pane(index)
+        pane.summary = LossySummary.from_levels(
+            self.epsilon, self.max_itemset_size, size, renumber(levels, ids)
+        )
+        pane.first_seq, pane.last_seq = self.next_seq, self.next_seq + size - 1
+        pane.min_ts, pane.max_ts = min_ts, max_ts
+        self.next_seq += size
+        self.transactions_seen += size
+        self.window.close_counted(pane)
+        if self.on_pane_closed is not None:
+            self.on_pane_closed(self)
+        return AddResult(size, (), 1, self.next_seq - 1, {})
 
     def _size_guards(
         self, lengths_raw: np.ndarray, distinct: np.ndarray, rejections: list[Rejection]
@@ -508,31 +601,3 @@ class Engine:
         eng.max_event_ts = meta["max_event_ts"]  # type: ignore[assignment]
         eng.window.load_state(meta["window"], arrays)  # type: ignore[arg-type]
         return eng
-
-
-def _select_rows(
-    flat: np.ndarray, lengths: np.ndarray, ok: np.ndarray
-) -> tuple[np.ndarray, np.ndarray]:
-    """The rows ``ok`` of a CSR chunk."""
-    return flat[np.repeat(ok, lengths)], lengths[ok]
-
-
-def _sort_dedupe(
-    flat: np.ndarray, lengths: np.ndarray, vocab_size: int
-) -> tuple[np.ndarray, np.ndarray]:
-    """Sort the ids of each transaction and drop repeats, all transactions at once."""
-    t = lengths.shape[0]
-    if flat.size == 0:
-        return flat, lengths
-    txn = np.repeat(np.arange(t, dtype=np.int64), lengths)
-    radix = max(vocab_size, 1)
-    combined = txn * radix + flat
-    # already ascending and distinct within every transaction? (common for sorted feeds)
-    step = np.diff(combined)
-    if (step > 0).all():
-        return flat, lengths
-    combined.sort()
-    keep = np.concatenate(([True], combined[1:] != combined[:-1]))
-    combined = combined[keep]
-    new_txn = combined // radix
-    return (combined % radix).astype(np.int32), np.bincount(new_txn, minlength=t).astype(np.int64)
