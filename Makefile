@@ -4,22 +4,29 @@ PYTHON ?= python3
 VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
+RUNTIME := $(VENV)/.runtime
 
-.PHONY: demo test test-fast lint fmt bench clean tools
+.PHONY: demo test test-fast lint typecheck fmt bench clean tools
 
 # The external programs the tests drive, each as program=Debian package. tests/tools.py holds
 # the same table (tests/test_tools.py checks the two agree).
 TOOLS := promtool=prometheus nats-server=nats-server chromium=chromium chromedriver=chromium-driver
 APT   := apt-get -o DPkg::Lock::Timeout=300 -qq
 
-$(STAMP): pyproject.toml
+# the runtime dependencies only (what `make demo` needs)
+$(RUNTIME): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
 	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet -e .
+	touch $(RUNTIME)
+
+# plus the test extra (pytest, hypothesis, scipy, jsonschema, ruff, mypy...)
+$(STAMP): $(RUNTIME)
 	$(BIN)/python -m pip install --quiet -e '.[test]'
 	touch $(STAMP)
 
 ## demo: the invented shop's live feed with alerts as they fire (about 45 s)
-demo: $(STAMP)
+demo: $(RUNTIME)
 	$(BIN)/streamcount demo
 
 ## tools: install the external programs the tests drive from Debian's packages (as root with
@@ -42,6 +49,7 @@ tools:
 test: $(STAMP) tools
 	$(BIN)/ruff check streamcount tests bench examples
 	$(BIN)/ruff format --check streamcount tests bench examples
+	$(BIN)/mypy
 	$(BIN)/python -m pytest -q
 
 ## test-fast: everything but the tests marked slow
@@ -52,6 +60,10 @@ lint: $(STAMP)
 	$(BIN)/ruff check streamcount tests bench examples
 	$(BIN)/ruff format --check streamcount tests bench examples
 
+## typecheck: mypy as configured in pyproject.toml (--strict for the counting core)
+typecheck: $(STAMP)
+	$(BIN)/mypy
+
 fmt: $(STAMP)
 	$(BIN)/ruff format streamcount tests bench examples
 	$(BIN)/ruff check --fix streamcount tests bench examples
@@ -61,4 +73,4 @@ bench: $(STAMP)
 	$(BIN)/python bench/bench_replay.py --record
 
 clean:
-	rm -rf $(VENV) .pytest_cache .ruff_cache .hypothesis build *.egg-info
+	rm -rf $(VENV) .pytest_cache .ruff_cache .mypy_cache .hypothesis build *.egg-info

@@ -1,8 +1,11 @@
 """A tiny webhook receiver for streamcount alert records (for trying the webhook sink).
 
 Run ``python examples/webhook_receiver.py --port 8765`` and set
-``sinks.webhook.url: http://127.0.0.1:8765/alerts``. Each POSTed record is printed as one line;
-records seen before (same ``id``, e.g. re-sent after a restart) are skipped.
+``sinks.webhook.url: http://127.0.0.1:8765/alerts``. Each POSTed record is printed as one line.
+Records seen before (same ``id``) are skipped: after a crash, streamcount resumes from its last
+checkpoint and raises the alerts of the panes since then again, with the same ids, so a
+receiver that deduplicates on ``id`` sees each alert once. Alerts are signals for a person to
+review, not decisions.
 """
 
 from __future__ import annotations
@@ -10,9 +13,26 @@ from __future__ import annotations
 import argparse
 import contextlib
 import json
+import threading
+from collections import OrderedDict
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 
-_seen: set[str] = set()
+#: ids already printed (the most recent ones; bounded so a long run does not grow forever)
+_seen: OrderedDict[str, None] = OrderedDict()
+_SEEN_MAX = 100_000
+_lock = threading.Lock()
+
+
+def first_time(alert_id: str) -> bool:
+    """True the first time an id is seen (thread-safe)."""
+    with _lock:
+        if alert_id in _seen:
+            _seen.move_to_end(alert_id)
+            return False
+        _seen[alert_id] = None
+        if len(_seen) > _SEEN_MAX:
+            _seen.popitem(last=False)
+        return True
 
 
 class _Handler(BaseHTTPRequestHandler):
@@ -24,10 +44,17 @@ class _Handler(BaseHTTPRequestHandler):
             self.send_response(400)
             self.end_headers()
             return
-        if record.get("id") not in _seen:
-            _seen.add(record.get("id"))
+        if first_time(str(record.get("id"))):
             rule = record.get("antecedent"), record.get("consequent")
-            print(f"{record.get('kind')}: items={record.get('items')} rule={rule}", flush=True)
+            evidence = record.get("evidence") or {}
+            before = (evidence.get("reference_rate") or {}).get("value")
+            now = (evidence.get("recent_rate") or {}).get("value")
+            print(
+                f"{record.get('kind')}: items={record.get('items')} rule={rule} "
+                f"rate {before} -> {now} since seq {evidence.get('change_seq')} "
+                f"id={record.get('id')}",
+                flush=True,
+            )
         self.send_response(204)
         self.end_headers()
 

@@ -2,20 +2,22 @@
 
 Data flow (open the modules in this order to follow one order through the service)::
 
-    sources     a followed file / stdin / HTTP ingest -> raw records with source offsets
-    formats     raw record -> Transaction (basket, JSON lines, CSV order lines); bad -> deadletter
-    vocab       item names -> dense int ids
-    engine      batches transactions into panes (count- or time-based), closes and expires them
-      window    Pane: a Lossy Counting summary + buffer; combine_panes sums panes into a window
-      counters  LossySummary: itemset counts of one pane, vectorised on integer keys (keys)
-    snapshot    WindowSnapshot: frozen window counts with lower/upper bounds
-    rules       frequent itemsets -> rules with support/confidence/lift... as intervals (measures)
-    alerts      RuleMonitor: hysteresis, confirmation, cooldown, surges, families -> Alert
-    sinks       alert records -> log / JSON lines / webhook, each isolated
+    intake/sources   file / stdin / HTTP ingest (one registry) -> RecordBatch (lines + offsets)
+    intake/formats   RecordBatch -> Decoded transactions (basket, JSON lines, CSV order lines);
+                     bad records -> ParseError -> intake/deadletter
+    pipeline         Decoded -> engine; at each pane close: rules and alerts -> sinks
+    engine/engine    guards, sequence numbers, batching into panes (count- or time-based)
+      engine/window  SlidingWindow: panes in order, expiry, warm-up, the split cache
+      engine/pane    Pane: a counting summary + the buffer not yet counted (its exact overlay)
+      engine/counters  LossySummary: itemset counts of one pane, vectorised on integer keys
+    engine/snapshot  WindowSnapshot: frozen window counts with lower/upper bounds
+    rules            frequent itemsets -> rules with support/confidence/lift... as intervals
+    alerts           rule list; CUSUM change tests per itemset under one false-alert budget;
+                     detectors (emerged, surged, faded) -> Alert records -> sinks
 
-Around the flow: config + configload (typed, validated settings), metrics (Prometheus),
-server (HTTP API), checkpoint (atomic, versioned state files), app (the service loop),
-replay (a file as fast as possible), generator + catalog + demo (synthetic feeds), cli.
+Around the flow: config (typed, validated settings), service (the loop, the HTTP API, metrics,
+checkpoints), replay (a file as fast as possible), cli, and apart from the core the demo
+material (demo: the generator, the invented shop, the demo).
 """
 
 from __future__ import annotations

@@ -39,9 +39,7 @@ SETTING_OPTIONS: tuple[tuple[str, str, type], ...] = (
     ("rules", "max_consequent_size", int),
     ("rules", "max_p_value", float),
     ("rules", "significance", str),
-    ("rules", "confirm_evaluations", int),
-    ("rules", "cooldown_evaluations", int),
-    ("alerts", "growth_rate", float),
+    ("alerts", "false_alerts_per_million", float),
     ("alerts", "recent_panes", int),
 )
 #: JSON lines field names (input.jsonl.*)

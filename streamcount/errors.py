@@ -15,6 +15,9 @@ Messages name what was wrong (the dotted key, argument or record position), show
 
 from __future__ import annotations
 
+import errno
+import os
+
 __all__ = [
     "REASONS",
     "CheckpointError",
@@ -23,6 +26,7 @@ __all__ = [
     "ParseError",
     "SinkError",
     "StreamcountError",
+    "describe_os_error",
 ]
 
 
@@ -38,6 +42,12 @@ REASONS: dict[str, str] = {
     "empty": "a transaction with no items (a blank basket line is not a record)",
     "too_late": "an event time whose pane has already closed",
     "too_early": "an event time more than input.max_future_seconds ahead of the clock",
+    "control_chars": (
+        "an item name or order id holding a control character (C0 except tab, DEL, C1), a "
+        "line or paragraph separator (U+2028, U+2029) or a bidirectional mark, embedding, "
+        "override or isolate (U+061C, U+200E, U+200F, U+202A-U+202E, U+2066-U+2069), which "
+        "could disguise a name where it is shown"
+    ),
 }
 
 
@@ -56,12 +66,19 @@ class ConfigError(StreamcountError, ValueError):
         The value found.
     rule:
         The rule it breaks, written as advice, e.g. ``"must be in [0, 1)"``.
+
+    Attributes
+    ----------
+    source:
+        Where the settings came from (a file path, ``"<overrides>"``...), set by the loader;
+        ``None`` when unknown.
     """
 
     def __init__(self, key: str, value: object, rule: str) -> None:
         self.key = key
         self.value = value
         self.rule = rule
+        self.source: str | None = None
         super().__init__(f"{key} = {value!r}: {rule}")
 
 
@@ -103,3 +120,67 @@ class CheckpointError(StreamcountError):
 
 class SinkError(StreamcountError):
     """An alert sink could not deliver a record."""
+
+
+#: what each role's path is set by, so a message can say where to point it instead
+_ROLE_KEYS: dict[str, str] = {
+    "checkpoint": "checkpoint.checkpoint_dir",
+    "dead-letter": "input.dead_letter_path",
+    "sink": "sinks.file",
+    "token": "server.token_file",
+    "TLS certificate": "server.tls_certificate",
+    "TLS key": "server.tls_key",
+}
+
+
+def describe_os_error(role: str, path: str | os.PathLike[str] | None, exc: OSError) -> str:
+    """One line for an operating-system error on a file streamcount writes or reads.
+
+    Names the role (``checkpoint``, ``dead-letter``, ``sink``...), the path and the way out,
+    instead of a bare ``[Errno 13] Permission denied: <path>``.
+
+    Parameters
+    ----------
+    role:
+        What the file is for; one of ``checkpoint``, ``dead-letter``, ``sink``, ``token``,
+        ``TLS certificate``, ``TLS key`` names the config key to change as well (any other
+        text is used as it is).
+    path:
+        The file or directory concerned (``exc.filename`` when ``None``).
+    exc:
+        The error raised.
+
+    Examples
+    --------
+    >>> import errno
+    >>> err = PermissionError(errno.EACCES, "Permission denied", "/srv/ckpt/state.tmp")
+    >>> print(describe_os_error("checkpoint", "/srv/ckpt", err))  # doctest: +ELLIPSIS
+    checkpoint /srv/ckpt: permission denied (...); give the user running streamcount ...
+    >>> full = OSError(errno.ENOSPC, "No space left on device")
+    >>> print(describe_os_error("dead-letter", "dead.jsonl", full))  # doctest: +ELLIPSIS
+    dead-letter dead.jsonl: no space left on the device (ENOSPC); free space there or set ...
+    """
+    where = os.fspath(path) if path is not None else (exc.filename or "?")
+    key = _ROLE_KEYS.get(role)
+    move = f"set {key} to" if key else "use"
+    code = exc.errno
+    name = errno.errorcode.get(code, "no errno") if code is not None else "no errno"
+    if code in (errno.EACCES, errno.EPERM):
+        uid = os.getuid() if hasattr(os, "getuid") else "?"
+        fix = (
+            f"permission denied ({name}); give the user running streamcount (uid {uid}) access "
+            f"to it and its directory, or {move} a path it may write"
+        )
+    elif code in (errno.ENOSPC, getattr(errno, "EDQUOT", errno.ENOSPC)):
+        fix = f"no space left on the device ({name}); free space there or {move} another disk"
+    elif code == errno.EROFS:
+        fix = f"the file system is read-only ({name}); remount it read-write or {move} another disk"
+    elif code == errno.ENOENT:
+        fix = f"no such file or directory ({name}); create the directory or {move} another path"
+    elif code in (errno.EISDIR, errno.ENOTDIR):
+        fix = f"{(exc.strerror or str(exc)).lower()} ({name}); {move} a file path"
+    elif code == errno.EIO:
+        fix = f"input/output error ({name}); the disk may be failing, check the system log"
+    else:
+        fix = f"{exc.strerror or exc} ({name}); check the path and the disk"
+    return f"{role} {where}: {fix}"

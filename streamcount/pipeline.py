@@ -37,6 +37,9 @@ logger = logging.getLogger(__name__)
 _CHECKPOINT_ALERTS = 100
 
 AlertListener = Callable[[list[dict[str, Any]]], None]
+#: called at every evaluated pane close: (the pane-close number, the window evaluated, the
+#: alert records raised there)
+CloseListener = Callable[[int, WindowSnapshot, list[dict[str, Any]]], None]
 
 
 @dataclass(slots=True)
@@ -83,7 +86,17 @@ class Pipeline:
         self.sinks = sinks
         self.clock = clock
         self.engine = Engine(config.engine, on_pane_closed=self._on_pane_closed)
-        self.monitor = RuleMonitor(config.rules, config.alerts) if alerts else None
+        self.engine.on_remap = self._on_remap
+        self.monitor = (
+            RuleMonitor(
+                config.rules,
+                config.alerts,
+                max_itemset_size=config.engine.max_itemset_size,
+                window_panes=self.engine.window_panes,
+            )
+            if alerts
+            else None
+        )
         #: the most recent alert records, oldest first (``alerts.history`` of them)
         self.alert_history: deque[dict[str, Any]] = deque(maxlen=max(1, config.alerts.history))
         self.alert_counts: Counter[str] = Counter()
@@ -91,13 +104,21 @@ class Pipeline:
         self.rejected_counts: Counter[str] = Counter()
         #: the window the rules were last evaluated on (at the last pane close)
         self.last_close: WindowSnapshot | None = None
+        #: pane closes evaluated so far (an id that grows with every evaluation)
+        self.closes = 0
         self._listeners: list[AlertListener] = []
+        self._close_listeners: list[CloseListener] = []
 
     # -- intake -------------------------------------------------------------------------------
 
     def on_alerts(self, listener: AlertListener) -> None:
         """Call ``listener`` with the records raised at each pane close that raises some."""
         self._listeners.append(listener)
+
+    def on_close(self, listener: CloseListener) -> None:
+        """Call ``listener`` after every evaluated pane close (history, views), whether it
+        raised alerts or not; the monitor's active rules are current then."""
+        self._close_listeners.append(listener)
 
     def add(self, decoded: Decoded) -> Intake:
         """Count decoded transactions; returns what was accepted and everything set aside."""
@@ -169,20 +190,24 @@ class Pipeline:
     def _on_pane_closed(self, engine: Engine) -> None:
         if self.monitor is None:
             return
-        fired, window = self.monitor.evaluate_close(
-            engine, recent_panes=self.config.alerts.recent_panes
-        )
+        fired, window = self.monitor.evaluate_close(engine)
         self.last_close = window
-        if not fired:
-            return
+        self.closes += 1
         records = [a.as_dict() for a in fired]
-        self.alert_history.extend(records)
-        self.alert_counts.update(str(r["kind"]) for r in records)
-        if self.sinks is not None:
-            for record in records:
-                self.sinks.emit(record)
-        for listener in self._listeners:
-            listener(records)
+        if records:
+            self.alert_history.extend(records)
+            self.alert_counts.update(str(r["kind"]) for r in records)
+            if self.sinks is not None:
+                for record in records:
+                    self.sinks.emit(record)
+            for listener in self._listeners:
+                listener(records)
+        for close_listener in self._close_listeners:
+            close_listener(self.closes, window, records)
+
+    def _on_remap(self, mapping: np.ndarray) -> None:
+        if self.monitor is not None:
+            self.monitor.remap(mapping)
 
     # -- views --------------------------------------------------------------------------------
 
@@ -200,12 +225,17 @@ class Pipeline:
     def state(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
         """The whole counting state: engine, monitor, alert history and counts."""
         engine_meta, arrays = self.engine.state()
+        monitor_meta = None
+        if self.monitor is not None:
+            monitor_meta, monitor_arrays = self.monitor.state()
+            arrays.update(monitor_arrays)
         meta = {
             "engine": engine_meta,
-            "monitor": None if self.monitor is None else self.monitor.state_dict(),
+            "monitor": monitor_meta,
             "alerts": list(self.alert_history)[-_CHECKPOINT_ALERTS:],
             "alert_counts": dict(self.alert_counts),
             "rejected_counts": dict(self.rejected_counts),
+            "closes": self.closes,
         }
         return meta, arrays
 
@@ -218,12 +248,14 @@ class Pipeline:
         self.engine = Engine.from_state(
             self.config.engine, meta["engine"], arrays, on_pane_closed=self._on_pane_closed
         )
+        self.engine.on_remap = self._on_remap
         if self.monitor is not None:
-            self.monitor.load_state(meta.get("monitor") or {})
+            self.monitor.load_state(meta.get("monitor") or {}, arrays)
         self.alert_history.clear()
         self.alert_history.extend(meta.get("alerts", []))
         self.alert_counts = Counter(meta.get("alert_counts", {}))
         self.rejected_counts = Counter(meta.get("rejected_counts", {}))
+        self.closes = int(meta.get("closes", 0))
 
     def check_invariants(self) -> None:
         """Assert the engine's invariants (the monitor's own come with the detectors)."""

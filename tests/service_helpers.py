@@ -262,9 +262,12 @@ class ServiceProcess:
             f"transactions_seen == {seen} and window.last_seq == {last}",
         )
 
-    def metrics(self) -> dict[tuple[str, tuple[tuple[str, str], ...]], float]:
-        """GET /metrics over HTTP, parsed with prometheus-client's text parser."""
-        result = self.request("GET", "/metrics")
+    def metrics(
+        self, headers: Mapping[str, str] | None = None
+    ) -> dict[tuple[str, tuple[tuple[str, str], ...]], float]:
+        """GET /metrics over HTTP (``headers``: the token, when one is set), parsed with
+        prometheus-client's text parser."""
+        result = self.request("GET", "/metrics", headers=headers)
         assert result.status == 200, (result.status, result.body)
         assert result.headers["content-type"].startswith("text/plain"), result.headers
         return parse_metrics(result.body.decode("utf-8"))

@@ -120,9 +120,23 @@ def test_logging_level_is_case_insensitive(tmp_path: Path) -> None:
     assert load_config(_write(tmp_path, "logging:\n  level: debug\n")).logging.level == "DEBUG"
 
 
-def test_missing_file(tmp_path: Path) -> None:
-    with pytest.raises(ConfigError, match="cannot be read"):
-        load_config(tmp_path / "nope.yaml")
+def test_missing_file_says_no_such_file_and_names_it_once(tmp_path: Path, capsys) -> None:
+    missing = tmp_path / "nope.yaml"
+    with pytest.raises(ConfigError, match="no such file") as info:
+        load_config(missing)
+    assert str(info.value).count(str(missing)) == 1
+    assert "encoding" not in str(info.value) and "UTF-8" not in str(info.value)
+    assert check_config_main(missing) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.count(str(missing)) == 1 and "no such file" in err
+
+
+def test_a_file_that_is_not_utf8_is_named_with_the_byte(tmp_path: Path) -> None:
+    path = tmp_path / "latin.yaml"
+    path.write_bytes(b"engine:\n  epsilon: 0.01 # caf\xe9\n")
+    with pytest.raises(ConfigError, match="not UTF-8 text") as info:
+        load_config(path)
+    assert "byte 29" in str(info.value)
 
 
 def test_yaml_syntax_error_names_line_and_column(tmp_path: Path) -> None:
@@ -185,7 +199,13 @@ BAD_CONFIGS = [
     ("rules:\n  min_confidence: 1.5\n", "rules.min_confidence", "must be in [0, 1]"),
     ("rules:\n  min_lift: -1\n", "rules.min_lift", ">= 0"),
     ("rules:\n  exit_ratio: 0\n", "rules.exit_ratio", "(0, 1]"),
-    ("rules:\n  confirm_evaluations: 0\n", "rules.confirm_evaluations", ">= 1"),
+    ("rules:\n  confirm_evaluations: 2\n", "rules.confirm_evaluations", "was retired"),
+    ("rules:\n  cooldown_evaluations: 2\n", "rules.cooldown_evaluations", "was retired"),
+    (
+        "alerts:\n  surge_max_p_value: 0.01\n",
+        "alerts.surge_max_p_value",
+        "false_alerts_per_million",
+    ),
     ("rules:\n  significance: bayes\n", "rules.significance", "'fisher', 'chi2'"),
     (
         "rules:\n  max_consequent_size: 3\n",
@@ -201,13 +221,27 @@ BAD_CONFIGS = [
     ("input:\n  path: '-'\n", "input.path", "input.source: stdin"),
     ("input:\n  start_at: middle\n", "input.start_at", "'beginning', 'end'"),
     ("input:\n  encoding: klingon-8\n", "input.encoding", "text encoding"),
+    ("input:\n  encoding: utf-16\n", "input.encoding", "ASCII-compatible"),
     ("input:\n  csv:\n    delimiter: ';;'\n", "input.csv.delimiter", "single character"),
+    ("input:\n  csv:\n    delimiter: '\"'\n", "input.csv.delimiter", "other than a quote"),
+    (
+        "input:\n  format: csv\n  csv:\n    header: false\n",
+        "input.csv.order_field",
+        "0-based number",
+    ),
+    (
+        "input:\n  format: csv\n  csv:\n    header: false\n    order_field: '0'\n"
+        "    item_field: '1'\n    ts_field: '2'\n    quantity_field: qty\n",
+        "input.csv.quantity_field",
+        "0-based number",
+    ),
     (
         "input:\n  source: [file, http]\nserver:\n  listen: null\n",
         "input.source",
         "server.listen",
     ),
-    ("alerts:\n  growth_rate: 1.0\n", "alerts.growth_rate", "> 1"),
+    ("alerts:\n  growth_rate: 3.0\n", "alerts.growth_rate", "was retired"),
+    ("alerts:\n  false_alerts_per_million: 0\n", "alerts.false_alerts_per_million", "(0, 1000000]"),
     ("alerts:\n  recent_panes: 10\n", "alerts.recent_panes", "< the window's panes (10"),
     ("server:\n  listen: localhost\n", "server.listen", "host:port"),
     ("server:\n  listen: 127.0.0.1:70000\n", "server.listen", "0..65535"),
@@ -235,7 +269,7 @@ def test_bad_config_names_key_and_rule(tmp_path: Path, text: str, key: str, rule
     assert err.key == key
     assert rule in err.rule
     assert str(err).startswith(f"{key} = ")
-    assert err.source == str(path)  # type: ignore[attr-defined]
+    assert err.source == str(path)
 
 
 def test_exponent_without_dot_gets_a_hint(tmp_path: Path) -> None:
@@ -299,7 +333,10 @@ def test_fingerprint_follows_counting_settings_only() -> None:
     assert fingerprint(base) == fingerprint(Config())
     assert len(fingerprint(base)) == 64
     assert set(fingerprint_settings(base)) == set(FINGERPRINT_KEYS)
-    same = apply_overrides(base, {"rules.min_support": 0.2, "server.listen": "0.0.0.0:1"})
+    same = apply_overrides(
+        base,
+        {"rules.min_support": 0.2, "server.listen": "0.0.0.0:1", "server.behind_proxy": True},
+    )
     assert fingerprint(same) == fingerprint(base)
     for key, value in [
         ("engine.epsilon", 0.002),
@@ -330,6 +367,17 @@ def test_parse_listen() -> None:
             parse_listen(bad)
 
 
+def test_csv_column_numbers_are_only_required_for_csv() -> None:
+    # header: false needs column numbers only where the CSV decoder is used
+    csv = {"header": False}
+    assert config_from_mapping({"input": {"format": "basket", "csv": csv}}).input.csv == (
+        dataclasses.replace(Config().input.csv, header=False)
+    )
+    numbers = {"header": False, "order_field": "2", "item_field": "0", "ts_field": "1"}
+    cfg = config_from_mapping({"input": {"format": "csv", "csv": numbers}})
+    assert (cfg.input.csv.header, cfg.input.csv.order_field) == (False, "2")
+
+
 def test_check_config_main(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     good = _write(tmp_path, "engine:\n  epsilon: 0.01\n", "good.yaml")
     assert check_config_main(good) == 0
@@ -346,7 +394,7 @@ def test_check_config_main(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -
 
 def test_engine_section_fields_are_all_validated() -> None:
     # every engine key has a rule in the table (a key without any rule is easy to forget)
-    from streamcount.config.load import _RULES
+    from streamcount.config.checks import KEY_RULES
 
     for f in dataclasses.fields(EngineConfig):
-        assert f"engine.{f.name}" in _RULES, f.name
+        assert f"engine.{f.name}" in KEY_RULES, f.name

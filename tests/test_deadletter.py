@@ -4,6 +4,10 @@ from __future__ import annotations
 
 import json
 import logging
+import os
+import subprocess
+import sys
+import textwrap
 
 import pytest
 
@@ -111,3 +115,107 @@ def test_unwritable_path_warns_and_keeps_counting_even_as_root(tmp_path, caplog)
     assert dl.counts() == {"malformed": 2}
     assert dl.failed_writes == 2
     assert sum("cannot be written" in r.getMessage() for r in caplog.records) == 1
+
+
+# --- losses are counted per record, logged with the number lost, and exposed as a metric ---
+
+
+def _bad_records(n: int, start: int = 0) -> list[ParseError]:
+    decoder = BasketDecoder(max_basket_items=1)
+    return [rejected(decoder, f"tea jam-{i}".encode(), i) for i in range(start, start + n)]
+
+
+@pytest.mark.skipif(not os.path.exists("/dev/full"), reason="needs /dev/full (Linux)")
+def test_full_device_counts_every_record_lost(caplog):
+    # /dev/full accepts the open and fails every write with ENOSPC, as a full disk does
+    caplog.set_level(logging.INFO, logger="streamcount.intake.deadletter")
+    dl = DeadLetterFile("/dev/full")
+    for error in _bad_records(502):
+        dl.write(error, source="orders.csv")
+    dl.flush()
+    assert dl.failed_writes == 502
+    assert dl.counts() == {"too_many_items": 502}
+    for error in _bad_records(7, start=502):
+        dl.write(error, source="orders.csv")
+    dl.close()
+    assert dl.failed_writes == 509
+    warnings = [r.getMessage() for r in caplog.records if r.levelno == logging.WARNING]
+    # one warning for the streak (the next would come a minute later), with the number lost,
+    # the role, the path and the way out
+    assert len(warnings) == 1, warnings
+    (message,) = warnings
+    assert "502 records lost so far" in message
+    assert "dead-letter /dev/full" in message
+    assert "no space left" in message and "input.dead_letter_path" in message
+    assert "record(s)" not in message
+
+
+def test_write_cut_short_counts_only_the_lines_that_did_not_arrive(tmp_path):
+    # A real short write: the file size limit (RLIMIT_FSIZE) stops a write part-way, as a disk
+    # filling up does; then the limit is lifted and writing goes on. Run in a child process so
+    # the limit never touches the test process.
+    path = tmp_path / "dead.jsonl"
+    script = textwrap.dedent(
+        f"""
+        import json, resource, signal
+        from streamcount.errors import ParseError
+        from streamcount.intake.deadletter import DeadLetterFile
+        signal.signal(signal.SIGXFSZ, signal.SIG_IGN)  # a failed write, not a killed process
+        soft, hard = resource.getrlimit(resource.RLIMIT_FSIZE)
+        resource.setrlimit(resource.RLIMIT_FSIZE, (1000, hard))
+        dl = DeadLetterFile({str(path)!r})
+        for i in range(40):
+            dl.write(ParseError("empty", "no item", offset=i, raw=b"," * 7), source="s")
+        dl.flush()
+        lost_first = dl.failed_writes
+        resource.setrlimit(resource.RLIMIT_FSIZE, (soft, hard))
+        for i in range(40, 45):
+            dl.write(ParseError("empty", "no item", offset=i, raw=b"," * 7), source="s")
+        dl.close()
+        print(json.dumps([lost_first, dl.failed_writes]))
+        """
+    )
+    done = subprocess.run(
+        [sys.executable, "-c", script], capture_output=True, text=True, timeout=60, check=False
+    )
+    assert done.returncode == 0, done.stderr
+    lost_first, lost_total = json.loads(done.stdout)
+    lines = path.read_bytes().split(b"\n")
+    assert lines[-1] == b""
+    whole = []
+    torn = []
+    for line in lines[:-1]:
+        try:
+            whole.append(json.loads(line))
+        except ValueError:
+            torn.append(line)
+    assert path.stat().st_size >= 1000  # the first flush filled the file up to the limit
+    # the cut line is alone on its line: the next write started a new one
+    assert len(torn) == 1 and len(torn[0]) < len(lines[0])
+    offsets = [row["offset"] for row in whole]
+    assert offsets == [*range(len(offsets) - 5), *range(40, 45)]
+    assert lost_first == lost_total == 40 - (len(offsets) - 5)
+    assert 0 < lost_first < 40
+
+
+def test_lost_records_reach_the_metric(tmp_path):
+    from prometheus_client import CollectorRegistry
+
+    from streamcount.service.metrics import Metrics
+
+    registry = CollectorRegistry()
+    metrics = Metrics(registry, statistics=lambda: None)
+    target = tmp_path / "a-directory"
+    target.mkdir()
+    dl = DeadLetterFile(target)
+    for error in _bad_records(3):
+        dl.write(error, source="s")
+    dl.flush()
+    metrics.observe_dead_letters(dl.failed_writes)
+    metrics.observe_dead_letters(dl.failed_writes)  # a running total: no double count
+    assert registry.get_sample_value("streamcount_dead_letters_lost_total") == 3
+    for error in _bad_records(2):
+        dl.write(error, source="s")
+    dl.close()
+    metrics.observe_dead_letters(dl.failed_writes)
+    assert registry.get_sample_value("streamcount_dead_letters_lost_total") == 5

@@ -9,14 +9,12 @@ nowhere but in the CHANGELOG entry recording the change.
 
 from __future__ import annotations
 
-import doctest
 import re
 from pathlib import Path
 
 import pytest
 import yaml
 
-import streamcount.config.load
 from streamcount.config.load import config_from_mapping
 from streamcount.config.settings import DEFAULT_LISTEN, DEFAULT_PORT, Config
 from streamcount.errors import ConfigError
@@ -103,8 +101,3 @@ def test_examples_and_readme_quote_the_default() -> None:
 def test_validation_message_quotes_the_default() -> None:
     with pytest.raises(ConfigError, match=re.escape(repr(DEFAULT_LISTEN))):
         config_from_mapping({"server": {"listen": "no-port-here"}})
-
-
-def test_load_docstring_examples_run() -> None:
-    result = doctest.testmod(streamcount.config.load, optionflags=doctest.ELLIPSIS)
-    assert result.attempted > 0 and result.failed == 0

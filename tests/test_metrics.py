@@ -2,11 +2,16 @@
 
 from __future__ import annotations
 
+import json
+from importlib import resources
+
 import pytest
 from prometheus_client import REGISTRY, CollectorRegistry, generate_latest
 from prometheus_client.parser import text_string_to_metric_families
 
+from streamcount.alerts import kinds
 from streamcount.engine.snapshot import EngineStatistics
+from streamcount.errors import REASONS
 from streamcount.service.metrics import (
     ALERT_KINDS,
     METRIC_NAMES,
@@ -75,6 +80,16 @@ def test_known_labels_render_as_zero(registry: CollectorRegistry) -> None:
     assert get("streamcount_sink_dropped_total", {"sink": "log"}) == 0
     assert get("streamcount_sink_dropped_total", {"sink": "stdout"}) is None
     assert get("streamcount_checkpoints_total", {"result": "failed"}) == 0
+
+
+def test_label_sets_are_the_single_lists() -> None:
+    # every reason a record is set aside and every alert kind, from the one list of each
+    assert set(REJECT_REASONS) == set(REASONS) and list(REJECT_REASONS) == sorted(REASONS)
+    assert ALERT_KINDS is kinds.ALERT_KINDS
+    schema = json.loads(
+        resources.files("streamcount").joinpath("schemas/alert.schema.json").read_text()
+    )
+    assert schema["properties"]["kind"]["enum"] == list(ALERT_KINDS)
 
 
 def test_alerts_and_checkpoints(registry: CollectorRegistry) -> None:

@@ -45,8 +45,6 @@ CONFIG = {
         "max_p_value": None,
         "conservative": False,
         "exit_ratio": 1.0,
-        "confirm_evaluations": 1,
-        "cooldown_evaluations": 0,
     },
     "alerts": {"surge": False},
     "metrics": {"top_rules": 5},
@@ -113,11 +111,23 @@ def test_alerting_rules_pass_promtool_check_rules() -> None:
 
 
 @pytest.mark.requires_tool("promtool")
-def test_scrape_config_passes_promtool_check_config() -> None:
-    # loads examples/alerting-rules.yml through rule_files, relative to the config
-    proc = _promtool("check", "config", str(EXAMPLES / "prometheus.yml"))
+def test_scrape_config_passes_promtool_check_config(tmp_path: Path) -> None:
+    # loads alerting-rules.yml through rule_files and the bearer token from credentials_file,
+    # both relative to the config; no token ships with the examples, so the check runs on a
+    # copy with one made here (promtool refuses a credentials_file that does not exist)
+    import secrets
+    import shutil
+
+    for name in ("prometheus.yml", "alerting-rules.yml"):
+        shutil.copy(EXAMPLES / name, tmp_path / name)
+    config = (tmp_path / "prometheus.yml").read_text(encoding="utf-8")
+    assert "credentials_file: streamcount-token" in config
+    (tmp_path / "streamcount-token").write_text(secrets.token_hex(32) + "\n", encoding="utf-8")
+    proc = _promtool("check", "config", str(tmp_path / "prometheus.yml"))
     assert proc.returncode == 0, _describe(proc)
     assert b"SUCCESS" in proc.stdout, _describe(proc)
+    (tmp_path / "streamcount-token").unlink()
+    assert _promtool("check", "config", str(tmp_path / "prometheus.yml")).returncode != 0
 
 
 def test_every_alert_has_a_promtool_unit_test() -> None:

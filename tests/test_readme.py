@@ -57,8 +57,11 @@ def test_quick_start_is_two_commands_and_ci_runs_the_test_one() -> None:
     assert "pytest" in test and "-m" not in test.split("pytest", 1)[1].split("\n")[0], (
         "make test must run the whole suite, slow tests included"
     )
-    # both targets set up their own environment from the project's own files
-    assert "$(STAMP)" in demo and "$(STAMP)" in test
+    # both targets set up their own environment from the project's own files: the demo with
+    # the runtime dependencies only, the tests with the test extra on top
+    assert "$(RUNTIME)" in demo and "$(STAMP)" not in demo and "$(STAMP)" in test
+    runtime = makefile.split("\n$(RUNTIME):", 1)[1].split("\n\n", 1)[0]
+    assert "pip install --quiet -e .\n" in runtime + "\n" and "[test]" not in runtime
     assert "pip install" in makefile and ".[test]" in makefile
 
 
@@ -103,3 +106,11 @@ def test_default_yaml_matches_readme_defaults() -> None:
         shown = re.search(rf"^\| `{re.escape(key)}` \| `([^`]*)` \|", README, re.M)
         assert shown is not None, key
         assert yaml.safe_load(shown.group(1)) == value, key
+
+
+def test_dead_letter_raw_cap_is_documented_as_the_code_has_it() -> None:
+    from streamcount.intake.deadletter import RAW_CHARS
+    from streamcount.intake.formats.text import too_long_detail
+
+    assert f"{RAW_CHARS:,} characters" in README
+    assert f"first {RAW_CHARS} characters" in too_long_detail("70000 bytes", 65536)

@@ -269,12 +269,11 @@ def test_head_has_no_body(open_port: int) -> None:
 
 
 def test_token_enforced(token_port: int) -> None:
-    # open without the token (probes and scrapes carry none)
-    assert _request(token_port, "GET", "/metrics")[0] == 200
+    # the probes stay open (they carry no token)
     assert _request(token_port, "GET", "/healthz")[0] == 200
     assert _request(token_port, "GET", "/readyz")[0] in (200, 503)
-    # everything else needs it
-    for path in ("/v1/status", "/v1/rules", "/v1/itemsets", "/v1/alerts"):
+    # everything else needs it, /metrics included (its per-rule gauges name items)
+    for path in ("/metrics", "/v1/status", "/v1/rules", "/v1/itemsets", "/v1/alerts"):
         status, headers, body = _request(token_port, "GET", path)
         assert status == 401, path
         assert json.loads(body)["error"]["code"] == "unauthorized"
@@ -283,7 +282,14 @@ def test_token_enforced(token_port: int) -> None:
     assert _request(token_port, "GET", "/v1/status", headers=wrong)[0] == 401
     good = {"Authorization": f"Bearer {TOKEN}"}
     assert _request(token_port, "GET", "/v1/status", headers=good)[0] == 200
-    status, _, _ = _request(token_port, "POST", "/v1/transactions", body=b"a b\n", headers=good)
+    assert _request(token_port, "GET", "/metrics", headers=good)[0] == 200
+    status, _, _ = _request(
+        token_port,
+        "POST",
+        "/v1/transactions",
+        body=b"a b\n",
+        headers={**good, "Content-Type": "application/x-ndjson"},
+    )
     assert status == 202
 
 
@@ -297,7 +303,13 @@ def test_ingest_over_socket(open_port: int, backend: FakeBackend) -> None:
     )
     assert (status, json.loads(body)) == (202, {"accepted": 2})
     assert backend.ingested == [(b"jam scone\ntea\n", "text/plain")]
-    status, _, body = _request(open_port, "POST", "/v1/transactions", body=b"{bad json")
+    status, _, body = _request(
+        open_port,
+        "POST",
+        "/v1/transactions",
+        body=b"{bad json",
+        headers={"Content-Type": "application/json"},
+    )
     assert status == 400
     assert json.loads(body)["error"] == {"code": "bad_input", "message": "line 1: not JSON"}
 

@@ -41,8 +41,6 @@ RULES = {
     "max_p_value": None,
     "conservative": False,
     "exit_ratio": 1.0,
-    "confirm_evaluations": 1,
-    "cooldown_evaluations": 0,
     "max_rules": 1000,
     "max_consequent_size": 1,
 }
@@ -181,6 +179,8 @@ def test_followed_file_counts_metrics_itemsets_and_rules(
     assert metrics[("streamcount_window_transactions", ())] == 200
     assert metrics[("streamcount_window_max_error", ())] == 0
     assert metrics[("streamcount_live_panes", ())] == 4
+    # the process collector: the resident memory the README's memory section speaks of
+    assert metrics[("process_resident_memory_bytes", ())] > 10 * 2**20
     assert metrics[("streamcount_buffered_transactions", ())] == 0
     assert metrics[("streamcount_vocabulary_items", ())] == len({i for b in accepted for i in b})
     for size in (1, 2, 3):
@@ -207,6 +207,9 @@ def test_followed_file_counts_metrics_itemsets_and_rules(
     assert service.stop() == 0
 
 
+NDJSON = {"Content-Type": "application/x-ndjson"}
+
+
 def _bearer(token: str) -> dict[str, str]:
     return {"Authorization": f"Bearer {token}"}
 
@@ -228,16 +231,19 @@ def test_http_token_limits_errors_and_ingest(services: ServiceRunner, tmp_path: 
     )
     auth = _bearer(token)
 
-    # the token is enforced on the API, not on /metrics and /healthz
-    for headers in ({}, _bearer("wrong-token"), {"Authorization": token}):
-        denied = service.request("GET", "/v1/status", headers=headers)
-        assert denied.status == 401, headers
-        assert denied.json()["error"]["code"] == "unauthorized"
-        assert denied.headers["www-authenticate"].startswith("Bearer")
+    # the token is enforced on the API and /metrics (its per-rule gauges name items), not on
+    # the probes
+    for path in ("/v1/status", "/metrics"):
+        for headers in ({}, _bearer("wrong-token"), {"Authorization": token}):
+            denied = service.request("GET", path, headers=headers)
+            assert denied.status == 401, (path, headers)
+            assert denied.json()["error"]["code"] == "unauthorized"
+            assert denied.headers["www-authenticate"].startswith("Bearer")
     assert service.request("GET", "/v1/status", headers=auth).status == 200
-    assert service.request("GET", "/metrics").status == 200
+    assert service.request("GET", "/metrics", headers=auth).status == 200
     assert service.request("GET", "/healthz").status == 200
-    post = service.request("POST", "/v1/transactions", b'{"items": ["tea"]}\n')
+    assert service.request("GET", "/readyz").status == 200
+    post = service.request("POST", "/v1/transactions", b'{"items": ["tea"]}\n', NDJSON)
     assert post.status == 401
 
     # unknown path: 404 as JSON; wrong method: 405 with Allow
@@ -258,8 +264,17 @@ def test_http_token_limits_errors_and_ingest(services: ServiceRunner, tmp_path: 
     assert too_large.json()["error"]["code"] == "too_large"
     # so is one over input.max_body_bytes (3000), the smaller limit for ingest
     over_ingest_limit = big[:3500]
-    too_large = service.request("POST", "/v1/transactions", over_ingest_limit, auth)
+    too_large = service.request("POST", "/v1/transactions", over_ingest_limit, {**auth, **NDJSON})
     assert too_large.status == 413
+    # a body of another type is refused before the loop sees it
+    form = service.request(
+        "POST",
+        "/v1/transactions",
+        b"items=tea",
+        {**auth, "Content-Type": "application/x-www-form-urlencoded"},
+    )
+    assert form.status == 415
+    assert form.json()["error"]["code"] == "unsupported_media_type"
 
     # NDJSON ingest: good lines counted, a bad one reported, dead-lettered and counted
     baskets = shop_baskets(20, seed=5)
@@ -282,7 +297,7 @@ def test_http_token_limits_errors_and_ingest(services: ServiceRunner, tmp_path: 
     )
     got = service.get_json("/v1/itemsets?min_support=0.05&limit=10000", headers=auth)
     assert _itemset_table(got) == _exact_frequent(exact_counts(baskets, 3), 20, 0.05)
-    metrics = service.metrics()
+    metrics = service.metrics(auth)
     assert metrics[("streamcount_transactions_total", ())] == 20
     assert metrics[("streamcount_records_rejected_total", (("reason", "wrong_type"),))] == 1
     letters = (tmp_path / "dead-letter.jsonl").read_text(encoding="utf-8").splitlines()
@@ -291,7 +306,7 @@ def test_http_token_limits_errors_and_ingest(services: ServiceRunner, tmp_path: 
     ]
 
     # a body with no valid transaction at all is a 400 naming the reason
-    empty = service.request("POST", "/v1/transactions", b'{"id": 1}\n', auth)
+    empty = service.request("POST", "/v1/transactions", b'{"id": 1}\n', {**auth, **NDJSON})
     assert empty.status == 400
     assert "missing_field" in empty.json()["error"]["message"]
 

@@ -186,6 +186,49 @@ def test_webhook_connection_refused_is_counted():
     assert sink.stats() == SinkStats(sent=0, failed=1, dropped=0, retries=1)
 
 
+def test_webhook_still_failing_at_shutdown_logs_and_counts_what_was_undelivered(receivers, caplog):
+    caplog.set_level(logging.WARNING, logger="streamcount.alerts.sinks")
+    rx = receivers(plan=[503] * 1000)  # the receiver is down for the whole test
+    cfg = WebhookConfig(
+        url=rx.url,
+        timeout_seconds=5.0,
+        max_retries=100,
+        backoff_seconds=30.0,  # the first retry waits up to 30 s: longer than the close allows
+        max_backoff_seconds=30.0,
+        queue_size=100,
+    )
+    sink = WebhookSink(cfg, rng=random.Random(3))
+    for i in range(4):
+        sink.emit(record(i))
+    assert rx.first_request.wait(10)
+    sink.close(0.3)
+    # record 0 was between retries (failed), records 1-3 still queued (dropped)
+    assert sink.stats() == SinkStats(sent=0, failed=1, dropped=3, retries=1)
+    closing = [r.getMessage() for r in caplog.records if "undelivered" in r.getMessage()]
+    assert len(closing) == 1, closing
+    assert "4 alert records undelivered" in closing[0]
+    assert rx.url in closing[0]
+
+
+def test_webhook_closing_after_delivering_everything_says_nothing(receivers, caplog):
+    caplog.set_level(logging.WARNING, logger="streamcount.alerts.sinks")
+    rx = receivers()
+    sink = webhook(rx.url)
+    sink.emit(record(1))
+    sink.close(10)
+    assert sink.stats().sent == 1
+    assert not [r for r in caplog.records if "undelivered" in r.getMessage()]
+
+
+def test_alert_file_that_cannot_be_opened_names_role_path_and_way_out(tmp_path):
+    target = tmp_path / "a-directory"
+    target.mkdir()
+    with pytest.raises(SinkError) as info:
+        JsonlSink(target)
+    message = str(info.value)
+    assert f"sink {target}" in message and "sinks.file" in message
+
+
 def test_webhook_config_checked():
     with pytest.raises(ConfigError, match=r"sinks\.webhook\.url"):
         WebhookSink(WebhookConfig(url=None))

@@ -268,3 +268,16 @@ def test_benchmarks_record_portable_paths(tmp_path: Path) -> None:
         "report": ["itemsets"],
     }
     assert result_findings("r.json", json.dumps(out, indent=2)) == []
+
+
+_MARKER = re.compile(r"^(<{7} |={7}$|>{7} )", re.M)
+
+
+def test_no_committed_file_holds_merge_conflict_markers() -> None:
+    found = []
+    for rel in repo_files(REPO_DIR):
+        text = _text(REPO_DIR / rel)
+        if text is None:
+            continue
+        found += [f"{rel}:{text.count(chr(10), 0, m.start()) + 1}" for m in _MARKER.finditer(text)]
+    assert not found, "merge conflict markers left in:\n" + "\n".join(found)

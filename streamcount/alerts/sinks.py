@@ -37,7 +37,7 @@ from dataclasses import dataclass
 from typing import IO, Any, Protocol, runtime_checkable
 
 from streamcount.config.settings import SinksConfig, WebhookConfig
-from streamcount.errors import ConfigError, SinkError
+from streamcount.errors import ConfigError, SinkError, describe_os_error
 
 __all__ = [
     "JsonlSink",
@@ -111,6 +111,7 @@ class JsonlSink:
         self, path: str | os.PathLike[str] | None = None, *, stream: IO[str] | None = None
     ) -> None:
         self._own = False
+        self._path = None if path is None else str(path)
         if stream is not None:
             self._out: IO[str] = stream
             self.name = "stream"
@@ -121,7 +122,9 @@ class JsonlSink:
             try:
                 self._out = open(path, "a", encoding="utf-8")  # noqa: SIM115 - held until close
             except OSError as exc:
-                raise SinkError(f"alert file {str(path)!r} cannot be opened: {exc}") from exc
+                raise SinkError(
+                    f"alert file cannot be opened: {describe_os_error('sink', path, exc)}"
+                ) from exc
             self._own = True
             self.name = "file"
         self._lock = threading.Lock()
@@ -139,7 +142,10 @@ class JsonlSink:
             except OSError as exc:
                 with self._c.lock:
                     self._c.failed += 1
-                raise SinkError(f"{self.name} sink could not write: {exc}") from exc
+                where = "standard output" if self.name == "stdout" else self._path
+                raise SinkError(
+                    f"{self.name} sink could not write: {describe_os_error('sink', where, exc)}"
+                ) from exc
         with self._c.lock:
             self._c.sent += 1
 
@@ -264,6 +270,8 @@ class WebhookSink:
         self._abort = threading.Event()
         self._failing = False
         self._c = _Counters()
+        #: records given up on because the sink was closing (queued, or between retries)
+        self._abandoned = 0
         self._thread = threading.Thread(target=self._run, name="streamcount-webhook", daemon=True)
         self._thread.start()
 
@@ -287,7 +295,8 @@ class WebhookSink:
     def close(self, timeout: float | None = None) -> None:
         """Stop accepting records and deliver the queued ones for up to ``timeout`` seconds.
 
-        Records still queued (or being retried) when the time is up are counted as dropped.
+        Records still queued when the time is up are counted as dropped, one being retried as
+        failed; a WARNING says how many records were not delivered.
         """
         with self._cond:
             self._closing = True
@@ -298,6 +307,21 @@ class WebhookSink:
             with self._cond:
                 self._cond.notify_all()
             self._thread.join(max(1.0, self.config.timeout_seconds + 1.0))
+        with self._cond:
+            # a worker still stuck in a request (past its own timeout) leaves its queue behind
+            left = len(self._queue)
+            self._queue.clear()
+        with self._c.lock:
+            self._c.dropped += left
+            abandoned = self._abandoned + left
+        if abandoned:
+            logger.warning(
+                "webhook sink closed with %d alert records undelivered to %s (deliveries were "
+                "still failing at shutdown); counted in streamcount_sink_dropped_total and "
+                "streamcount_sink_failures_total",
+                abandoned,
+                self._url,
+            )
 
     def stats(self) -> SinkStats:
         return self._c.stats()
@@ -314,6 +338,7 @@ class WebhookSink:
                     if left:
                         with self._c.lock:
                             self._c.dropped += left
+                            self._abandoned += left
                     return
                 body = self._queue.popleft()
             self._deliver(body)
@@ -366,12 +391,15 @@ class WebhookSink:
             if not retryable or attempt >= self.config.max_retries or self._abort.is_set():
                 with self._c.lock:
                     self._c.failed += 1
+                    if retryable and attempt < self.config.max_retries:
+                        self._abandoned += 1  # would have been retried but for the close
                 return
             with self._c.lock:
                 self._c.retries += 1
             if self._abort.wait(self._backoff(attempt)):
                 with self._c.lock:
                     self._c.failed += 1
+                    self._abandoned += 1
                 return
             attempt += 1
 

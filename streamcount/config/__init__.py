@@ -1,5 +1,5 @@
-"""Settings: frozen dataclasses (:mod:`.settings`) validated from YAML by one rules table
-(:mod:`.load`)."""
+"""Settings: frozen dataclasses (:mod:`.settings`) loaded from YAML (:mod:`.load`), validated by
+one table of rules (:mod:`.checks`), fingerprinted and described (:mod:`.describe`)."""
 
 from __future__ import annotations
 

@@ -4,10 +4,10 @@ Every section of the YAML file maps to one frozen dataclass below; the field nam
 config keys, the command-line options (``--min-support`` is ``min_support``) and the names
 used in JSON output and metrics. ``config/default.yaml`` documents every key.
 
-Loading and validation (``load_config``, ``config_from_mapping``) live in
-:mod:`streamcount.configload`: a YAML mapping is validated once into a :class:`Config`; an
-unknown key or a bad value raises :class:`~streamcount.errors.ConfigError` naming the dotted
-key, the value and the rule.
+Loading (``load_config``, ``config_from_mapping``) lives in :mod:`streamcount.config.load`
+and every rule a value must keep in :mod:`streamcount.config.checks`: a YAML mapping is
+validated once into a :class:`Config`; an unknown key or a bad value raises
+:class:`~streamcount.errors.ConfigError` naming the dotted key, the value and the rule.
 """
 
 from __future__ import annotations
@@ -87,8 +87,15 @@ class InputConfig:
     #: where to start a followed file when no checkpoint exists: beginning | end
     start_at: str = "beginning"
     poll_interval_seconds: float = 0.2
+    #: wall-clock seconds with nothing new while every source is caught up after which the
+    #: service closes open CSV orders and, for a time-based window, moves the watermark to the
+    #: clock (never in replay)
+    idle_seconds: float = 10.0
     max_record_bytes: int = 65536
     encoding: str = "utf-8"
+    #: item names in Unicode normal form C (``nfc``), so one name written with a precomposed
+    #: letter or with a combining accent is one item; ``none`` keeps the bytes as read
+    normalize: str = "nfc"
     #: largest body POST /v1/transactions accepts (the ``http`` source)
     max_body_bytes: int = 1048576
     #: events stamped more than this many seconds ahead of the wall clock are set aside
@@ -138,26 +145,24 @@ class RulesConfig:
     conservative: bool = True
     #: exit thresholds are the entry thresholds times this factor (hysteresis), in (0, 1]
     exit_ratio: float = 0.8
-    #: consecutive evaluations (pane closes) before a change of state takes effect
-    confirm_evaluations: int = 2
-    #: evaluations after a rule fades before it may emerge again
-    cooldown_evaluations: int = 10
     #: cap on rules kept per evaluation (highest lift first)
     max_rules: int = 1000
 
 
 @dataclass(frozen=True, slots=True)
 class AlertsConfig:
-    """Surge detection (growth of an itemset's support in a recent window over a baseline)."""
+    """Alerts: detected changes of co-purchase rates under one false-alert budget."""
 
+    #: expected false alerts per million transactions on a stationary feed, shared by every
+    #: kind (emerged, faded, surged) and split over the tests run at each pane close
+    false_alerts_per_million: float = 1.0
+    #: panes of an itemset's own history in the reference rate its change tests compare with
+    baseline_panes: int = 50
+    #: raise ``surged`` alerts (a co-purchase rate rising, rule or not)
     surge: bool = True
-    #: Dong & Li growth rate the recent window must reach over the baseline (judged on bounds)
-    growth_rate: float = 3.0
-    #: panes making up the recent window; the baseline is the rest of the window
+    #: panes over which an itemset needs surge_min_count orders to be tested for a surge
     recent_panes: int = 1
-    #: one-sided p-value the surge's significance test must reach
-    surge_max_p_value: float = 0.001
-    #: minimum lower-bound count in the recent window
+    #: minimum lower-bound count in the recent panes for a surge
     surge_min_count: int = 20
     #: relative lift (or growth-rate) gain a superset rule (or itemset) needs to alert apart
     #: from its family's representative
@@ -194,8 +199,33 @@ class ServerConfig:
     listen: str | None = DEFAULT_LISTEN
     #: name of the environment variable holding the bearer token (the token never goes here)
     token_env: str | None = None
+    #: file holding the bearer token instead (re-read on SIGHUP: rotation without a restart)
+    token_file: str | None = None
+    #: serve /metrics without the token, minus the per-rule gauges (their labels hold item
+    #: names); false: /metrics needs the token like the API when one is set
+    public_metrics: bool = False
+    #: PEM certificate (chain) and key for HTTPS; needed to listen beyond loopback unless
+    #: behind_proxy is true
+    tls_certificate: str | None = None
+    tls_key: str | None = None
+    #: a TLS-terminating reverse proxy is in front: plain HTTP beyond loopback is allowed and
+    #: limits per client use the address the proxy appends to X-Forwarded-For
+    behind_proxy: bool = False
     max_request_bytes: int = 1048576
+    #: deadline for reading a whole request (headers and body) and for writing its answer
     request_timeout_seconds: float = 10.0
+    #: an idle keep-alive connection is closed after this many seconds
+    keepalive_timeout_seconds: float = 5.0
+    #: open connections in all, and per client address (0: no per-address cap); over a cap a
+    #: connection gets 503 with Retry-After
+    max_connections: int = 512
+    max_connections_per_client: int = 64
+    #: connections the kernel queues before they are accepted
+    backlog: int = 512
+    #: worker threads answering API requests (probes and /metrics have two of their own)
+    workers: int = 8
+    #: failed authentications one address may make per minute before it gets 429
+    auth_failures_per_minute: int = 10
 
 
 @dataclass(frozen=True, slots=True)

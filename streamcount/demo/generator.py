@@ -87,12 +87,13 @@ import time
 from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass, fields
 from datetime import UTC, datetime
-from typing import TextIO
+from typing import Any, TextIO
 
 import numpy as np
 
 from streamcount.demo.shop import item_name
 from streamcount.errors import ConfigError, StreamcountError
+from streamcount.intake.formats import FORMATS as _FORMAT_REGISTRY
 
 __all__ = [
     "DEFAULT_DRIFT_RATE",
@@ -116,8 +117,9 @@ __all__ = [
 DEFAULT_START_TIME: float = 1_735_689_600.0
 #: Per-transaction probability of a drift written without ``~RATE``.
 DEFAULT_DRIFT_RATE: float = 0.05
-#: Output formats of ``streamcount generate``.
-FORMATS: tuple[str, ...] = ("basket", "jsonl", "csv")
+#: Output formats of ``streamcount generate``: every record format the service reads (the
+#: registry :data:`streamcount.intake.formats.FORMATS`), each with a writer below.
+FORMATS: tuple[str, ...] = tuple(_FORMAT_REGISTRY)
 
 Record = tuple[float, tuple[str, ...]]
 
@@ -614,7 +616,7 @@ def parse_start_time(text: str) -> float:
     return value
 
 
-def register_cli(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+def register_cli(subparsers: argparse._SubParsersAction[Any]) -> None:
     """Add the ``generate`` subcommand (its handler is ``args.func = generate_main``)."""
     d = GeneratorParams()
     parser = subparsers.add_parser(
@@ -622,9 +624,13 @@ def register_cli(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]
         help="write a synthetic order feed (Agrawal & Srikant 1994) with planted patterns",
         description=(
             "Write a seeded synthetic order feed: baskets built from a pool of weighted, "
-            "corrupted patterns (Agrawal & Srikant 1994), optionally with planted co-purchase "
-            "drifts. Defaults are the paper's T10.I4 settings (from memory)."
+            "corrupted patterns, optionally with planted co-purchase drifts. The defaults are "
+            "the parameters of Agrawal & Srikant, 'Fast Algorithms for Mining Association "
+            "Rules', VLDB 1994 (section 2.4.3; dataset T10.I4): N = 1000 items, |L| = 2000 "
+            "patterns, |I| = 4, |T| = 10, correlation level 0.5, corruption level drawn from "
+            "Normal(0.5, variance 0.1)."
         ),
+        formatter_class=argparse.ArgumentDefaultsHelpFormatter,
     )
     add = parser.add_argument
     add("--transactions", type=int, default=d.transactions, help="number of transactions |D|")
@@ -633,17 +639,17 @@ def register_cli(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]
     add("--patterns", type=int, default=d.patterns, help="size of the pattern pool |L|")
     add("--items", type=int, default=d.items, help="number of item ids N")
     add("--correlation", type=float, default=d.correlation, help="mean copied fraction")
-    add("--corruption-mean", type=float, default=d.corruption_mean)
-    add("--corruption-variance", type=float, default=d.corruption_variance)
-    add("--seed", type=int, default=d.seed, help="seed of every random stream (default 0)")
-    add("--format", choices=FORMATS, default="basket", help="output format (default basket)")
-    add("--output", default="-", metavar="PATH", help="file to write, - for stdout (default)")
+    add("--corruption-mean", type=float, default=d.corruption_mean, help="mean corruption level")
+    add("--corruption-variance", type=float, default=d.corruption_variance, help="its variance")
+    add("--seed", type=int, default=d.seed, help="seed of every random stream")
+    add("--format", choices=FORMATS, default="basket", help="output format")
+    add("--output", default="-", metavar="PATH", help="file to write, - for stdout")
     add(
         "--start-time",
         default=str(DEFAULT_START_TIME),
-        help="first timestamp: epoch seconds or ISO 8601 (default 2025-01-01T00:00:00Z)",
+        help="first timestamp: epoch seconds or ISO 8601",
     )
-    add("--rate", type=float, default=10.0, help="mean transactions per second (default 10)")
+    add("--rate", type=float, default=10.0, help="mean transactions per second")
     add("--pace", action="store_true", help="emit in real time at --rate (live demos)")
     add("--numeric", action="store_true", help="print item ids instead of catalogue names")
     add(
@@ -653,7 +659,7 @@ def register_cli(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]
         metavar="ITEMS@START[:STOP][~RATE][/RAMP]",
         help=(
             "plant ITEMS (comma-separated) into transactions START..STOP-1 (0-based) with "
-            f"probability RATE each (default {DEFAULT_DRIFT_RATE}), ramping up over RAMP "
+            f"probability RATE each (RATE defaults to {DEFAULT_DRIFT_RATE}), ramping up over RAMP "
             "transactions; repeatable. Example: 'breakfast-tea-tin,wildflower-honey-jar"
             "@20000:60000~0.05'"
         ),

@@ -21,7 +21,7 @@ import sys
 import threading
 import time
 from collections import Counter
-from collections.abc import Iterator
+from collections.abc import Iterator, Mapping
 from typing import Any, TextIO
 
 from streamcount.alerts.sinks import SinkStats
@@ -79,10 +79,8 @@ def demo_config(listen: str | None) -> Config:
             min_confidence=0.4,
             min_lift=2.0,
             max_p_value=0.001,
-            confirm_evaluations=2,
-            cooldown_evaluations=6,
         ),
-        alerts=AlertsConfig(growth_rate=3.0, recent_panes=1, surge_min_count=20),
+        alerts=AlertsConfig(recent_panes=1, surge_min_count=20),
         sinks=SinksConfig(log=False),
         server=ServerConfig(listen=listen),
         checkpoint=CheckpointConfig(checkpoint_dir=None),
@@ -152,7 +150,7 @@ class PacedFeedSource:
         self.exhausted = True
 
 
-def format_alert(record: dict[str, Any]) -> str:
+def format_alert(record: Mapping[str, Any]) -> str:
     """One readable line (two for rules) for an alert record."""
     m = record["measures"]
     seq = f"order {record['seq']:,}"
@@ -161,25 +159,33 @@ def format_alert(record: dict[str, Any]) -> str:
         x = m.get(name)
         if not x or x.get("value") is None:
             return "n/a"
-        fmt = (lambda v: f"{100 * v:.1f}%") if pct else (lambda v: f"{v:.2f}")
+
+        def fmt(v: float) -> str:
+            return f"{100 * v:.1f}%" if pct else f"{v:.2f}"
+
         lo = "?" if x.get("low") is None else fmt(x["low"])
         hi = "inf" if x.get("high") is None else fmt(x["high"])
         return f"{fmt(x['value'])} [{lo}..{hi}]"
 
     kind = record["kind"].upper()
-    if record["kind"] == "surged":
-        gr = record.get("growth_rate") or {}
-        low = gr.get("low")
-        growth = f"at least {low:.1f}x" if low is not None else "unbounded"
+    ev = record["evidence"]
+    before, now = ev["reference_rate"]["value"], ev["recent_rate"]["value"]
+    also = f" (also {', '.join(record['also'])})" if record.get("also") else ""
+    since = "?" if ev["change_seq"] is None else f"{ev['change_seq']:,}"
+    change = (
+        f"{'':>12}bought together in {100 * before:.2f}% of orders before, "
+        f"{100 * now:.2f}% since order {since}{also}"
+    )
+    if record["antecedent"] is None:
         return (
-            f"[{seq}] {kind:8} {' + '.join(record['items'])}: bought together {growth} as often "
-            f"in the last pane as before; support {iv('support', True)}"
+            f"[{seq}] {kind:8} {' + '.join(record['items'])}: support {iv('support', True)}\n"
+            + change
         )
     rule = f"{' + '.join(record['antecedent'])} => {' + '.join(record['consequent'])}"
     return (
         f"[{seq}] {kind:8} {rule}\n"
         f"{'':>12}support {iv('support', True)}  confidence {iv('confidence', True)}  "
-        f"lift {iv('lift')}"
+        f"lift {iv('lift')}\n" + change
     )
 
 
@@ -193,10 +199,10 @@ class ConsoleSink:
         self.as_json = as_json
         self.status_line = status_line
         self.sent = 0
-        self.records: list[dict[str, Any]] = []
+        self.records: list[Mapping[str, Any]] = []
         self._lock = threading.Lock()
 
-    def emit(self, record: dict[str, Any]) -> None:
+    def emit(self, record: Mapping[str, Any]) -> None:
         text = json.dumps(record, sort_keys=True) if self.as_json else format_alert(record)
         with self._lock:
             if self.status_line:

@@ -134,6 +134,10 @@ class Summary(Protocol):
         """The entries as named arrays (for checkpoints); :meth:`from_arrays` reverses it."""
         ...
 
+    def remap(self, mapping: np.ndarray) -> None:
+        """Renumber item ids through an increasing old-to-new map."""
+        ...
+
     def check_invariants(self) -> None:
         """Assert every structural invariant."""
         ...
@@ -298,7 +302,7 @@ class LossySummary:
             # tracked entries: to local ids; drop those with a pruned item or subset
             if len(old):
                 loc_rows = local[old.items] if old.items.size else old.items.astype(np.int64)
-                ok = (loc_rows >= 0).all(axis=1)
+                ok = np.asarray((loc_rows >= 0).all(axis=1))
                 loc_rows = np.where(ok[:, None], loc_rows, 0)
                 ok &= membership.all_subsets_present(loc_rows)
                 old_keys = _pack_local(loc_rows[ok], m)
@@ -366,6 +370,17 @@ class LossySummary:
         s.n = int(n)
         s._levels = list(levels)
         return s
+
+    def remap(self, mapping: np.ndarray) -> None:
+        """Renumber item ids through an increasing ``mapping`` (old id -> new id); every id
+        in use must map to one (``>= 0``). Rows stay sorted, so nothing is re-sorted."""
+        table = np.asarray(mapping, dtype=np.int32)
+        for k, level in enumerate(self._levels, start=1):
+            if len(level):
+                items = table[level.items]
+                if (items < 0).any():
+                    raise ValueError(f"remap: a tracked itemset of size {k} uses a released id")
+                self._levels[k - 1] = Level(items, level.f, level.delta)
 
     def check_invariants(self) -> None:
         """Assert every structural invariant; raises AssertionError naming the broken one."""

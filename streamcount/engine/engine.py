@@ -22,8 +22,9 @@ from __future__ import annotations
 import dataclasses
 import math
 from collections import Counter
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
@@ -36,9 +37,12 @@ from streamcount.engine.snapshot import EngineStatistics, WindowSnapshot
 from streamcount.engine.vocab import ItemVocabulary
 from streamcount.engine.window import SlidingWindow
 
-__all__ = ["STATE_VERSION", "AddResult", "Engine", "Rejection"]
+__all__ = ["COMPACT_MIN_RELEASED", "STATE_VERSION", "AddResult", "Engine", "Rejection"]
 
 STATE_VERSION = 1
+
+#: the vocabulary is compacted only when at least this many names can be released
+COMPACT_MIN_RELEASED = 4096
 
 
 @dataclass(frozen=True, slots=True)
@@ -63,33 +67,32 @@ class AddResult:
 class Engine:
     """Itemset counts over a sliding window with a guaranteed error bound.
 
-        Parameters
-        ----------
-        config:
-            Counting and window settings (``epsilon``, ``max_itemset_size``, ``window_size`` /
-            ``pane_size`` or ``window_seconds`` / ``pane_seconds``, ...).
-        on_pane_closed:
-            Called with the engine right after a pane is closed and counted.
+    Parameters
+    ----------
+    config:
+        Counting and window settings (``epsilon``, ``max_itemset_size``, ``window_size`` /
+        ``pane_size`` or ``window_seconds`` / ``pane_seconds``, ...).
+    on_pane_closed:
+        Called with the engine right after a pane is closed and counted.
 
-        Guarantee (for every itemset of size ``1..max_itemset_size`` and the window's
-        transactions ``first_seq..last_seq``): ``count <= true <= upper`` and
-        ``upper - count <= max_error <= ceil(epsilon * N) + panes``.
+    Guarantee (for every itemset of size ``1..max_itemset_size`` and the window's
+    transactions ``first_seq..last_seq``): ``count <= true <= upper`` and
+    ``upper - count <= max_error <= ceil(epsilon * N) + panes``.
 
-        Memory: the live panes' summaries (for single items at most ``w * H_B`` entries per pane,
-        Manku & Motwani 2002) plus at most one batch of buffered transactions per open pane.
+    Memory: the live panes' summaries (for single items at most ``w * H_B`` entries per pane,
+    Manku & Motwani 2002) plus at most one batch of buffered transactions per open pane.
 
-        Examples
-        --------
-        >>> from streamcount.config import EngineConfig
-    from streamcount.config.load import config_from_mapping
-        >>> eng = Engine(EngineConfig(epsilon=0.0, window_size=4, pane_size=2, max_itemset_size=2))
-        >>> _ = eng.add([["tea", "honey"], ["tea"], ["tea", "honey"], ["jam"], ["tea", "jam"]])
-        >>> eng.flush()
-        >>> snap = eng.snapshot()
-        >>> snap.first_seq, snap.last_seq, snap.transactions
-        (3, 5, 3)
-        >>> [(s.items, s.count) for s in snap.frequent(0.5)]
-        [(('jam',), 2), (('tea',), 2)]
+    Examples
+    --------
+    >>> from streamcount.config.settings import EngineConfig
+    >>> eng = Engine(EngineConfig(epsilon=0.0, window_size=4, pane_size=2, max_itemset_size=2))
+    >>> _ = eng.add([["tea", "honey"], ["tea"], ["tea", "honey"], ["jam"], ["tea", "jam"]])
+    >>> eng.flush()
+    >>> snap = eng.snapshot()
+    >>> snap.first_seq, snap.last_seq, snap.transactions
+    (3, 5, 3)
+    >>> [(s.items, s.count) for s in snap.frequent(0.5)]
+    [(('jam',), 2), (('tea',), 2)]
     """
 
     def __init__(
@@ -106,10 +109,10 @@ class Engine:
         self.width = bucket_width(self.epsilon)
         self.max_itemset_size = int(config.max_itemset_size)
         self.time_based = config.window_seconds is not None
-        if self.time_based:
+        if config.window_seconds is not None:
             assert config.pane_seconds is not None  # checked with the config rules above
             self.pane_seconds = float(config.pane_seconds)
-            window_seconds = float(config.window_seconds)  # type: ignore[arg-type]
+            window_seconds = float(config.window_seconds)
             self.window_panes = round(window_seconds / self.pane_seconds)
             self.pane_size: int | None = None
         else:
@@ -131,6 +134,13 @@ class Engine:
         self.transactions_seen = 0
         self.rejected: Counter[str] = Counter()
         self.max_event_ts: float | None = None
+        #: the pane closed most recently (what ``on_pane_closed`` is called about)
+        self.last_closed: Pane | None = None
+        #: called with the old-to-new id map when the vocabulary is compacted (followers of
+        #: item ids, e.g. the change tests, renumber theirs)
+        self.on_remap: Callable[[np.ndarray], None] | None = None
+        #: names that must keep their ids whatever the panes hold (e.g. catalogue ancestors)
+        self.pinned: Callable[[], Iterable[str]] | None = None
 
     # -- intake -------------------------------------------------------------------------------
 
@@ -392,6 +402,8 @@ class Engine:
                 closes = self._route_time(flat, lengths, seq, ts_ok, pane_idx[keep])
             else:
                 closes = self._route_count(flat, lengths, seq, ts_ok)
+        if closes:
+            self.compact_vocabulary()
         by_reason = Counter(r.reason for r in rejections)
         self.rejected.update(by_reason)
         rejections.sort(key=lambda r: r.index)
@@ -494,8 +506,60 @@ class Engine:
 
     def _close(self, pane: Pane) -> None:
         self.window.close(pane)
+        self.last_closed = pane
         if self.on_pane_closed is not None:
             self.on_pane_closed(self)
+
+    def compact_vocabulary(self, *, force: bool = False) -> np.ndarray | None:
+        """Release the item names no held pane uses any more (and that are not pinned), so the
+        name table is bounded by the window, not by the feed's history.
+
+        Done at the end of an :meth:`add` that closed a pane (never in the middle: the rest of
+        its transactions are already encoded), when at least half the names (and at least
+        :data:`COMPACT_MIN_RELEASED`) can go, or always with ``force``; a function of the input
+        alone, so restarts and replays compact at the same points. Ids are renumbered in order
+        (an increasing map), every pane and buffer is remapped, ``on_remap`` is called with the
+        map, and snapshots built before keep the names they were built with. Returns the map,
+        or ``None`` when nothing was released. Cost: O(names + tracked entries).
+        """
+        size = len(self.vocabulary)
+        used = self.window.ids_in_use(size)
+        if self.pinned is not None:
+            for name in self.pinned():
+                item = self.vocabulary.get(name)
+                if item is not None:
+                    used[item] = True
+        released = size - int(used.sum())
+        if released == 0 or (
+            not force and (released < COMPACT_MIN_RELEASED or 2 * released < size)
+        ):
+            return None
+        mapping = self.vocabulary.compact(used)
+        self.window.remap(mapping)
+        if self.on_remap is not None:
+            self.on_remap(mapping)
+        return mapping
+
+    def advance_watermark(self, now: float) -> int:
+        """Time-based windows on a quiet feed: close the panes that end before ``now`` minus
+        ``allowed_lateness_seconds`` as if events up to ``now`` had been seen, and slide the
+        window to that point. Only the service calls it, with the wall clock, when its sources
+        are caught up and idle (never replay, so a backlog is never sent to ``too_late``).
+        Returns how many panes the watermark moved past (0: nothing changed); a count-based
+        window does nothing.
+        """
+        if not self.time_based or not math.isfinite(now):
+            return 0
+        limit = math.floor((now - self.config.allowed_lateness_seconds) / self.pane_seconds) - 1
+        moved = limit - self.window.closed_through
+        if moved <= 0:
+            return 0
+        for pane in [p for p in self.window.open_panes() if p.index <= limit]:
+            self._close(pane)
+        self.window.closed_through = limit
+        self.window.advance_to(limit)
+        self.compact_vocabulary()
+        return moved
 
     def flush(self) -> None:
         """Count every buffered transaction now (partial batches), e.g. at the end of a replay.
@@ -516,6 +580,11 @@ class Engine:
         """
         return self.window.snapshot(self.vocabulary.names, newest=newest, skip_newest=skip_newest)
 
+    def fresh_snapshot(self) -> WindowSnapshot:
+        """The window with every buffered transaction added as an exact overlay (what the
+        API and replay report); see :meth:`SlidingWindow.fresh_snapshot`."""
+        return self.window.fresh_snapshot(self.vocabulary.names)
+
     def split_snapshot(
         self, recent_panes: int
     ) -> tuple[WindowSnapshot, WindowSnapshot, WindowSnapshot]:
@@ -526,6 +595,16 @@ class Engine:
     def window_full(self) -> bool:
         """True once a whole window of panes has closed (the end of warm-up)."""
         return self.window.window_full
+
+    def pane_snapshot(self, pane: Pane) -> WindowSnapshot:
+        """Frozen counts of one pane's counted transactions."""
+        return self.window.pane_snapshot(self.vocabulary.names, pane)
+
+    def pane_start_time(self, pane: Pane) -> float | None:
+        """When a pane starts: its time span's start (time-based), or its first event time."""
+        if self.time_based:
+            return pane.index * self.pane_seconds
+        return pane.min_ts
 
     def statistics(self) -> EngineStatistics:
         """The engine's counters as a frozen :class:`EngineStatistics` (cheap: no summing of
@@ -577,7 +656,7 @@ class Engine:
     def from_state(
         cls,
         config: EngineConfig,
-        meta: dict[str, object],
+        meta: Mapping[str, Any],
         arrays: dict[str, np.ndarray],
         *,
         on_pane_closed: Callable[[Engine], None] | None = None,
@@ -595,9 +674,9 @@ class Engine:
                     f"{getattr(eng, key)!r}"
                 )
         eng.vocabulary = ItemVocabulary.from_arrays(arrays)
-        eng.next_seq = int(meta["next_seq"])  # type: ignore[call-overload]
-        eng.transactions_seen = int(meta["transactions_seen"])  # type: ignore[call-overload]
-        eng.rejected = Counter(meta["rejected"])  # type: ignore[arg-type]
-        eng.max_event_ts = meta["max_event_ts"]  # type: ignore[assignment]
-        eng.window.load_state(meta["window"], arrays)  # type: ignore[arg-type]
+        eng.next_seq = int(meta["next_seq"])
+        eng.transactions_seen = int(meta["transactions_seen"])
+        eng.rejected = Counter(meta["rejected"])
+        eng.max_event_ts = meta["max_event_ts"]
+        eng.window.load_state(meta["window"], arrays)
         return eng

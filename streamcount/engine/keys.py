@@ -23,7 +23,9 @@ _INT64_LIMIT = 2**63
 
 def fits_int64(radix: int, size: int) -> bool:
     """True when rows of ``size`` ids below ``radix`` pack into int64 without overflow."""
-    return int(radix) ** int(size) < _INT64_LIMIT
+    # int ** int is typed Any (a negative exponent gives a float); both are >= 0 here
+    fits: bool = int(radix) ** int(size) < _INT64_LIMIT
+    return fits
 
 
 def pack(rows: np.ndarray, radix: int) -> np.ndarray:

@@ -9,6 +9,9 @@ so a restart counts exactly the same batches as an uninterrupted run.
 
 from __future__ import annotations
 
+from collections.abc import Mapping
+from typing import Any
+
 import numpy as np
 
 from streamcount.engine.counters import LossySummary, Summary
@@ -35,6 +38,7 @@ class Pane:
         "_buf_len",
         "_buf_seq",
         "_buf_ts",
+        "_exact",
         "buffered",
         "closed",
         "first_seq",
@@ -58,6 +62,7 @@ class Pane:
         self._buf_len: list[np.ndarray] = []
         self._buf_seq: list[np.ndarray] = []
         self._buf_ts: list[np.ndarray] = []
+        self._exact: Pane | None = None  # the buffer counted exactly (cached)
 
     @property
     def counted(self) -> int:
@@ -83,6 +88,42 @@ class Pane:
         self._buf_seq.append(seq)
         self._buf_ts.append(ts)
         self.buffered += int(lengths.shape[0])
+
+    def exact_buffer(self) -> Pane | None:
+        """The buffered transactions counted exactly, as a pane of its own (epsilon 0), or
+        ``None`` when nothing is buffered. The overlay that makes answers fresh: its counts
+        are exact, so adding it to the window keeps every bound. Cached until the buffer
+        changes. Cost: one exact count of at most one batch."""
+        if not self.buffered:
+            return None
+        if self._exact is None or self._exact.counted != self.buffered:
+            exact = Pane(self.index, 0.0, len(self.summary.levels))
+            exact.append(
+                np.concatenate(self._buf_flat),
+                np.concatenate(self._buf_len),
+                np.concatenate(self._buf_seq),
+                np.concatenate(self._buf_ts),
+            )
+            exact.count_buffer()
+            exact.closed = True
+            self._exact = exact
+        return self._exact
+
+    def ids_in_use(self, used: np.ndarray) -> None:
+        """Mark in ``used`` (bool, by item id) every id this pane's summary or buffer holds
+        (the summary is downward closed, so its single items cover every tracked itemset)."""
+        level = self.summary.levels[0]
+        if len(level):
+            used[level.items[:, 0]] = True
+        for part in self._buf_flat:
+            used[part] = True
+
+    def remap(self, mapping: np.ndarray) -> None:
+        """Renumber item ids (an increasing old-to-new map) in the summary and the buffer."""
+        table = np.asarray(mapping, dtype=np.int32)
+        self.summary.remap(table)
+        self._buf_flat = [table[part] for part in self._buf_flat]
+        self._exact = None
 
     def count_buffer(self, limit: int | None = None) -> int:
         """Count the first ``limit`` buffered transactions (all when ``None``) as one batch."""
@@ -146,25 +187,21 @@ class Pane:
     @classmethod
     def from_state(
         cls,
-        meta: dict[str, object],
+        meta: Mapping[str, Any],
         arrays: dict[str, np.ndarray],
         prefix: str,
         epsilon: float,
         max_itemset_size: int,
     ) -> Pane:
-        pane = cls(int(meta["index"]), epsilon, max_itemset_size)  # type: ignore[call-overload]
+        pane = cls(int(meta["index"]), epsilon, max_itemset_size)
         pane.summary = LossySummary.from_arrays(
-            epsilon,
-            max_itemset_size,
-            int(meta["n"]),
-            arrays,
-            prefix,  # type: ignore[call-overload]
+            epsilon, max_itemset_size, int(meta["n"]), arrays, prefix
         )
         pane.closed = bool(meta["closed"])
-        pane.first_seq = int(meta["first_seq"])  # type: ignore[call-overload]
-        pane.last_seq = int(meta["last_seq"])  # type: ignore[call-overload]
-        pane.min_ts = meta["min_ts"]  # type: ignore[assignment]
-        pane.max_ts = meta["max_ts"]  # type: ignore[assignment]
+        pane.first_seq = int(meta["first_seq"])
+        pane.last_seq = int(meta["last_seq"])
+        pane.min_ts = meta["min_ts"]
+        pane.max_ts = meta["max_ts"]
         pane.append(
             np.asarray(arrays[f"{prefix}buf.flat"], dtype=np.int32),
             np.asarray(arrays[f"{prefix}buf.len"], dtype=np.int64),

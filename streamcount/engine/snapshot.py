@@ -18,6 +18,7 @@ from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
+from numpy.typing import NDArray
 
 from streamcount.engine.keys import lookup, pack
 
@@ -41,9 +42,9 @@ class LevelCounts:
     """
 
     size: int
-    items: np.ndarray
-    count: np.ndarray
-    upper: np.ndarray
+    items: NDArray[np.int32]
+    count: NDArray[np.int64]
+    upper: NDArray[np.int64]
 
     def __len__(self) -> int:
         return int(self.count.shape[0])

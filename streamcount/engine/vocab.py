@@ -78,6 +78,34 @@ class ItemVocabulary:
         flat = self.encode_flat(chain.from_iterable(baskets), int(lengths.sum()))
         return flat, lengths
 
+    def compact(self, keep: np.ndarray) -> np.ndarray:
+        """Release the names whose ``keep`` flag is false; returns the old-to-new id map
+        (``-1`` for a released name).
+
+        The kept names keep their order, so the map is increasing: sorted rows of ids stay
+        sorted after it. The table is rebuilt (a Python dict never shrinks when entries are
+        deleted); the old names list is left untouched, so snapshots built before keep reading
+        the names they were built with. Cost: O(kept names).
+
+        >>> vocab = ItemVocabulary(["tea", "jam", "honey", "scone"])
+        >>> vocab.compact(np.array([True, False, True, False])).tolist()
+        [0, -1, 1, -1]
+        >>> list(vocab.names), vocab.get("jam")
+        (['tea', 'honey'], None)
+        """
+        keep = np.asarray(keep, dtype=bool)
+        if keep.shape != (len(self),):
+            raise ValueError(f"keep has shape {keep.shape}, the vocabulary {len(self)} names")
+        mapping = np.full(len(self), -1, dtype=np.int32)
+        kept = np.flatnonzero(keep)
+        mapping[kept] = np.arange(kept.shape[0], dtype=np.int32)
+        old = self._interner.names
+        fresh = _Interner()
+        for i in kept.tolist():
+            fresh[old[i]]
+        self._interner = fresh
+        return mapping
+
     # -- persistence -------------------------------------------------------------------------
 
     def to_arrays(self) -> dict[str, np.ndarray]:

@@ -18,7 +18,7 @@ and the expired panes are subtracted from it exactly, so a close never re-sums e
 from __future__ import annotations
 
 import math
-from collections.abc import Iterator
+from collections.abc import Iterator, Mapping
 from itertools import pairwise
 from typing import Any
 
@@ -76,7 +76,7 @@ class SlidingWindow:
         self.max_itemset_size = int(max_itemset_size)
         self.pane_size = pane_size
         #: live panes by index, kept in index order
-        self.panes: SortedDict = SortedDict()
+        self.panes: SortedDict[int, Pane] = SortedDict()
         #: highest pane index that has counted transactions (the window's end)
         self.newest_index = -1
         #: lowest pane index ever opened (for the warm-up test of time-based windows)
@@ -132,6 +132,13 @@ class SlidingWindow:
         pane.closed = True
         self.closed_through = max(self.closed_through, pane.index)
 
+    def advance_to(self, index: int) -> None:
+        """Move the window's end to pane ``index`` although nothing was counted there (time
+        passed on a quiet feed): panes that left the window are dropped (closed ones only)."""
+        if index > self.newest_index:
+            self.newest_index = index
+            self._expire()
+
     def flush(self) -> None:
         """Count every buffered transaction now (partial batches); open panes stay open."""
         for pane in list(self.panes.values()):
@@ -175,6 +182,36 @@ class SlidingWindow:
         """
         return sum_panes(self.live(newest, skip_newest), **self._shape(item_names)).snapshot
 
+    def fresh_parts(self) -> list[Pane]:
+        """The window as if every buffered transaction were counted: the counted panes of the
+        window that ends at the newest pane holding anything, plus each pane's buffer counted
+        exactly (:meth:`Pane.exact_buffer`). The counting state is not touched."""
+        held = [i for i, p in self.panes.items() if p.counted or p.buffered]
+        if not held:
+            return []
+        newest = max(held)
+        out: list[Pane] = []
+        for i in self.panes.irange(newest - self.window_panes + 1, newest):
+            pane = self.panes[i]
+            if pane.counted:
+                out.append(pane)
+            exact = pane.exact_buffer()
+            if exact is not None:
+                out.append(exact)
+        return out
+
+    def fresh_snapshot(self, item_names: Any) -> WindowSnapshot:
+        """:meth:`snapshot` with the transactions still buffered added as exact counts, so a
+        quiet feed's latest orders show at once. ``max_error`` is unchanged (the overlay is
+        exact); the window is exactly the transactions a flush would leave in it."""
+        if not self.buffered:
+            return self.snapshot(item_names)
+        return sum_panes(self.fresh_parts(), **self._shape(item_names)).snapshot
+
+    def pane_snapshot(self, item_names: Any, pane: Pane) -> WindowSnapshot:
+        """Frozen counts of one pane alone."""
+        return sum_panes([pane] if pane.counted else [], **self._shape(item_names)).snapshot
+
     def split_snapshot(
         self, item_names: Any, recent_panes: int
     ) -> tuple[WindowSnapshot, WindowSnapshot, WindowSnapshot]:
@@ -205,6 +242,19 @@ class SlidingWindow:
         window = merge_sums(baseline, recent)
         self._sum_cache = window
         return window.snapshot, recent.snapshot, baseline.snapshot
+
+    def ids_in_use(self, vocabulary_size: int) -> np.ndarray:
+        """Which item ids any held pane still uses (its summary or its buffer)."""
+        used = np.zeros(vocabulary_size, dtype=bool)
+        for pane in self.panes.values():
+            pane.ids_in_use(used)
+        return used
+
+    def remap(self, mapping: np.ndarray) -> None:
+        """Renumber item ids in every pane; the cached window sum (old ids) is dropped."""
+        for pane in self.panes.values():
+            pane.remap(mapping)
+        self._sum_cache = None
 
     # -- statistics, checks, persistence ------------------------------------------------------
 
@@ -263,7 +313,7 @@ class SlidingWindow:
         }
         return meta, arrays
 
-    def load_state(self, meta: dict[str, Any], arrays: dict[str, np.ndarray]) -> None:
+    def load_state(self, meta: Mapping[str, Any], arrays: dict[str, np.ndarray]) -> None:
         """Restore what :meth:`state` returned (into an empty window)."""
         self.newest_index = int(meta["newest_index"])
         first = meta["first_index"]

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import contextlib
 import gzip
+import io
 import sys
 from collections.abc import Iterator
 from typing import IO
@@ -27,7 +28,7 @@ BLOCK_BYTES = 1 << 20
 
 
 @contextlib.contextmanager
-def open_input(path: str) -> Iterator[IO[bytes]]:
+def open_input(path: str) -> Iterator[IO[bytes] | io.BufferedIOBase]:
     """Open a file (gzip recognised by its first bytes) or standard input for ``-``.
 
     Raises
@@ -50,7 +51,7 @@ def open_input(path: str) -> Iterator[IO[bytes]]:
         if raw.read(2) == b"\x1f\x8b":
             raw.seek(0)
             with gzip.GzipFile(fileobj=raw, mode="rb") as gz:
-                yield gz  # type: ignore[misc]
+                yield gz
         else:
             raw.seek(0)
             yield raw

@@ -6,8 +6,9 @@ candidate rule ``X => Y`` (Agrawal, Imieliński & Swami 1993). Its counts come f
 as bounds (``a = c(Z)``, ``r = c(X)``, ``q = c(Y)``) and its measures as intervals
 (:mod:`streamcount.measures`). A candidate is kept when, in order:
 
-1. ``count(Z) >= min_count`` (``rules.min_count``, by default ``10 x max_error`` and at least
-   1: below that the relative error of the support can exceed 10 %);
+1. ``count(Z) >= min_count`` (``rules.min_count``, by default ``max(10, 10 x max_error)``:
+   below ``10 x max_error`` the relative error of the support can exceed 10 %, and below 10
+   transactions a rule rests on noise);
 2. support ``>= min_support`` on its lower bound (the support's point value *is* its lower
    bound, so this holds whether or not ``conservative`` is set);
 3. confidence ``>= min_confidence`` and lift ``>= min_lift``, judged on the intervals' low ends
@@ -30,14 +31,14 @@ Rules and the alerts built on them are signals for a person to review, not decis
 from __future__ import annotations
 
 import itertools
-from collections.abc import Iterable, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
+from typing import Any, overload
 
 import numpy as np
 
 from streamcount.config.settings import RulesConfig
 from streamcount.engine.snapshot import WindowSnapshot
-from streamcount.errors import ConfigError
 from streamcount.rules.measures import (
     MEASURE_NAMES,
     CountBounds,
@@ -49,6 +50,8 @@ from streamcount.rules.measures import (
 )
 
 __all__ = [
+    "MIN_JOINT_COUNT",
+    "SIGNIFICANCE_TESTS",
     "THRESHOLD_RTOL",
     "Rule",
     "at_least",
@@ -58,16 +61,31 @@ __all__ = [
     "rule_p_value",
 ]
 
-_SIGNIFICANCE = ("fisher", "chi2")
+#: the one-sided tests ``rules.significance`` may name, as ``(N, a, r, q) -> p``; the config
+#: rules take the names from here
+_TESTS: dict[str, Callable[[int, int, int, int], float]] = {
+    "fisher": fisher_greater,
+    "chi2": chi_square_p_greater,
+}
+SIGNIFICANCE_TESTS: tuple[str, ...] = tuple(_TESTS)
 
 #: thresholds are relaxed by this relative amount before comparing, so that float rounding in
 #: products such as ``0.07 * 100 = 7.000000000000001`` does not reject an exact match
 THRESHOLD_RTOL = 1e-9
 
 
+@overload
+def at_least(value: np.ndarray, threshold: float) -> np.ndarray: ...
+
+
+@overload
+def at_least(value: float, threshold: float) -> bool: ...
+
+
 def at_least(value: np.ndarray | float, threshold: float) -> np.ndarray | bool:
-    """``value >= threshold`` up to :data:`THRESHOLD_RTOL` (relative)."""
-    return value >= threshold - THRESHOLD_RTOL * abs(threshold)  # type: ignore[no-any-return]
+    """``value >= threshold`` up to :data:`THRESHOLD_RTOL` (relative), elementwise for
+    arrays."""
+    return value >= threshold - THRESHOLD_RTOL * abs(threshold)
 
 
 @dataclass(frozen=True, slots=True)
@@ -119,7 +137,8 @@ class Rule:
     def measure(self, name: str) -> Measure:
         if name not in MEASURE_NAMES:
             raise ValueError(f"measure {name!r} is unknown; choose one of {MEASURE_NAMES}")
-        return getattr(self, name)  # type: ignore[no-any-return]
+        found: Measure = getattr(self, name)
+        return found
 
     def measures_dict(self) -> dict[str, dict[str, float | None]]:
         """``{name: {"value", "low", "high"}}``; infinite numbers are ``None``."""
@@ -143,26 +162,30 @@ class Rule:
         }
 
     @classmethod
-    def from_dict(cls, d: dict[str, object]) -> Rule:
-        """Inverse of :meth:`as_dict`."""
-        counts: dict[str, dict[str, int]] = d["counts"]  # type: ignore[assignment]
-        measures: dict[str, dict[str, float | None]] = d["measures"]  # type: ignore[assignment]
+    def from_dict(cls, d: Mapping[str, Any]) -> Rule:
+        """Inverse of :meth:`as_dict` (``d`` as decoded from JSON)."""
+        counts: Mapping[str, Mapping[str, int]] = d["counts"]
+        measures: Mapping[str, dict[str, float | None]] = d["measures"]
 
         def cb(name: str) -> CountBounds:
             return CountBounds(int(counts[name]["low"]), int(counts[name]["high"]))
 
         p = d.get("p_value")
         return cls(
-            tuple(d["antecedent"]),  # type: ignore[arg-type]
-            tuple(d["consequent"]),  # type: ignore[arg-type]
-            tuple(int(i) for i in d["antecedent_ids"]),  # type: ignore[attr-defined]
-            tuple(int(i) for i in d["consequent_ids"]),  # type: ignore[attr-defined]
+            tuple(d["antecedent"]),
+            tuple(d["consequent"]),
+            tuple(int(i) for i in d["antecedent_ids"]),
+            tuple(int(i) for i in d["consequent_ids"]),
             cb("joint"),
             cb("antecedent"),
             cb("consequent"),
-            int(d["transactions"]),  # type: ignore[call-overload]
-            *(Measure.from_dict(measures[name]) for name in MEASURE_NAMES),
-            p_value=None if p is None else float(p),  # type: ignore[arg-type]
+            int(d["transactions"]),
+            support=Measure.from_dict(measures["support"]),
+            confidence=Measure.from_dict(measures["confidence"]),
+            lift=Measure.from_dict(measures["lift"]),
+            leverage=Measure.from_dict(measures["leverage"]),
+            conviction=Measure.from_dict(measures["conviction"]),
+            p_value=None if p is None else float(p),
         )
 
 
@@ -180,12 +203,9 @@ def joint_count_threshold(snapshot: WindowSnapshot, config: RulesConfig) -> int:
 
 
 def rule_p_value(config: RulesConfig, transactions: int, a: int, r: int, q: int) -> float:
-    """p-value of the test named by ``config.significance`` for one table (a, r, q, N)."""
-    if config.significance == "fisher":
-        return fisher_greater(transactions, a, r, q)
-    if config.significance == "chi2":
-        return chi_square_p_greater(transactions, a, r, q)
-    raise ConfigError("rules.significance", config.significance, f"must be one of {_SIGNIFICANCE}")
+    """p-value of the test named by ``config.significance`` (one of
+    :data:`SIGNIFICANCE_TESTS`, checked with the other settings) for one table (a, r, q, N)."""
+    return _TESTS[config.significance](transactions, a, r, q)
 
 
 def _concat_measures(parts: list[RuleMeasures], transactions: int) -> RuleMeasures:
@@ -201,8 +221,8 @@ def _concat_measures(parts: list[RuleMeasures], transactions: int) -> RuleMeasur
 
 def _build_rules(
     snapshot: WindowSnapshot,
-    antecedent_rows: np.ndarray,
-    consequent_rows: np.ndarray,
+    antecedent_rows: Sequence[np.ndarray],
+    consequent_rows: Sequence[np.ndarray],
     m: RuleMeasures,
     p_values: Sequence[float | None],
 ) -> list[Rule]:
@@ -221,7 +241,11 @@ def _build_rules(
                 CountBounds(int(m.r_low[i]), int(m.r_high[i])),
                 CountBounds(int(m.q_low[i]), int(m.q_high[i])),
                 m.transactions,
-                *(m.measure(name).at(i) for name in MEASURE_NAMES),
+                support=m.support.at(i),
+                confidence=m.confidence.at(i),
+                lift=m.lift.at(i),
+                leverage=m.leverage.at(i),
+                conviction=m.conviction.at(i),
                 p_value=p_values[i],
             )
         )
@@ -247,9 +271,10 @@ def derive_rules(
     Examples
     --------
     Tan, Steinbach & Kumar (2005), ch. 6, Table 6.1, exact counts; ``{Diapers, Milk} =>
-    {Beer}`` has support 0.4 and confidence 2/3, ``{Beer, Milk} => {Diapers}`` confidence 1:
+    {Beer}`` has support 0.4 and confidence 2/3, ``{Beer, Milk} => {Diapers}`` confidence 1
+    (five transactions are below the default joint count of 10, so ``min_count=1`` here):
 
-    >>> from streamcount.snapshot import LevelCounts
+    >>> from streamcount.engine.snapshot import LevelCounts
     >>> import numpy as np
     >>> names = ["Beer", "Diapers", "Milk"]
     >>> lv = lambda rows, c: LevelCounts(len(rows[0]), np.array(rows, dtype=np.int32),
@@ -259,13 +284,9 @@ def derive_rules(
     ...      lv([[0, 1, 2]], [2])), names)
     >>> cfg = RulesConfig(min_support=0.4, min_confidence=0.6, min_lift=1.0, max_p_value=None)
     >>> [(r.antecedent, r.consequent, round(r.confidence.value, 2))
-    ...  for r in derive_rules(snap, cfg) if len(r.antecedent) == 2]
+    ...  for r in derive_rules(snap, cfg, min_count=1) if len(r.antecedent) == 2]
     [(('Beer', 'Milk'), ('Diapers',), 1.0), (('Diapers', 'Milk'), ('Beer',), 0.67)]
     """
-    if config.significance not in _SIGNIFICANCE:
-        raise ConfigError(
-            "rules.significance", config.significance, f"must be one of {_SIGNIFICANCE}"
-        )
     n = int(snapshot.transactions)
     if n <= 0:
         return []
@@ -330,7 +351,7 @@ def derive_rules(
     sel = np.asarray(chosen, dtype=np.int64)
     x_rows = [ant_blocks[b][r] for b, r in zip(block[sel].tolist(), row[sel].tolist(), strict=True)]
     y_rows = [con_blocks[b][r] for b, r in zip(block[sel].tolist(), row[sel].tolist(), strict=True)]
-    return _build_rules(snapshot, x_rows, y_rows, m.take(sel), p_values)  # type: ignore[arg-type]
+    return _build_rules(snapshot, x_rows, y_rows, m.take(sel), p_values)
 
 
 def measure_rules(
@@ -346,8 +367,8 @@ def measure_rules(
     counts as untracked (``(0, max_error)``). With ``config`` and a ``max_p_value``, the
     p-value is filled in too. Vectorised per (antecedent size, consequent size) group.
     """
-    keys = [(tuple(sorted(x)), tuple(sorted(y))) for x, y in keys]
-    if not keys:
+    pairs = [(tuple(sorted(x)), tuple(sorted(y))) for x, y in keys]
+    if not pairs:
         return []
     n = int(snapshot.transactions)
     index = {name: i for i, name in enumerate(snapshot.item_names)}
@@ -365,10 +386,10 @@ def measure_rules(
     def bounds(rows: list[list[int] | None]) -> tuple[np.ndarray, np.ndarray]:
         low = np.zeros(len(rows), dtype=np.int64)
         high = np.full(len(rows), e, dtype=np.int64)
-        known = [i for i, ids in enumerate(rows) if ids is not None and len(ids) <= max_k]
         by_size: dict[int, list[int]] = {}
-        for i in known:
-            by_size.setdefault(len(rows[i]), []).append(i)  # type: ignore[arg-type]
+        for i, ids in enumerate(rows):
+            if ids is not None and len(ids) <= max_k:
+                by_size.setdefault(len(ids), []).append(i)
         for _size, members in by_size.items():
             arr = np.array([rows[i] for i in members], dtype=np.int32)
             lo, hi = snapshot.bounds_many(arr)
@@ -376,15 +397,15 @@ def measure_rules(
             high[members] = hi
         return low, high
 
-    x_ids = [ids_of(x) for x, _ in keys]
-    y_ids = [ids_of(y) for _, y in keys]
+    x_ids = [ids_of(x) for x, _ in pairs]
+    y_ids = [ids_of(y) for _, y in pairs]
     z_ids = [
         None if xi is None or yi is None else sorted(xi + yi)
         for xi, yi in zip(x_ids, y_ids, strict=True)
     ]
     m = rule_measures(n, bounds(z_ids), bounds(x_ids), bounds(y_ids))
     out = []
-    for i, (x, y) in enumerate(keys):
+    for i, (x, y) in enumerate(pairs):
         p: float | None = None
         if config is not None and config.max_p_value is not None and n > 0:
             p = rule_p_value(config, n, int(m.a_low[i]), int(m.r_high[i]), int(m.q_high[i]))
@@ -398,7 +419,11 @@ def measure_rules(
                 CountBounds(int(m.r_low[i]), int(m.r_high[i])),
                 CountBounds(int(m.q_low[i]), int(m.q_high[i])),
                 n,
-                *(m.measure(name).at(i) for name in MEASURE_NAMES),
+                support=m.support.at(i),
+                confidence=m.confidence.at(i),
+                lift=m.lift.at(i),
+                leverage=m.leverage.at(i),
+                conviction=m.conviction.at(i),
                 p_value=p,
             )
         )

@@ -58,6 +58,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
 
 __all__ = [
     "MEASURE_NAMES",
@@ -154,9 +155,9 @@ class Measure:
 class MeasureArray:
     """Point values and interval ends of one measure over ``n`` rules (float64 arrays)."""
 
-    value: np.ndarray
-    low: np.ndarray
-    high: np.ndarray
+    value: NDArray[np.float64]
+    low: NDArray[np.float64]
+    high: NDArray[np.float64]
 
     def __len__(self) -> int:
         return int(self.value.shape[0])
@@ -183,12 +184,12 @@ class RuleMeasures:
     """
 
     transactions: int
-    a_low: np.ndarray
-    a_high: np.ndarray
-    r_low: np.ndarray
-    r_high: np.ndarray
-    q_low: np.ndarray
-    q_high: np.ndarray
+    a_low: NDArray[np.int64]
+    a_high: NDArray[np.int64]
+    r_low: NDArray[np.int64]
+    r_high: NDArray[np.int64]
+    q_low: NDArray[np.int64]
+    q_high: NDArray[np.int64]
     support: MeasureArray
     confidence: MeasureArray
     lift: MeasureArray
@@ -201,7 +202,8 @@ class RuleMeasures:
     def measure(self, name: str) -> MeasureArray:
         if name not in MEASURE_NAMES:
             raise ValueError(f"measure {name!r} is unknown; choose one of {MEASURE_NAMES}")
-        return getattr(self, name)  # type: ignore[no-any-return]
+        found: MeasureArray = getattr(self, name)
+        return found
 
     def take(self, idx: np.ndarray) -> RuleMeasures:
         """The measures of the rules at ``idx`` (an index or boolean array)."""
@@ -219,10 +221,10 @@ class RuleMeasures:
 
 def tighten(
     transactions: int,
-    a: tuple[np.ndarray, np.ndarray],
-    r: tuple[np.ndarray, np.ndarray],
-    q: tuple[np.ndarray, np.ndarray],
-) -> tuple[np.ndarray, ...]:
+    a: tuple[ArrayLike, ArrayLike],
+    r: tuple[ArrayLike, ArrayLike],
+    q: tuple[ArrayLike, ArrayLike],
+) -> tuple[NDArray[np.int64], ...]:
     """Tightened ``(La, Ua, Lr, Ur, Lq, Uq)`` from raw ``(low, high)`` pairs of a, r, q.
 
     >>> [x.tolist() for x in tighten(10, ([3], [9]), ([2], [5]), ([4], [12]))]
@@ -238,16 +240,16 @@ def tighten(
     return la, ua, lr, ur, lq, uq
 
 
-def _div(num: np.ndarray, den: np.ndarray, zero: float) -> np.ndarray:
+def _div(num: ArrayLike, den: ArrayLike, zero: float) -> NDArray[np.float64]:
     """``num / den`` elementwise, ``zero`` where ``den == 0``."""
-    num = np.asarray(num, dtype=np.float64)
-    den = np.asarray(den, dtype=np.float64)
-    out = np.full(np.broadcast(num, den).shape, zero, dtype=np.float64)
-    np.divide(num, den, out=out, where=den != 0)
+    fnum = np.asarray(num, dtype=np.float64)
+    fden = np.asarray(den, dtype=np.float64)
+    out = np.full(np.broadcast(fnum, fden).shape, zero, dtype=np.float64)
+    np.divide(fnum, fden, out=out, where=fden != 0)
     return out
 
 
-def _conviction(one_minus_q: np.ndarray, conf: np.ndarray) -> np.ndarray:
+def _conviction(one_minus_q: NDArray[np.float64], conf: NDArray[np.float64]) -> NDArray[np.float64]:
     """``(1 - q/N) / (1 - conf)``, ``inf`` where ``conf >= 1``."""
     gap = 1.0 - conf
     out = np.full(conf.shape, np.inf, dtype=np.float64)

@@ -189,11 +189,11 @@ def save_checkpoint(
     arrays:
         Named arrays (any shape, including empty); copied as raw bytes.
     fingerprint:
-        :func:`streamcount.configload.fingerprint` of the settings that shaped the state.
+        :func:`streamcount.config.describe.fingerprint` of the settings that shaped the state.
     keep:
         Checkpoints to keep, the new one included (>= 1).
     settings:
-        The fingerprinted settings themselves (``configload.fingerprint_settings``); stored so
+        The fingerprinted settings themselves (``config.describe.fingerprint_settings``); stored so
         a later mismatch can name the settings that changed.
     created_at:
         Unix time recorded in the manifest (default: now).

@@ -19,22 +19,28 @@ import threading
 import time
 from collections import Counter
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
-from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, generate_latest
+from prometheus_client import (
+    CONTENT_TYPE_LATEST,
+    CollectorRegistry,
+    ProcessCollector,
+    generate_latest,
+)
 
 from streamcount import __version__
 from streamcount.alerts.sinks import Sink, SinkFanout, build_sinks
 from streamcount.config.load import describe, fingerprint, fingerprint_settings
 from streamcount.config.settings import Config
 from streamcount.engine.snapshot import WindowSnapshot
-from streamcount.errors import CheckpointError, InputError
+from streamcount.errors import CheckpointError, InputError, describe_os_error
 from streamcount.intake.deadletter import DeadLetterFile
 from streamcount.intake.formats import Decoder, make_decoder
 from streamcount.intake.records import Decoded, RecordBatch
 from streamcount.intake.sources import SOURCES, Source, build_sources
 from streamcount.pipeline import Pipeline
+from streamcount.rules.derive import Rule, measure_rules
 from streamcount.service.api import ServiceApi, View
 from streamcount.service.checkpoint import load_latest_checkpoint, save_checkpoint
 from streamcount.service.metrics import Metrics, RuleSample, ServiceState
@@ -48,6 +54,10 @@ STATE_VERSION = 2
 
 _READ_RECORDS = 20000  # records taken from the sources per turn
 _PUBLISH_SECONDS = 0.5  # the HTTP view is refreshed at most this often (and at pane close)
+#: a buffer left uncounted this long is shown as an exact overlay (a quiet feed's latest
+#: orders appear within this delay plus one publish); while batches keep being counted the
+#: overlay is skipped, it would cost an exact count per publish for little news
+_OVERLAY_SECONDS = 1.0
 
 
 @dataclass(slots=True)
@@ -97,6 +107,9 @@ class Service:
         self._last_checkpoint_mono = time.monotonic()
         self._last_publish = 0.0
         self._unpublished = False  # counted since the view was last built
+        self._last_input = time.monotonic()  # when a record was last read
+        self._counted_key: tuple[tuple[int, int], ...] = ()
+        self._counted_at = time.monotonic()  # when the counted panes last changed
         self.turns = 0
 
         self.sinks = SinkFanout((*build_sinks(config.sinks).sinks, *extra_sinks))
@@ -111,6 +124,8 @@ class Service:
             if state:
                 item.decoder.load_state(state)
         self.dead_letter = DeadLetterFile(config.input.dead_letter_path)
+        # the process's resident memory, CPU time and open files (process_*), next to ours
+        ProcessCollector(registry=self.registry)
         self.metrics = Metrics(
             self.registry,
             statistics=lambda: self.api.view.statistics,
@@ -188,7 +203,7 @@ class Service:
             return None
         import os
 
-        from streamcount.service.server import start_server
+        from streamcount.service.server import ServerOptions, start_server
 
         token = None
         if self.config.server.token_env:
@@ -208,7 +223,9 @@ class Service:
             token=token,
             max_request_bytes=limit,
             request_timeout_seconds=self.config.server.request_timeout_seconds,
+            options=ServerOptions.from_config(self.config.server),
         )
+        self.metrics.watch_server(self.server.stats)
         host, port = self.server.server_address[:2]
         logger.info("listening on http://%s:%d (metrics at /metrics)", host, port)
         return str(host), int(port)
@@ -232,9 +249,14 @@ class Service:
             signal.signal(signal.SIGINT, self.request_stop)
         if self.server is None:
             self.start_server()
+        if install_signals and self.server is not None:
+            from streamcount.service.server import install_reload_signal
+
+            install_reload_signal(self.server)  # SIGHUP: re-read server.token_file and TLS
         logger.info("streamcount %s started: %s", __version__, describe(self.config))
         self.api.set_ready(True)
         clean = False
+        saved = True
         try:
             while not self._stop.is_set():
                 self.turn(timeout=timeout)
@@ -246,7 +268,15 @@ class Service:
                     break
             clean = True
         finally:
-            self.shutdown(clean=clean)
+            saved = self.shutdown(clean=clean)
+        if not saved:
+            # the counting state since the last good checkpoint is lost: say so in the exit code
+            logger.error(
+                "the final checkpoint to %s failed (see above); a restart resumes from the last "
+                "good checkpoint and counts what came after it again",
+                self.config.checkpoint.checkpoint_dir,
+            )
+            return 1
         return 0
 
     def turn(self, timeout: float = 0.0) -> int:
@@ -267,12 +297,25 @@ class Service:
                 rejected.update(r)
         if not seen and len(self.inputs) > 1 and timeout > 0:
             self._stop.wait(timeout)
+        now = time.monotonic()
+        if seen:
+            self._last_input = now
+        elif now - self._last_input >= self.config.input.idle_seconds and all(
+            i.source.caught_up for i in self.inputs
+        ):
+            accepted += self._idle()
         if seen or rejected:
             self.dead_letter.flush()
+            self.metrics.observe_dead_letters(self.dead_letter.failed_writes)
             self.metrics.observe_batch(accepted, rejected, time.perf_counter() - started)
             self._unpublished = True
         self.turns += 1
-        now = time.monotonic()
+        if (
+            not self.api.view.status.get("overlay")
+            and self.pipeline.engine.window.buffered
+            and now - self._counted_at >= _OVERLAY_SECONDS
+        ):
+            self._unpublished = True  # a buffer left uncounted: time to show the overlay
         if self._unpublished and now - self._last_publish >= _PUBLISH_SECONDS:
             self._publish()
         self._observe_sinks()
@@ -298,15 +341,31 @@ class Service:
             batch.on_done(intake.accepted, intake.rejected)
         return intake.accepted, intake.by_reason()
 
+    def _idle(self) -> int:
+        """The sources are caught up and quiet: close what the decoders hold (open CSV
+        orders) and move a time-based window's watermark to the clock. Never in replay."""
+        accepted = 0
+        for item in self.inputs:
+            if item.decoder.held:
+                tail = item.decoder.close_all()
+                decoded = Decoded.from_transactions(tail, source=item.source.name)
+                intake = self.pipeline.add(decoded)
+                accepted += intake.accepted
+                for error in intake.rejected:
+                    self.dead_letter.write(error, source=item.source.name)
+        if self.pipeline.engine.advance_watermark(self.clock()) or accepted:
+            self._unpublished = True
+        return accepted
+
     def _finish_inputs(self) -> None:
-        """Every source has ended: close what the decoders hold and count the last batch."""
+        """Every source has ended: release what the decoders hold (open CSV orders). The last
+        partial batch stays buffered (answers show it as an exact overlay), as in replay."""
         for item in self.inputs:
             tail = item.decoder.close_all()
             if tail:
                 decoded = Decoded.from_transactions(tail, source=item.source.name)
                 for error in self.pipeline.add(decoded).rejected:
                     self.dead_letter.write(error, source=item.source.name)
-        self.pipeline.flush()
         self._unpublished = True
 
     def _alerts_raised(self, records: list[dict[str, Any]]) -> None:
@@ -324,18 +383,37 @@ class Service:
 
     def _build_view(self, previous: View | None, window: WindowSnapshot | None = None) -> View:
         engine = self.pipeline.engine
-        key = self._window_key()
+        counted = self._window_key()
+        now = time.monotonic()
+        if counted != self._counted_key:
+            self._counted_key, self._counted_at = counted, now
+        # a buffer left uncounted for a while is shown as an exact overlay
+        stale = engine.window.buffered > 0 and now - self._counted_at >= _OVERLAY_SECONDS
+        key = (*counted, (-1, engine.window.buffered if stale else 0))
+        fresh = stale
         if window is None:
-            # the window changes only when a batch is counted; statistics change with every
-            # transaction buffered, so a view is rebuilt without re-summing unchanged panes
+            # the window changes only when a batch is counted (or the overlay changes);
+            # statistics change with every transaction buffered, so a view is rebuilt without
+            # re-summing unchanged panes
             if previous is not None and previous.window_key == key:
-                window = previous.window
+                window, fresh = previous.window, previous.status.get("overlay", False)
             else:
-                window = engine.snapshot()
-        stats = engine.statistics()
+                window = engine.fresh_snapshot() if stale else engine.snapshot()
+        else:
+            fresh = False
+        stats = replace(
+            engine.statistics(),
+            window_transactions=window.transactions,
+            window_max_error=window.max_error,
+        )
         monitor = self.pipeline.monitor
-        rules = tuple(monitor.active_rules) if monitor is not None else ()
+        rules: tuple[Rule, ...] = tuple(monitor.active_rules) if monitor is not None else ()
         rules_window = self.pipeline.rules_window
+        budget = monitor.budget if monitor is not None else None
+        if fresh and rules:
+            # the active rules re-measured with the overlay (the list changes at pane closes)
+            rules = tuple(measure_rules(window, [r.key for r in rules], config=self.config.rules))
+            rules_window = window.window_dict()
         status = {
             "version": __version__,
             "window": window.window_dict(),
@@ -353,7 +431,9 @@ class Service:
             "last_checkpoint_unix": self._last_checkpoint_unix,
             "max_event_ts": stats.max_event_ts,
             "rules_window": rules_window,
+            "overlay": fresh,
             "sources": [i.source.name for i in self.inputs],
+            "alerts_budget": None if budget is None else budget.as_dict(),
         }
         alerts = tuple(self.pipeline.alert_history)
         return View(window, stats, rules, alerts, status, rules_window, key)
@@ -411,7 +491,10 @@ class Service:
                 settings=fingerprint_settings(self.config),
             )
         except (OSError, ValueError, CheckpointError) as exc:
-            logger.warning("checkpoint to %s failed: %s", directory, exc)
+            reason: object = exc
+            if isinstance(exc, OSError):
+                reason = describe_os_error("checkpoint", directory, exc)
+            logger.warning("checkpoint to %s failed: %s", directory, reason)
             self.metrics.observe_checkpoint(False, now)
         else:
             ok = True
@@ -424,20 +507,22 @@ class Service:
         self._last_checkpoint_mono = time.monotonic()
         return ok
 
-    def shutdown(self, *, clean: bool = True) -> None:
+    def shutdown(self, *, clean: bool = True) -> bool:
         """Stop serving, count what the sources already accepted from outside (HTTP ingest
-        bodies), write the final checkpoint and release everything.
+        bodies), write the final checkpoint and release everything; returns whether the final
+        checkpoint (if any is due) was written.
 
         After an unexpected error (``clean=False``) no checkpoint is written: the state may be
         half-updated, so the last good checkpoint is kept and a restart re-reads from it.
         """
+        saved = True
         self.api.set_ready(False)
         if self.server is not None:  # no new requests from here on
             self.server.shutdown()
             self.server.server_close()
         if clean:
             self._drain()
-            self.checkpoint()
+            saved = self.checkpoint()
         else:
             logger.warning("stopping after an error; the last good checkpoint is kept")
         self._publish()
@@ -446,6 +531,7 @@ class Service:
         for item in self.inputs:
             item.source.close()
         logger.info("stopped after %d transactions", self.pipeline.engine.transactions_seen)
+        return saved
 
     def _drain(self) -> None:
         """Count the batches sources hold for senders already answered or waiting."""

@@ -4,7 +4,8 @@ Two kinds of metric live here:
 
 * counters and a histogram that the counting loop updates once per *batch* (never per record)
   through :meth:`Metrics.observe_batch`, :meth:`Metrics.observe_alerts`,
-  :meth:`Metrics.observe_checkpoint` and :meth:`Metrics.observe_sinks`;
+  :meth:`Metrics.observe_checkpoint`, :meth:`Metrics.observe_sinks` and
+  :meth:`Metrics.observe_dead_letters`;
 * gauges of engine state produced at scrape time by a custom collector that calls a function
   returning the latest immutable :class:`~streamcount.snapshot.EngineStatistics` (and a
   :class:`ServiceState`), so a scrape never touches the counting loop's mutable state.
@@ -28,17 +29,24 @@ from __future__ import annotations
 import threading
 from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from prometheus_client import CollectorRegistry, Counter, Histogram
-from prometheus_client.core import GaugeMetricFamily, Metric
+from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
 from prometheus_client.registry import Collector
 
+from streamcount.alerts.kinds import ALERT_KINDS
 from streamcount.engine.snapshot import EngineStatistics
+from streamcount.errors import REASONS
+
+if TYPE_CHECKING:
+    from streamcount.service.httpd import HttpStats
 
 __all__ = [
     "ALERT_KINDS",
     "CHECKPOINT_RESULTS",
+    "HTTP_REFUSALS",
+    "ITEM_TEXT_METRICS",
     "METRIC_NAMES",
     "REJECT_REASONS",
     "SINK_NAMES",
@@ -47,20 +55,11 @@ __all__ = [
     "ServiceState",
 ]
 
-#: ``reason`` label values pre-created so they render as 0 before the first rejection
-REJECT_REASONS: tuple[str, ...] = (
-    "bad_encoding",
-    "empty",
-    "malformed",
-    "missing_field",
-    "too_early",
-    "too_late",
-    "too_long",
-    "too_many_items",
-    "wrong_type",
-)
-#: ``kind`` label values of ``streamcount_alerts_total``
-ALERT_KINDS: tuple[str, ...] = ("emerged", "faded", "surged")
+#: ``reason`` label values pre-created so they render as 0 before the first rejection: every
+#: reason of :data:`streamcount.errors.REASONS`, sorted
+REJECT_REASONS: tuple[str, ...] = tuple(sorted(REASONS))
+# ALERT_KINDS (the ``kind`` label values of ``streamcount_alerts_total``) comes from
+# streamcount.alerts.kinds and is re-exported here with the other label sets
 #: ``sink`` label values of the sink counters
 SINK_NAMES: tuple[str, ...] = ("file", "log", "stdout", "webhook")
 #: ``result`` label values of ``streamcount_checkpoints_total``
@@ -94,6 +93,30 @@ _RULE_GAUGES: dict[str, str] = {
     "streamcount_rule_support": "Support of one of the top rules by lift (point value).",
 }
 
+#: Families whose labels hold item text (names from the feed): left out of a /metrics served
+#: without the token (``server.public_metrics``).
+ITEM_TEXT_METRICS: tuple[str, ...] = tuple(_RULE_GAUGES)
+#: ``reason`` label values of ``streamcount_http_refused_total``
+HTTP_REFUSALS: tuple[str, ...] = (
+    "busy",
+    "max_connections",
+    "max_connections_per_client",
+    "rate_limited",
+    "timeout",
+)
+_HTTP_FAMILIES: dict[str, str] = {
+    "streamcount_auth_failures": (
+        "Requests refused for a missing or wrong API token (401); each also counts against "
+        "its address's server.auth_failures_per_minute."
+    ),
+    "streamcount_http_refused": (
+        "Requests or connections the HTTP server refused, by reason: over a connection cap "
+        "(503), not read in time (408), no worker or body budget free (503), too many failed "
+        "authentications from the address (429)."
+    ),
+    "streamcount_http_connections": "HTTP connections open now.",
+}
+
 #: Every metric family name streamcount exposes (counters with their ``_total`` suffix).
 METRIC_NAMES: tuple[str, ...] = (
     "streamcount_transactions_total",
@@ -102,7 +125,11 @@ METRIC_NAMES: tuple[str, ...] = (
     "streamcount_sink_failures_total",
     "streamcount_sink_dropped_total",
     "streamcount_checkpoints_total",
+    "streamcount_dead_letters_lost_total",
     "streamcount_batch_seconds",
+    "streamcount_auth_failures_total",
+    "streamcount_http_refused_total",
+    "streamcount_http_connections",
     *_GAUGES,
     *_RULE_GAUGES,
 )
@@ -198,6 +225,8 @@ class _StateCollector(Collector):
             lag.add_metric([], float(state.event_lag_seconds))
         yield lag
 
+        yield from self._http_families()
+
         top = self._owner.top_rules
         if top > 0:
             families = {name: gauge(name, ["antecedent", "consequent"]) for name in _RULE_GAUGES}
@@ -207,6 +236,27 @@ class _StateCollector(Collector):
                 families["streamcount_rule_confidence"].add_metric(labels, rule.confidence)
                 families["streamcount_rule_support"].add_metric(labels, rule.support)
             yield from families.values()
+
+    def _http_families(self) -> Iterator[Metric]:
+        stats = self._owner._server_stats() if self._owner._server_stats is not None else None
+        failures = CounterMetricFamily(
+            "streamcount_auth_failures", _HTTP_FAMILIES["streamcount_auth_failures"]
+        )
+        failures.add_metric([], float(stats.auth_failures if stats is not None else 0))
+        yield failures
+        refused = CounterMetricFamily(
+            "streamcount_http_refused",
+            _HTTP_FAMILIES["streamcount_http_refused"],
+            labels=["reason"],
+        )
+        for reason in HTTP_REFUSALS:
+            refused.add_metric([reason], float(stats.refused[reason] if stats is not None else 0))
+        yield refused
+        connections = GaugeMetricFamily(
+            "streamcount_http_connections", _HTTP_FAMILIES["streamcount_http_connections"]
+        )
+        connections.add_metric([], float(stats.open_connections if stats is not None else 0))
+        yield connections
 
 
 class Metrics:
@@ -239,8 +289,8 @@ class Metrics:
         sink_names: Iterable[str] = SINK_NAMES,
         alert_kinds: Iterable[str] = ALERT_KINDS,
     ) -> None:
-        if top_rules < 0:
-            raise ValueError(f"top_rules={top_rules!r} must be >= 0")
+        # metrics.top_rules is checked with the other settings (streamcount.config.checks)
+        assert top_rules >= 0, f"top_rules={top_rules!r}"
         self.registry = registry
         self.top_rules = top_rules
         self._statistics = statistics
@@ -248,6 +298,8 @@ class Metrics:
         self._lock = threading.Lock()
         self._last_checkpoint = 0.0
         self._sink_seen: dict[tuple[str, str], int] = {}
+        self._dead_letters_seen = 0
+        self._server_stats: Callable[[], HttpStats] | None = None
 
         self.transactions = Counter(
             "streamcount_transactions",
@@ -282,6 +334,12 @@ class Metrics:
             "streamcount_checkpoints",
             "Checkpoint writes, by result (ok or failed).",
             ["result"],
+            registry=registry,
+        )
+        self.dead_letters_lost = Counter(
+            "streamcount_dead_letters_lost",
+            "Records set aside that could not be written to the dead-letter file (disk full, "
+            "permissions); they are still counted in streamcount_records_rejected_total.",
             registry=registry,
         )
         self.batch_seconds = Histogram(
@@ -322,6 +380,23 @@ class Metrics:
         if ok:
             with self._lock:
                 self._last_checkpoint = max(self._last_checkpoint, float(unix_time))
+
+    def watch_server(self, stats: Callable[[], HttpStats] | None) -> None:
+        """Read the HTTP server's totals at scrape time (``server.stats`` of
+        :func:`~streamcount.service.server.start_server`'s server): failed authentications,
+        refusals by reason, open connections. Until then they read 0."""
+        self._server_stats = stats
+
+    def observe_dead_letters(self, lost_total: int) -> None:
+        """Bring ``streamcount_dead_letters_lost_total`` up to the dead-letter file's own
+        running total (:attr:`~streamcount.intake.deadletter.DeadLetterFile.failed_writes`);
+        call it once per turn. A total that went down (a new file object) counts in full."""
+        with self._lock:
+            before = self._dead_letters_seen
+            self._dead_letters_seen = lost_total
+        delta = lost_total - before if lost_total >= before else lost_total
+        if delta:
+            self.dead_letters_lost.inc(delta)
 
     def observe_sinks(self, failures: Mapping[str, int], dropped: Mapping[str, int]) -> None:
         """Bring the sink counters up to the sinks' own running totals.

@@ -21,7 +21,6 @@ from dataclasses import dataclass
 from typing import Any, Protocol
 
 from streamcount.config.settings import InputConfig
-from streamcount.errors import ConfigError
 from streamcount.intake.formats.basket import BasketDecoder
 from streamcount.intake.formats.csv_orders import CsvOrderDecoder
 from streamcount.intake.formats.jsonl import JsonlDecoder
@@ -102,7 +101,9 @@ FORMATS: dict[str, FormatSpec] = {
     for spec in (
         FormatSpec(
             "basket",
-            lambda cfg, cap, _ts: BasketDecoder(cap, cfg.max_record_bytes, cfg.encoding),
+            lambda cfg, cap, _ts: BasketDecoder(
+                cap, cfg.max_record_bytes, cfg.encoding, cfg.normalize
+            ),
             (".txt", ".dat", ".basket"),
             True,
             "one transaction per line, items separated by whitespace and/or commas",
@@ -110,7 +111,12 @@ FORMATS: dict[str, FormatSpec] = {
         FormatSpec(
             "jsonl",
             lambda cfg, cap, ts: JsonlDecoder(
-                cfg.jsonl, cap, cfg.max_record_bytes, cfg.encoding, require_ts=ts
+                cfg.jsonl,
+                cap,
+                cfg.max_record_bytes,
+                cfg.encoding,
+                require_ts=ts,
+                normalize=cfg.normalize,
             ),
             (".jsonl", ".ndjson", ".json"),
             True,
@@ -119,7 +125,12 @@ FORMATS: dict[str, FormatSpec] = {
         FormatSpec(
             "csv",
             lambda cfg, cap, ts: CsvOrderDecoder(
-                cfg.csv, cap, cfg.max_record_bytes, cfg.encoding, require_ts=ts
+                cfg.csv,
+                cap,
+                cfg.max_record_bytes,
+                cfg.encoding,
+                require_ts=ts,
+                normalize=cfg.normalize,
             ),
             (".csv",),
             False,
@@ -136,16 +147,14 @@ def make_decoder(
     require_ts: bool = False,
     fmt: str | None = None,
 ) -> Decoder:
-    """A new decoder for ``fmt`` (default ``input_config.format``).
+    """A new decoder for ``fmt`` (default ``input_config.format``), a name in :data:`FORMATS`
+    (``input.format`` is checked with the other settings).
 
     ``require_ts`` makes JSON/CSV records without a time ``missing_field`` (set it for a
     time-based window).
     """
     name = input_config.format if fmt is None else fmt
-    spec = FORMATS.get(name)
-    if spec is None:
-        raise ConfigError("input.format", name, f"must be one of {', '.join(FORMATS)}")
-    return spec.factory(input_config, max_basket_items, require_ts)
+    return FORMATS[name].factory(input_config, max_basket_items, require_ts)
 
 
 def format_for_path(path: str) -> str | None:

@@ -6,16 +6,17 @@ See :class:`CsvOrderDecoder` for when an order closes and which rows are set asi
 from __future__ import annotations
 
 import csv
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
 from streamcount.config.settings import CsvConfig
-from streamcount.errors import ConfigError, InputError, ParseError
+from streamcount.errors import InputError, ParseError
 from streamcount.intake.formats.text import (
     LineDecoder,
-    check_encoding,
+    check_control,
     decode_text,
+    normalize_name,
     parse_ts,
     show,
 )
@@ -56,12 +57,15 @@ class CsvOrderDecoder(LineDecoder):
     rows, ``offset`` where its first row starts and ``end_offset`` where its last row ends.
 
     **Rows set aside** (``feed`` raises, the row joins no order and closes none):
-    unreadable CSV (``malformed``), a short row or a blank order id (``missing_field``), a
+    unreadable CSV (``malformed``), a short row or a blank order id (``missing_field``), an
+    order id or item cell holding a character of
+    :data:`~streamcount.intake.formats.text.CONTROL_CHARS` (``control_chars``), a
     blank item (``empty``), a quantity that is not a number or a time that is neither
     epoch seconds nor ISO-8601 (``wrong_type``), a quantity ``<= 0`` (``empty``: returns and
     cancellations add nothing to a basket), and every row of an order once it has more than
     ``max_basket_items`` distinct items (``too_many_items``; the whole order is dropped,
-    never truncated). A quantity above 0 does not multiply: a basket is a set.
+    never truncated). A quantity above 0 does not multiply: a basket is a set. Item names
+    are NFC-normalised unless ``normalize`` is ``none``; order ids are kept as written.
 
     **Checkpoints.** Either store :meth:`state_dict` and resume the source at the consumed
     end (exact), or store :meth:`safe_offset` and re-read from there with a fresh decoder
@@ -92,6 +96,7 @@ class CsvOrderDecoder(LineDecoder):
         "encoding",
         "max_basket_items",
         "max_record_bytes",
+        "nfc",
         "require_ts",
     )
 
@@ -103,13 +108,10 @@ class CsvOrderDecoder(LineDecoder):
         encoding: str = "utf-8",
         *,
         require_ts: bool = False,
+        normalize: str = "nfc",
     ) -> None:
-        check_encoding(encoding)
+        self.nfc = normalize == "nfc"  # input.normalize, checked with the settings
         self.config = config or CsvConfig()
-        if len(self.config.delimiter) != 1:
-            raise ConfigError(
-                "input.csv.delimiter", self.config.delimiter, "must be a single character"
-            )
         self.max_basket_items = max_basket_items
         self.max_record_bytes = max_record_bytes
         self.encoding = encoding
@@ -122,46 +124,39 @@ class CsvOrderDecoder(LineDecoder):
 
     # -- columns ---------------------------------------------------------------------------
 
-    def _fields(self) -> list[tuple[str, str | None]]:
+    def _columns_of(self, column: Callable[[str, str], int]) -> tuple[int, int, int, int | None]:
+        """The order, item, time and quantity columns, each found by ``column(key, name)``."""
         cfg = self.config
-        return [
-            ("order_field", cfg.order_field),
-            ("item_field", cfg.item_field),
-            ("ts_field", cfg.ts_field),
-            ("quantity_field", cfg.quantity_field),
-        ]
+        qty = cfg.quantity_field
+        return (
+            column("order_field", cfg.order_field),
+            column("item_field", cfg.item_field),
+            column("ts_field", cfg.ts_field),
+            None if qty is None else column("quantity_field", qty),
+        )
 
     def _indices_by_number(self) -> tuple[int, int, int, int | None]:
-        found: list[int | None] = []
-        for key, name in self._fields():
-            if name is None:
-                found.append(None)
-                continue
-            if not name.isdigit():
-                raise ConfigError(
-                    f"input.csv.{key}",
-                    name,
-                    "with input.csv.header = false, columns are named by 0-based number; "
-                    "write e.g. '0', or set header: true",
-                )
-            found.append(int(name))
-        return found[0], found[1], found[2], found[3]  # type: ignore[return-value]
+        def number(key: str, name: str) -> int:
+            # with header: false the config rules allow only column numbers
+            assert name.isdigit(), f"input.csv.{key} = {name!r} is not a column number"
+            return int(name)
+
+        return self._columns_of(number)
 
     def _set_header(self, columns: list[str], offset: int | None) -> None:
         names = [c.strip() for c in columns]
-        found: list[int | None] = []
-        for key, name in self._fields():
-            if name is None:
-                found.append(None)
-                continue
+
+        def position(key: str, name: str) -> int:
             if name not in names:
                 raise InputError(
                     f"input.csv.{key} = {name!r}: no such column in the header at offset "
                     f"{offset} (columns: {show(names)}); set input.csv.{key} to one of them"
                 )
-            found.append(names.index(name))
+            return names.index(name)
+
+        idx = self._columns_of(position)
         self._columns = names
-        self._idx = (found[0], found[1], found[2], found[3])  # type: ignore[assignment]
+        self._idx = idx
 
     # -- the protocol ----------------------------------------------------------------------
 
@@ -184,7 +179,7 @@ class CsvOrderDecoder(LineDecoder):
         i_order, i_item, i_ts, i_qty = self._idx
         cfg = self.config
 
-        def cell(index: int, name: str) -> str:
+        def cell(index: int, name: str, *, checked: bool = False) -> str:
             if index >= len(row):
                 raise ParseError(
                     "missing_field",
@@ -192,9 +187,11 @@ class CsvOrderDecoder(LineDecoder):
                     offset=offset,
                     raw=record,
                 )
+            if checked:  # before stripping, which would hide a separator at either end
+                check_control(row[index], f"column {name!r}", offset, record)
             return row[index].strip()
 
-        order_id = cell(i_order, cfg.order_field)
+        order_id = cell(i_order, cfg.order_field, checked=True)
         if not order_id:
             raise ParseError(
                 "missing_field",
@@ -202,7 +199,7 @@ class CsvOrderDecoder(LineDecoder):
                 offset=offset,
                 raw=record,
             )
-        item = cell(i_item, cfg.item_field)
+        item = normalize_name(cell(i_item, cfg.item_field, checked=True), self.nfc)
         if not item:
             raise ParseError(
                 "empty", f"column {cfg.item_field!r} (the item) is blank", offset=offset, raw=record

@@ -13,7 +13,7 @@ from streamcount.config.settings import JsonlConfig
 from streamcount.errors import ParseError
 from streamcount.intake.formats.text import (
     LineDecoder,
-    check_encoding,
+    check_control,
     decode_text,
     dedupe,
     item_name,
@@ -64,7 +64,10 @@ class JsonlDecoder(LineDecoder):
       empty-string names are skipped; no names left is ``empty``;
     * ``ts`` is optional (``null`` or absent gives ``None``, unless ``require_ts``); a number
       is epoch seconds, a string is ISO-8601 (``Z`` or an offset; naive times are UTC);
-    * ``id`` is optional; a string or an integer, kept as a string.
+    * ``id`` is optional; a string or an integer, kept as a string;
+    * an item name or id holding a character of
+      :data:`~streamcount.intake.formats.text.CONTROL_CHARS` sets the record aside
+      (``control_chars``); names are NFC-normalised unless ``normalize`` is ``none``.
 
     Examples
     --------
@@ -74,7 +77,14 @@ class JsonlDecoder(LineDecoder):
     Transaction(items=('tea',), ts=60.0, id='7', offset=0, end_offset=78)
     """
 
-    __slots__ = ("config", "encoding", "max_basket_items", "max_record_bytes", "require_ts")
+    __slots__ = (
+        "config",
+        "encoding",
+        "max_basket_items",
+        "max_record_bytes",
+        "nfc",
+        "require_ts",
+    )
 
     def __init__(
         self,
@@ -84,8 +94,9 @@ class JsonlDecoder(LineDecoder):
         encoding: str = "utf-8",
         *,
         require_ts: bool = False,
+        normalize: str = "nfc",
     ) -> None:
-        check_encoding(encoding)
+        self.nfc = normalize == "nfc"  # input.normalize, checked with the settings
         self.config = config or JsonlConfig()
         self.max_basket_items = max_basket_items
         self.max_record_bytes = max_record_bytes
@@ -148,7 +159,7 @@ class JsonlDecoder(LineDecoder):
                         raw=record,
                     )
                 where = f"{where}.{name_field}"
-            name = item_name(element, where, offset, record)
+            name = item_name(element, where, offset, record, nfc=self.nfc)
             if name:
                 names.append(name)
         items = dedupe(names)
@@ -185,4 +196,5 @@ class JsonlDecoder(LineDecoder):
                     raw=record,
                 )
             record_id = str(id_value)
+            check_control(record_id, f"field {cfg.id_field!r}", offset, record)
         return [Transaction(tuple(items), ts, record_id, offset, end_offset)]

@@ -9,21 +9,27 @@ dead-letter it and carry on.
 from __future__ import annotations
 
 import math
+import re
+import unicodedata
 from datetime import UTC, datetime
 from typing import Any
 
 import numpy as np
 
 from streamcount.config.settings import MAX_TIMESTAMP
-from streamcount.errors import ConfigError, ParseError
+from streamcount.errors import ParseError
+from streamcount.intake.deadletter import RAW_CHARS
 from streamcount.intake.records import Decoded, RecordBatch, Transaction
 
 __all__ = [
+    "CONTROL_CHARS",
+    "NORMALIZE_FORMS",
     "LineDecoder",
-    "check_encoding",
+    "check_control",
     "decode_text",
     "dedupe",
     "item_name",
+    "normalize_name",
     "parse_ts",
     "show",
     "too_long_error",
@@ -31,6 +37,17 @@ __all__ = [
 ]
 
 _SHOW_CHARS = 80
+
+#: Characters refused in item names and order ids (reason ``control_chars``): C0 controls but
+#: tab, DEL and the C1 controls, the line and paragraph separators, and the bidirectional marks
+#: (U+061C, U+200E, U+200F), embeddings, overrides and isolates (Unicode UAX #9), which can make
+#: one name look like another where it is shown (``tea`` + U+202E + ``lam`` is shown as
+#: ``teamal``).
+CONTROL_CHARS = re.compile(
+    r"[\x00-\x08\x0a-\x1f\x7f-\x9f\u061c\u200e\u200f\u2028\u2029\u202a-\u202e\u2066-\u2069]"
+)
+#: values of ``input.normalize``: ``nfc`` (Unicode canonical composition) or ``none`` (as read)
+NORMALIZE_FORMS: tuple[str, ...] = ("nfc", "none")
 
 
 def show(value: object) -> str:
@@ -41,21 +58,35 @@ def show(value: object) -> str:
     return text
 
 
-def check_encoding(encoding: str) -> None:
-    """Reject encodings in which a newline or comma is not the ASCII byte (e.g. UTF-16)."""
-    try:
-        probe = "\n, ".encode(encoding)
-    except LookupError:
-        raise ConfigError(
-            "input.encoding", encoding, "is not a known text encoding; use e.g. 'utf-8'"
-        ) from None
-    if probe != b"\n, ":
-        raise ConfigError(
-            "input.encoding",
-            encoding,
-            "records are split on newline bytes, so the encoding must be ASCII-compatible "
-            "(utf-8, latin-1, cp1252...); re-encode the feed as UTF-8",
+def check_control(text: str, where: str, offset: int | None, raw: bytes) -> None:
+    r"""Raise ``control_chars`` when ``text`` holds one of :data:`CONTROL_CHARS`.
+
+    >>> check_control("tea\u202emal", "item", 0, b"")  # doctest: +ELLIPSIS
+    Traceback (most recent call last):
+    ...
+    streamcount.errors.ParseError: control_chars at offset 0: item = 'tea\u202emal' holds U+202E...
+    """
+    found = CONTROL_CHARS.search(text)
+    if found is not None:
+        char = found.group()
+        label = unicodedata.name(char, "a control character")
+        raise ParseError(
+            "control_chars",
+            f"{where} = {show(text)} holds U+{ord(char):04X} ({label}) at position {found.start()}",
+            offset=offset,
+            raw=raw,
         )
+
+
+def normalize_name(name: str, nfc: bool) -> str:
+    r"""``name`` in Unicode normal form C when ``nfc`` (ASCII is returned as it is).
+
+    >>> [len(normalize_name("cafe\u0301", nfc)) for nfc in (True, False)]
+    [4, 5]
+    """
+    if nfc and not name.isascii():
+        return unicodedata.normalize("NFC", name)
+    return name
 
 
 def dedupe(items: list[str]) -> list[str]:
@@ -70,7 +101,7 @@ def decode_text(record: bytes, offset: int | None, encoding: str, max_record_byt
     if len(record) > max_record_bytes:
         raise ParseError(
             "too_long",
-            f"record is {len(record)} bytes, more than max_record_bytes = {max_record_bytes}",
+            too_long_detail(f"{len(record)} bytes", max_record_bytes),
             offset=offset,
             raw=record[:max_record_bytes],
         )
@@ -135,8 +166,13 @@ def parse_ts(value: object, where: str, offset: int | None, raw: bytes) -> float
     return ts
 
 
-def item_name(value: object, where: str, offset: int | None, raw: bytes) -> str:
+def item_name(
+    value: object, where: str, offset: int | None, raw: bytes, *, nfc: bool = True
+) -> str:
+    """An item name from a decoded value: a string (checked for :data:`CONTROL_CHARS`,
+    NFC-normalised when ``nfc``) or a number (``str(n)``)."""
     if isinstance(value, str):
+        check_control(value, where, offset, raw)
         if not value.isascii():
             try:  # JSON escapes can smuggle lone surrogates, which cannot be stored as UTF-8
                 value.encode("utf-8")
@@ -147,6 +183,7 @@ def item_name(value: object, where: str, offset: int | None, raw: bytes) -> str:
                     offset=offset,
                     raw=raw,
                 ) from None
+            return normalize_name(value, nfc)
         return value
     if isinstance(value, int | float) and not isinstance(value, bool):
         return str(value)
@@ -164,10 +201,18 @@ def too_long_error(batch: RecordBatch, i: int, max_record_bytes: int) -> ParseEr
     size = f"{end - start - 1} bytes or more" if start is not None and end is not None else "long"
     return ParseError(
         "too_long",
-        f"record is {size}, more than max_record_bytes = {max_record_bytes}; only its first "
-        f"{len(batch.lines[i])} bytes are kept",
+        too_long_detail(size, max_record_bytes),
         offset=start,
         raw=batch.lines[i],
+    )
+
+
+def too_long_detail(size: str, max_record_bytes: int) -> str:
+    """The one wording of ``too_long``: the record's size, the limit, and what the dead-letter
+    file keeps of it (its first :data:`~streamcount.intake.deadletter.RAW_CHARS` characters)."""
+    return (
+        f"record is {size}, more than input.max_record_bytes = {max_record_bytes}; the "
+        f"dead-letter file keeps its first {RAW_CHARS} characters"
     )
 
 

@@ -40,9 +40,12 @@ class Source(Protocol):
 
     #: the registry name (``file``, ``stdin``, ``http``...), written into dead letters
     name: str
-    #: queues a body pushed from outside (HTTP ingest) and returns a future of what became
-    #: of it; ``None`` for sources that read on their own
-    ingest: Callable[[bytes], Future[IngestReceipt]] | None
+
+    @property
+    def ingest(self) -> Callable[[bytes], Future[IngestReceipt]] | None:
+        """Queues a body pushed from outside (HTTP ingest) and returns a future of what
+        became of it; ``None`` for sources that read on their own."""
+        ...
 
     def read(self, max_records: int = 10000, timeout: float = 0.0) -> list[RecordBatch]:
         """Record batches available now (about ``max_records`` records at most), waiting at

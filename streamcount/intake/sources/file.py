@@ -78,12 +78,9 @@ class FollowedFile:
         start_at: str = "beginning",
         follow: bool = True,
     ) -> None:
-        if start_at not in ("beginning", "end"):
-            raise ConfigError("input.start_at", start_at, "must be 'beginning' or 'end'")
+        # start_at and max_record_bytes are checked with the other settings (config.checks)
         if start_offset < 0:
             raise ConfigError("start_offset", start_offset, "must be >= 0")
-        if max_record_bytes < 1:
-            raise ConfigError("input.max_record_bytes", max_record_bytes, "must be >= 1")
         self.path = os.fspath(path)
         self.poll_interval_seconds = poll_interval_seconds
         self.max_record_bytes = max_record_bytes

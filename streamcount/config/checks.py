@@ -1,0 +1,409 @@
+"""The rules a configuration must keep: the one place where settings are validated.
+
+* :data:`KEY_RULES`: per dotted key, the rules its value must keep (a predicate and the rule's
+  text, written as advice); a predicate sees the value after the type check of
+  :mod:`streamcount.config.load` (never ``None``: ``null`` is accepted or refused by the type
+  annotation alone);
+* :func:`cross_checks`: rules tying two keys together, each message naming both;
+* :data:`RETIRED_KEYS`: keys that existed once, with what replaced them.
+
+Components built from a :class:`~streamcount.config.settings.Config` (decoders, sources, sinks,
+the server) do not check their settings again: a config reaches them through
+:func:`streamcount.config.load.config_from_mapping`, which applies these rules. A name that a
+registry defines (formats, sources, significance tests) is read from that registry.
+"""
+
+from __future__ import annotations
+
+import codecs
+import ipaddress
+import re
+import typing
+from collections.abc import Callable
+from typing import Any
+from urllib.parse import urlsplit
+
+from streamcount.config.settings import DEFAULT_LISTEN, DEFAULT_PORT, Config
+from streamcount.errors import ConfigError
+
+__all__ = [
+    "KEY_RULES",
+    "NORMALISE",
+    "RETIRED_KEYS",
+    "cross_checks",
+    "parse_listen",
+    "window_panes",
+]
+
+_LOG_LEVELS = ("DEBUG", "INFO", "WARNING", "ERROR", "CRITICAL")
+_ENV_NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_]*\Z")
+#: per-rule gauges add three series each; keep the label cardinality of a scrape bounded
+_MAX_TOP_RULES = 1000
+
+
+# ---------------------------------------------------------------------------------------------
+# Per-key rules: each is (predicate, rule text), checked in order. A predicate sees the already
+# type-checked value (never None: null is accepted or refused by the type annotation alone).
+# ---------------------------------------------------------------------------------------------
+
+_Check = tuple[Callable[[Any], bool], str]
+
+
+def _at_least(low: float) -> _Check:
+    return (lambda v: v >= low, f"must be >= {low:g}")
+
+
+def _above(low: float) -> _Check:
+    return (lambda v: v > low, f"must be > {low:g}")
+
+
+def _one_of(*choices: str) -> _Check:
+    return (lambda v: v in choices, "must be one of " + ", ".join(repr(c) for c in choices))
+
+
+def _codec_known(name: str) -> bool:
+    try:
+        codecs.lookup(name)
+    except LookupError:
+        return False
+    return True
+
+
+def _ascii_compatible(name: str) -> bool:
+    """Newline, comma and space are their ASCII bytes (records are split on newline bytes)."""
+    return "\n, ".encode(name) == b"\n, "
+
+
+def _http_url(url: str) -> bool:
+    parts = urlsplit(url)
+    return parts.scheme in ("http", "https") and bool(parts.hostname)
+
+
+def parse_listen(listen: str) -> tuple[str, int]:
+    """Split ``host:port`` (``[v6addr]:port`` for IPv6) into its parts.
+
+    Raises
+    ------
+    ValueError
+        When the text is not ``host:port`` with a port in 0..65535 (0: any free port).
+
+    Examples
+    --------
+    >>> parse_listen(DEFAULT_LISTEN) == ("127.0.0.1", DEFAULT_PORT)
+    True
+    >>> parse_listen("[::1]:0")
+    ('::1', 0)
+    """
+    host, sep, port = listen.rpartition(":")
+    if not sep or not host or not port.isdigit():
+        raise ValueError(f"expected host:port, got {listen!r}")
+    if host.startswith("[") and host.endswith("]"):
+        host = host[1:-1]
+    elif ":" in host:
+        raise ValueError(
+            f"write an IPv6 address in brackets, e.g. [::1]:{DEFAULT_PORT}, got {listen!r}"
+        )
+    number = int(port)
+    if not host or number > 65535:
+        raise ValueError(f"expected host:port with port 0..65535, got {listen!r}")
+    return host, number
+
+
+def _listen_ok(listen: str) -> bool:
+    try:
+        parse_listen(listen)
+    except ValueError:
+        return False
+    return True
+
+
+def _source_names() -> tuple[str, ...]:
+    from streamcount.intake.sources import SOURCES  # the registry imports the settings
+
+    return tuple(SOURCES)
+
+
+def _format_names() -> tuple[str, ...]:
+    from streamcount.intake.formats import FORMATS
+
+    return tuple(FORMATS)
+
+
+def _significance_names() -> tuple[str, ...]:
+    from streamcount.rules.derive import SIGNIFICANCE_TESTS
+
+    return SIGNIFICANCE_TESTS
+
+
+_NON_EMPTY: _Check = (lambda v: v != "", "must not be empty")
+
+KEY_RULES: dict[str, tuple[_Check, ...]] = {
+    "input.source": (
+        (
+            lambda v: all(name in _source_names() for name in v),
+            "each must be one of " + ", ".join(repr(n) for n in _source_names()),
+        ),
+    ),
+    "input.normalize": (_one_of("nfc", "none"),),
+    "input.path": (
+        _NON_EMPTY,
+        (
+            lambda v: v != "-",
+            "standard input is a source of its own: set input.source: stdin (--source stdin)",
+        ),
+    ),
+    "input.format": (_one_of(*_format_names()),),
+    "input.start_at": (_one_of("beginning", "end"),),
+    "input.poll_interval_seconds": (_above(0),),
+    "input.idle_seconds": (_above(0),),
+    "input.max_record_bytes": (_at_least(1),),
+    "input.encoding": (
+        (_codec_known, "must be a text encoding Python knows, e.g. 'utf-8'"),
+        (
+            _ascii_compatible,
+            "records are split on newline bytes, so the encoding must be ASCII-compatible "
+            "(utf-8, latin-1, cp1252...); re-encode the feed as UTF-8",
+        ),
+    ),
+    "input.max_body_bytes": (_at_least(1),),
+    "input.max_future_seconds": (_at_least(0),),
+    "input.dead_letter_path": (_NON_EMPTY,),
+    "input.jsonl.id_field": (_NON_EMPTY,),
+    "input.jsonl.ts_field": (_NON_EMPTY,),
+    "input.jsonl.items_field": (_NON_EMPTY,),
+    "input.jsonl.item_name_field": (_NON_EMPTY,),
+    "input.csv.order_field": (_NON_EMPTY,),
+    "input.csv.item_field": (_NON_EMPTY,),
+    "input.csv.ts_field": (_NON_EMPTY,),
+    "input.csv.quantity_field": (_NON_EMPTY,),
+    "input.csv.delimiter": (
+        (
+            lambda v: len(v) == 1 and v not in '"\r\n',
+            "must be a single character other than a quote or a line break",
+        ),
+    ),
+    "input.csv.order_close_seconds": (_at_least(0),),
+    "engine.epsilon": ((lambda v: 0 <= v < 1, "must be in [0, 1) (0 counts exactly)"),),
+    "engine.max_itemset_size": ((lambda v: 1 <= v <= 8, "must be between 1 and 8"),),
+    "engine.max_basket_items": (_at_least(1),),
+    "engine.window_size": (_at_least(1),),
+    "engine.pane_size": (_at_least(1),),
+    "engine.window_seconds": (_above(0),),
+    "engine.pane_seconds": (_above(0),),
+    "engine.allowed_lateness_seconds": (_at_least(0),),
+    "engine.batch_size": (_at_least(1),),
+    "rules.min_support": ((lambda v: 0 < v <= 1, "must be in (0, 1] (a fraction of the window)"),),
+    "rules.min_confidence": ((lambda v: 0 <= v <= 1, "must be in [0, 1]"),),
+    "rules.min_lift": (_at_least(0),),
+    "rules.min_count": (_at_least(1),),
+    "rules.max_consequent_size": (_at_least(1),),
+    "rules.significance": (_one_of(*_significance_names()),),
+    "rules.max_p_value": ((lambda v: 0 < v <= 1, "must be in (0, 1] (null turns the test off)"),),
+    "rules.exit_ratio": ((lambda v: 0 < v <= 1, "must be in (0, 1]"),),
+    "rules.max_rules": (_at_least(1),),
+    "alerts.false_alerts_per_million": (
+        (
+            lambda v: 0 < v <= 1e6,
+            "must be in (0, 1000000] (expected false alerts per million transactions)",
+        ),
+    ),
+    "alerts.baseline_panes": (_at_least(2),),
+    "alerts.recent_panes": (_at_least(1),),
+    "alerts.surge_min_count": (_at_least(1),),
+    "alerts.family_lift_tolerance": (_at_least(0),),
+    "alerts.history": (_at_least(1),),
+    "sinks.file": (_NON_EMPTY,),
+    "sinks.webhook.url": ((_http_url, "must be an http:// or https:// URL with a host"),),
+    "sinks.webhook.timeout_seconds": (_above(0),),
+    "sinks.webhook.max_retries": (_at_least(0),),
+    "sinks.webhook.backoff_seconds": (_at_least(0),),
+    "sinks.webhook.max_backoff_seconds": (_at_least(0),),
+    "sinks.webhook.queue_size": (_at_least(1),),
+    "server.listen": (
+        (_listen_ok, f"must be host:port with port 0..65535, e.g. {DEFAULT_LISTEN!r}"),
+    ),
+    "server.token_env": (
+        (
+            lambda v: bool(_ENV_NAME.match(v)),
+            "must be the name of an environment variable (letters, digits, _), "
+            "not the token itself",
+        ),
+    ),
+    "server.token_file": (_NON_EMPTY,),
+    "server.tls_certificate": (_NON_EMPTY,),
+    "server.tls_key": (_NON_EMPTY,),
+    "server.max_request_bytes": (_at_least(1),),
+    "server.request_timeout_seconds": (_above(0),),
+    "server.keepalive_timeout_seconds": (_above(0),),
+    "server.max_connections": (_at_least(1),),
+    "server.max_connections_per_client": (_at_least(0),),
+    "server.backlog": (_at_least(1),),
+    "server.workers": (_at_least(1),),
+    "server.auth_failures_per_minute": (_at_least(1),),
+    "metrics.top_rules": (
+        (
+            lambda v: 0 <= v <= _MAX_TOP_RULES,
+            f"must be between 0 and {_MAX_TOP_RULES} (each rule adds three series)",
+        ),
+    ),
+    "checkpoint.checkpoint_dir": (_NON_EMPTY,),
+    "checkpoint.checkpoint_interval_seconds": (_above(0),),
+    "logging.level": (_one_of(*_LOG_LEVELS),),
+    "logging.format": (_one_of("text", "json"),),
+}
+
+#: values normalised before the rules run (written back into the Config)
+NORMALISE: dict[str, Callable[[Any], Any]] = {"logging.level": str.upper}
+
+
+#: Keys that existed once, with what replaced them: an old config gets a message naming the
+#: new key instead of "unknown key". Every entry is also listed in CHANGELOG.md.
+RETIRED_KEYS: dict[str, str] = {
+    "input.http_ingest": "was replaced by input.source: add 'http' to it, e.g. "
+    "input.source: [file, http] (or input.source: http for HTTP ingest alone)",
+    "rules.confirm_evaluations": "was retired: alerts come from change tests that gather "
+    "their own evidence pane by pane; set alerts.false_alerts_per_million to trade "
+    "speed for fewer false alerts",
+    "rules.cooldown_evaluations": "was retired: after an alert the change test restarts "
+    "from the new rate, so a second alert needs new evidence; remove the key",
+    "alerts.surge_max_p_value": "was retired: surges are judged under the one false-alert "
+    "budget, alerts.false_alerts_per_million",
+    "alerts.growth_rate": "was retired: the change tests' alternatives are fixed multiples "
+    "(1.5, 2 and 4) of each itemset's own reference rate; remove the key",
+}
+
+
+def _fail(key: str, value: object, rule: str) -> typing.NoReturn:
+    raise ConfigError(key, value, rule)
+
+
+def cross_checks(cfg: Config) -> None:
+    """Rules that tie two keys together; each message names both."""
+    eng = cfg.engine
+    if eng.pane_size > eng.window_size:
+        _fail(
+            "engine.pane_size",
+            eng.pane_size,
+            f"must be <= engine.window_size ({eng.window_size})",
+        )
+    if eng.window_size % eng.pane_size:
+        _fail(
+            "engine.window_size",
+            eng.window_size,
+            f"must be a multiple of engine.pane_size ({eng.pane_size})",
+        )
+    if (eng.window_seconds is None) != (eng.pane_seconds is None):
+        key, other = (
+            ("engine.window_seconds", "engine.pane_seconds")
+            if eng.window_seconds is not None
+            else ("engine.pane_seconds", "engine.window_seconds")
+        )
+        _fail(key, getattr(eng, key.split(".")[1]), f"needs {other} set too (or both null)")
+    if eng.window_seconds is not None and eng.pane_seconds is not None:
+        ratio = eng.window_seconds / eng.pane_seconds
+        if ratio < 1 - 1e-9 or abs(ratio - round(ratio)) > 1e-9 * ratio:
+            _fail(
+                "engine.window_seconds",
+                eng.window_seconds,
+                f"must be a whole multiple of engine.pane_seconds ({eng.pane_seconds:g})",
+            )
+        if eng.allowed_lateness_seconds >= eng.window_seconds:
+            _fail(
+                "engine.allowed_lateness_seconds",
+                eng.allowed_lateness_seconds,
+                f"must be < engine.window_seconds ({eng.window_seconds:g})",
+            )
+    panes = window_panes(cfg)
+    # a one-pane window (e.g. a whole file counted as one window) has no baseline: surges are
+    # simply never raised there, which is no configuration mistake
+    if cfg.alerts.surge and panes > 1 and cfg.alerts.recent_panes >= panes:
+        _fail(
+            "alerts.recent_panes",
+            cfg.alerts.recent_panes,
+            f"must be < the window's panes ({panes}, from engine.window_size/pane_size "
+            "or window_seconds/pane_seconds) so a baseline remains; or set alerts.surge: false",
+        )
+    if eng.max_itemset_size >= 2 and cfg.rules.max_consequent_size >= eng.max_itemset_size:
+        _fail(
+            "rules.max_consequent_size",
+            cfg.rules.max_consequent_size,
+            f"must be < engine.max_itemset_size ({eng.max_itemset_size}) "
+            "so every rule keeps an antecedent",
+        )
+    hook = cfg.sinks.webhook
+    if hook.max_backoff_seconds < hook.backoff_seconds:
+        _fail(
+            "sinks.webhook.max_backoff_seconds",
+            hook.max_backoff_seconds,
+            f"must be >= sinks.webhook.backoff_seconds ({hook.backoff_seconds:g})",
+        )
+    _server_checks(cfg)
+    if "http" in cfg.input.source and cfg.server.listen is None:
+        _fail(
+            "input.source",
+            list(cfg.input.source),
+            "'http' needs server.listen set (HTTP ingest is served by the listener)",
+        )
+    csv = cfg.input.csv
+    if cfg.input.format == "csv" and not csv.header:
+        for key in ("order_field", "item_field", "ts_field", "quantity_field"):
+            name = getattr(csv, key)
+            if name is not None and not name.isdigit():
+                _fail(
+                    f"input.csv.{key}",
+                    name,
+                    "with input.csv.header = false, columns are named by 0-based number; "
+                    "write e.g. '0', or set header: true",
+                )
+
+
+def _loopback(host: str) -> bool:
+    """Whether ``host`` (from server.listen) only accepts connections from this machine."""
+    if host.lower() == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False  # a host name may resolve to anything
+
+
+def _server_checks(cfg: Config) -> None:
+    srv = cfg.server
+    if srv.token_env is not None and srv.token_file is not None:
+        _fail(
+            "server.token_file",
+            srv.token_file,
+            f"cannot be set together with server.token_env ({srv.token_env!r}); keep one "
+            "(a file can be rotated without a restart)",
+        )
+    if (srv.tls_certificate is None) != (srv.tls_key is None):
+        key, other = (
+            ("server.tls_certificate", "server.tls_key")
+            if srv.tls_certificate is not None
+            else ("server.tls_key", "server.tls_certificate")
+        )
+        _fail(key, getattr(srv, key.split(".")[1]), f"needs {other} set too (or both null)")
+    if srv.listen is not None and srv.tls_certificate is None and not srv.behind_proxy:
+        host, _ = parse_listen(srv.listen)
+        if not _loopback(host):
+            _fail(
+                "server.listen",
+                srv.listen,
+                "listens beyond this machine without TLS: set server.tls_certificate and "
+                "server.tls_key, or server.behind_proxy: true when a TLS-terminating reverse "
+                "proxy is in front (README, 'Exposing the service')",
+            )
+    if srv.max_connections_per_client > srv.max_connections:
+        _fail(
+            "server.max_connections_per_client",
+            srv.max_connections_per_client,
+            f"must be <= server.max_connections ({srv.max_connections})",
+        )
+
+
+def window_panes(cfg: Config) -> int:
+    """Panes in a full window (count-based or time-based)."""
+    eng = cfg.engine
+    if eng.window_seconds is not None and eng.pane_seconds is not None:
+        return round(eng.window_seconds / eng.pane_seconds)
+    return eng.window_size // eng.pane_size
