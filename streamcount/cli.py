@@ -149,6 +149,8 @@ def _cmd_run(args: argparse.Namespace) -> int:
         extra["checkpoint.checkpoint_dir"] = args.checkpoint_dir
     if args.no_follow:
         extra["input.follow"] = False
+    if args.accept_gap:
+        extra["input.nats.accept_gap"] = True
     config = config_from_args(args, extra)
     setup_logging(config.logging.level, config.logging.format)
     return Service(config, fresh=args.fresh).run()
@@ -195,7 +197,7 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument(
         "--source",
         metavar="NAMES",
-        help="where records come from, comma-separated: file, stdin, http (input.source)",
+        help="where records come from, comma-separated: file, stdin, http, nats (input.source)",
     )
     run.add_argument("--input", metavar="PATH", help="the file to follow (input.path)")
     run.add_argument("--listen", metavar="HOST:PORT", help="HTTP listener (server.listen)")
@@ -205,6 +207,12 @@ def build_parser() -> argparse.ArgumentParser:
     )
     run.add_argument(
         "--no-follow", action="store_true", help="stop at the end of the input (input.follow)"
+    )
+    run.add_argument(
+        "--accept-gap",
+        action="store_true",
+        help="nats source: resume even though the stream's retention removed messages after "
+        "the checkpoint; the gap is logged and counted (input.nats.accept_gap)",
     )
     _add_setting_options(run)
     run.set_defaults(func=_cmd_run)

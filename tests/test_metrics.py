@@ -234,3 +234,21 @@ def test_registering_twice_on_one_registry_is_refused(registry: CollectorRegistr
     Metrics(registry, statistics=lambda: None)
     with pytest.raises(ValueError, match="Duplicated timeseries"):
         Metrics(registry, statistics=lambda: None)
+
+
+def test_source_metrics_follow_the_sources_totals(registry: CollectorRegistry) -> None:
+    m = Metrics(registry, statistics=lambda: None)
+    report = {"redeliveries": 3, "reconnects": 1, "gap_messages": 0, "terminated": 2}
+    m.observe_source("nats", connected=True, lag_messages=120, **report)
+    m.observe_source("nats", connected=False, lag_messages=80, **{**report, "reconnects": 2})
+    get = registry.get_sample_value
+    labels = {"source": "nats"}
+    assert get("streamcount_source_connected", labels) == 0
+    assert get("streamcount_source_lag_messages", labels) == 80
+    assert get("streamcount_source_redeliveries_total", labels) == 3
+    assert get("streamcount_source_reconnects_total", labels) == 2
+    assert get("streamcount_source_gap_messages_total", labels) == 0
+    assert get("streamcount_source_terminated_total", labels) == 2
+    # a rebuilt source starts its totals from 0 again: counted in full, never backwards
+    m.observe_source("nats", connected=True, lag_messages=0, **{**report, "reconnects": 1})
+    assert get("streamcount_source_reconnects_total", labels) == 3

@@ -135,6 +135,21 @@ def _significance_names() -> tuple[str, ...]:
     return SIGNIFICANCE_TESTS
 
 
+def _nats_url(url: str) -> bool:
+    parts = urlsplit(url if "://" in url else f"nats://{url}")
+    try:
+        parts.port  # noqa: B018 - raises on a port that is not a number
+    except ValueError:
+        return False
+    return parts.scheme in ("nats", "tls") and bool(parts.hostname)
+
+
+#: a JetStream stream or consumer name: no whitespace, dots, wildcards or path separators
+_NATS_NAME = re.compile(r"[^\s.*>/\\]+\Z")
+#: a subject: dot-separated tokens, no whitespace, ``*`` a whole token, ``>`` the last one
+_NATS_SUBJECT = re.compile(r"([^\s.*>]+|\*)(\.([^\s.*>]+|\*))*(\.>)?\Z|>\Z")
+
+
 _NON_EMPTY: _Check = (lambda v: v != "", "must not be empty")
 
 KEY_RULES: dict[str, tuple[_Check, ...]] = {
@@ -183,6 +198,46 @@ KEY_RULES: dict[str, tuple[_Check, ...]] = {
         ),
     ),
     "input.csv.order_close_seconds": (_at_least(0),),
+    "input.nats.servers": (
+        (
+            lambda v: all(_nats_url(u) for u in v),
+            "each must be a server URL nats://HOST:PORT or tls://HOST:PORT",
+        ),
+    ),
+    "input.nats.stream": (
+        (
+            lambda v: bool(_NATS_NAME.match(v)),
+            "must be a stream name: no spaces, dots, '*', '>' or slashes",
+        ),
+    ),
+    "input.nats.subject": (
+        (
+            lambda v: bool(_NATS_SUBJECT.match(v)),
+            "must be a subject such as orders.3 or orders.* (tokens separated by dots, '*' "
+            "for one whole token, '>' only as the last)",
+        ),
+    ),
+    "input.nats.durable": (
+        (
+            lambda v: bool(_NATS_NAME.match(v)),
+            "must be a consumer name: no spaces, dots, '*', '>' or slashes",
+        ),
+    ),
+    "input.nats.creds_file": (_NON_EMPTY,),
+    "input.nats.token_env": (
+        (
+            lambda v: bool(_ENV_NAME.match(v)),
+            "must be the name of an environment variable (letters, digits, _), "
+            "not the token itself",
+        ),
+    ),
+    "input.nats.ack_wait_seconds": (_above(0),),
+    "input.nats.max_ack_pending": (_at_least(1),),
+    "input.nats.pull_batch": (_at_least(1),),
+    "input.nats.max_buffered_messages": (_at_least(1),),
+    "input.nats.connect_timeout_seconds": (_above(0),),
+    "input.nats.reconnect_wait_seconds": (_above(0),),
+    "input.nats.max_reconnect_wait_seconds": (_above(0),),
     "engine.epsilon": ((lambda v: 0 <= v < 1, "must be in [0, 1) (0 counts exactly)"),),
     "engine.max_itemset_size": ((lambda v: 1 <= v <= 8, "must be between 1 and 8"),),
     "engine.max_basket_items": (_at_least(1),),
@@ -338,6 +393,7 @@ def cross_checks(cfg: Config) -> None:
             f"must be >= sinks.webhook.backoff_seconds ({hook.backoff_seconds:g})",
         )
     _server_checks(cfg)
+    _nats_cross_checks(cfg)
     if "http" in cfg.input.source and cfg.server.listen is None:
         _fail(
             "input.source",
@@ -355,6 +411,44 @@ def cross_checks(cfg: Config) -> None:
                     "with input.csv.header = false, columns are named by 0-based number; "
                     "write e.g. '0', or set header: true",
                 )
+
+
+def _nats_cross_checks(cfg: Config) -> None:
+    nats = cfg.input.nats
+    interval = cfg.checkpoint.checkpoint_interval_seconds
+    if nats.ack_wait_seconds is not None and nats.ack_wait_seconds <= interval:
+        _fail(
+            "input.nats.ack_wait_seconds",
+            nats.ack_wait_seconds,
+            f"must be > checkpoint.checkpoint_interval_seconds ({interval:g}): messages are "
+            "acknowledged at checkpoints, so a shorter wait redelivers every message (null "
+            "derives it: twice the interval plus 60)",
+        )
+    if nats.pull_batch > nats.max_buffered_messages:
+        _fail(
+            "input.nats.pull_batch",
+            nats.pull_batch,
+            f"must be <= input.nats.max_buffered_messages ({nats.max_buffered_messages})",
+        )
+    if nats.max_reconnect_wait_seconds < nats.reconnect_wait_seconds:
+        _fail(
+            "input.nats.max_reconnect_wait_seconds",
+            nats.max_reconnect_wait_seconds,
+            f"must be >= input.nats.reconnect_wait_seconds ({nats.reconnect_wait_seconds:g})",
+        )
+    if "nats" in cfg.input.source and cfg.input.format == "csv" and cfg.input.csv.header:
+        _fail(
+            "input.csv.header",
+            True,
+            "must be false with input.source nats: messages on a bus carry no header row, so "
+            "columns are named by 0-based number (input.csv.order_field: '0'...)",
+        )
+    if nats.creds_file is not None and nats.token_env is not None:
+        _fail(
+            "input.nats.token_env",
+            nats.token_env,
+            "set either input.nats.creds_file or input.nats.token_env, not both",
+        )
 
 
 def _loopback(host: str) -> bool:

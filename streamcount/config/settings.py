@@ -27,6 +27,7 @@ __all__ = [
     "JsonlConfig",
     "LoggingConfig",
     "MetricsConfig",
+    "NatsConfig",
     "RulesConfig",
     "ServerConfig",
     "SinksConfig",
@@ -73,10 +74,49 @@ class CsvConfig:
 
 
 @dataclass(frozen=True, slots=True)
+class NatsConfig:
+    """The ``nats`` source: a durable pull consumer on a NATS JetStream stream.
+
+    Credentials never go here: ``creds_file`` names a file and ``token_env`` an environment
+    variable. The stream must exist (file storage, limits retention); the consumer is
+    streamcount's own and is re-created at the checkpointed sequence on every start.
+    """
+
+    #: server URLs (nats://host:port or tls://host:port); one or several of a cluster
+    servers: tuple[str, ...] = ("nats://127.0.0.1:4222",)
+    #: the JetStream stream to read
+    stream: str = "ORDERS"
+    #: subject filter within the stream (wildcards allowed); null: every subject
+    subject: str | None = None
+    #: name of the durable pull consumer (one streamcount process per name)
+    durable: str = "streamcount"
+    #: a NATS credentials file (user JWT and seed); null: none
+    creds_file: str | None = None
+    #: name of the environment variable holding a token (never the token itself)
+    token_env: str | None = None
+    #: seconds before the server redelivers an unacknowledged message; null: twice
+    #: checkpoint.checkpoint_interval_seconds plus 60 (messages are acknowledged at checkpoints)
+    ack_wait_seconds: float | None = None
+    #: messages delivered but not yet acknowledged (checkpointed) before the server pauses
+    max_ack_pending: int = 1000000
+    #: messages asked for per pull request
+    pull_batch: int = 1000
+    #: messages fetched and waiting to be counted, at most
+    max_buffered_messages: int = 20000
+    connect_timeout_seconds: float = 2.0
+    #: first wait before connecting again after a failure; doubles up to the maximum
+    reconnect_wait_seconds: float = 0.5
+    max_reconnect_wait_seconds: float = 30.0
+    #: resume even when the stream no longer holds the message after the checkpointed one
+    #: (retention removed it while streamcount was stopped); the gap is logged and counted
+    accept_gap: bool = False
+
+
+@dataclass(frozen=True, slots=True)
 class InputConfig:
     """Where transactions come from and how they are read."""
 
-    #: where records come from: one name or a list of them (file | stdin | http); several
+    #: where records come from: one name or a list of them (file | stdin | http | nats); several
     #: run at once, each with its own position in the checkpoint
     source: tuple[str, ...] = ("file",)
     #: the file the ``file`` source follows
@@ -84,7 +124,8 @@ class InputConfig:
     format: str = "basket"  # basket | jsonl | csv
     #: keep reading appended lines (``false``: stop at end of file)
     follow: bool = True
-    #: where to start a followed file when no checkpoint exists: beginning | end
+    #: where to start a followed file or a NATS stream when no checkpoint exists:
+    #: beginning | end
     start_at: str = "beginning"
     poll_interval_seconds: float = 0.2
     #: wall-clock seconds with nothing new while every source is caught up after which the
@@ -104,6 +145,7 @@ class InputConfig:
     dead_letter_path: str | None = "dead-letter.jsonl"
     jsonl: JsonlConfig = field(default_factory=JsonlConfig)
     csv: CsvConfig = field(default_factory=CsvConfig)
+    nats: NatsConfig = field(default_factory=NatsConfig)
 
 
 @dataclass(frozen=True, slots=True)

@@ -664,6 +664,9 @@ def register_cli(subparsers: argparse._SubParsersAction[Any]) -> None:
             "@20000:60000~0.05'"
         ),
     )
+    from streamcount.demo.publish import add_publish_options
+
+    add_publish_options(parser)
     parser.set_defaults(func=generate_main)
 
 
@@ -678,6 +681,15 @@ def generate_main(args: argparse.Namespace) -> int:
     except (StreamcountError, ValueError) as exc:
         print(f"streamcount generate: error: {exc}", file=sys.stderr)
         return 2
+    if getattr(args, "publish", None):
+        if args.output != "-":
+            print(
+                "streamcount generate: error: give --output or --publish, not both", file=sys.stderr
+            )
+            return 2
+        from streamcount.demo.publish import publish_main
+
+        return publish_main(args, records)  # paces by itself (--pace)
     if args.pace:
         records = paced(records)
     write = _WRITERS[args.format]

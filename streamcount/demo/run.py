@@ -37,7 +37,7 @@ from streamcount.config.settings import (
 )
 from streamcount.demo.generator import Drift, GeneratorParams, SyntheticFeed
 from streamcount.demo.shop import SHOP_NAME
-from streamcount.intake.records import RecordBatch
+from streamcount.intake.records import RecordBatch, SourceHealth
 
 __all__ = ["BUNDLE", "DEMO_TRANSACTIONS", "PROMOTION", "demo_config", "demo_main"]
 
@@ -145,6 +145,9 @@ class PacedFeedSource:
 
     def drain(self) -> list[RecordBatch]:
         return []
+
+    def health(self) -> SourceHealth:
+        return SourceHealth()
 
     def close(self) -> None:
         self.exhausted = True

@@ -14,12 +14,20 @@ from __future__ import annotations
 
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
 from streamcount.errors import ParseError
 
-__all__ = ["Decoded", "RecordBatch", "Transaction", "line_offsets"]
+__all__ = [
+    "BusStats",
+    "Decoded",
+    "RecordBatch",
+    "SourceHealth",
+    "Transaction",
+    "line_offsets",
+]
 
 
 def line_offsets(lines: Sequence[bytes], start: int) -> np.ndarray:
@@ -207,3 +215,52 @@ class Decoded:
             Transaction(tuple(b), t, None, o)
             for b, t, o in zip(self.baskets, ts, offsets, strict=True)
         ]
+
+
+@dataclass(frozen=True, slots=True)
+class BusStats:
+    """What the source reports for readiness and metrics (totals since it started).
+
+    Attributes
+    ----------
+    connected:
+        Connected to a server with the consumer set up.
+    lag_messages:
+        Messages in the stream for this consumer not yet counted (on the server or fetched).
+    redeliveries:
+        Messages the server delivered more than once.
+    reconnects:
+        Connections made after the first.
+    gap_messages:
+        Messages lost to an accepted retention gap.
+    terminated:
+        Messages terminated because none of their records could be decoded.
+    """
+
+    connected: bool
+    lag_messages: int
+    redeliveries: int
+    reconnects: int
+    gap_messages: int
+    terminated: int
+
+
+@dataclass(frozen=True, slots=True)
+class SourceHealth:
+    """How a source is doing, for readiness, the metrics and /v1/status.
+
+    Attributes
+    ----------
+    connected:
+        The source can deliver records (a bus source is connected with its consumer set up;
+        files and pipes always are).
+    bus:
+        A message-bus source's running totals, ``None`` for other sources.
+    gap:
+        The last retention gap a bus source found (records lost while the service was down),
+        ``None`` when there was none.
+    """
+
+    connected: bool = True
+    bus: BusStats | None = None
+    gap: dict[str, Any] | None = None

@@ -84,6 +84,7 @@ class ServiceApi:
         self._ingest_timeout = ingest_timeout_seconds
         self._stale = stale_seconds
         self._ready = False
+        self._sources_ready = True
         self._last_turn = time.monotonic()
 
     # -- called by the loop -------------------------------------------------------------------
@@ -98,6 +99,11 @@ class ServiceApi:
 
     def set_ready(self, ready: bool) -> None:
         self._ready = ready
+
+    def set_sources_ready(self, ready: bool) -> None:
+        """False while a source cannot deliver (a message bus that is away): /readyz says so
+        while the service itself stays up."""
+        self._sources_ready = ready
 
     def beat(self) -> None:
         """The loop is alive (one turn done)."""
@@ -115,7 +121,7 @@ class ServiceApi:
         return time.monotonic() - self._last_turn < self._stale
 
     def ready(self) -> bool:
-        return self._ready
+        return self._ready and self._sources_ready
 
     def status(self) -> dict[str, Any]:
         return self._view.status

@@ -13,6 +13,7 @@ at the saved positions, so a followed file is counted exactly once.
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import signal
 import threading
@@ -319,6 +320,7 @@ class Service:
         if self._unpublished and now - self._last_publish >= _PUBLISH_SECONDS:
             self._publish()
         self._observe_sinks()
+        self._observe_sources()
         interval = self.config.checkpoint.checkpoint_interval_seconds
         if self.config.checkpoint.checkpoint_dir and now - self._last_checkpoint_mono >= interval:
             self.checkpoint()
@@ -371,6 +373,15 @@ class Service:
     def _alerts_raised(self, records: list[dict[str, Any]]) -> None:
         self.metrics.observe_alerts(Counter(str(r["kind"]) for r in records))
         self._publish(self.pipeline.last_close)
+
+    def _observe_sources(self) -> None:
+        """Readiness follows the sources (a bus that is away), and bus sources' totals go to
+        the metrics."""
+        healths = [(i.source.name, i.source.health()) for i in self.inputs]
+        self.api.set_sources_ready(all(h.connected for _, h in healths))
+        for name, health in healths:
+            if health.bus is not None:
+                self.metrics.observe_source(name, **dataclasses.asdict(health.bus))
 
     def _observe_sinks(self) -> None:
         stats = self.sinks.stats_by_sink()
@@ -432,11 +443,21 @@ class Service:
             "max_event_ts": stats.max_event_ts,
             "rules_window": rules_window,
             "overlay": fresh,
-            "sources": [i.source.name for i in self.inputs],
+            "sources": [self._source_status(i.source) for i in self.inputs],
             "alerts_budget": None if budget is None else budget.as_dict(),
         }
         alerts = tuple(self.pipeline.alert_history)
         return View(window, stats, rules, alerts, status, rules_window, key)
+
+    @staticmethod
+    def _source_status(source: Source) -> dict[str, Any]:
+        health = source.health()
+        out: dict[str, Any] = {"name": source.name, "connected": health.connected}
+        if health.bus is not None:
+            out["lag_messages"] = health.bus.lag_messages
+        if health.gap is not None:
+            out["gap"] = health.gap
+        return out
 
     def _window_key(self) -> tuple[tuple[int, int], ...]:
         """What the window's counts depend on: each live pane and how much of it is counted."""

@@ -4,8 +4,9 @@ Two kinds of metric live here:
 
 * counters and a histogram that the counting loop updates once per *batch* (never per record)
   through :meth:`Metrics.observe_batch`, :meth:`Metrics.observe_alerts`,
-  :meth:`Metrics.observe_checkpoint`, :meth:`Metrics.observe_sinks` and
-  :meth:`Metrics.observe_dead_letters`;
+  :meth:`Metrics.observe_checkpoint`, :meth:`Metrics.observe_sinks`,
+  :meth:`Metrics.observe_dead_letters` and, for a message-bus source,
+  :meth:`Metrics.observe_source`;
 * gauges of engine state produced at scrape time by a custom collector that calls a function
   returning the latest immutable :class:`~streamcount.snapshot.EngineStatistics` (and a
   :class:`ServiceState`), so a scrape never touches the counting loop's mutable state.
@@ -31,7 +32,7 @@ from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
-from prometheus_client import CollectorRegistry, Counter, Histogram
+from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
 from prometheus_client.registry import Collector
 
@@ -130,6 +131,12 @@ METRIC_NAMES: tuple[str, ...] = (
     "streamcount_auth_failures_total",
     "streamcount_http_refused_total",
     "streamcount_http_connections",
+    "streamcount_source_connected",
+    "streamcount_source_lag_messages",
+    "streamcount_source_redeliveries_total",
+    "streamcount_source_reconnects_total",
+    "streamcount_source_gap_messages_total",
+    "streamcount_source_terminated_total",
     *_GAUGES,
     *_RULE_GAUGES,
 )
@@ -300,6 +307,7 @@ class Metrics:
         self._sink_seen: dict[tuple[str, str], int] = {}
         self._dead_letters_seen = 0
         self._server_stats: Callable[[], HttpStats] | None = None
+        self._source_seen: dict[tuple[str, str], int] = {}
 
         self.transactions = Counter(
             "streamcount_transactions",
@@ -348,6 +356,46 @@ class Metrics:
             buckets=_BATCH_BUCKETS,
             registry=registry,
         )
+        self.source_connected = Gauge(
+            "streamcount_source_connected",
+            "1 while a message-bus source is connected with its consumer set up, else 0.",
+            ["source"],
+            registry=registry,
+        )
+        self.source_lag = Gauge(
+            "streamcount_source_lag_messages",
+            "Messages on the bus for this source not yet counted (consumer lag).",
+            ["source"],
+            registry=registry,
+        )
+        self.source_totals = {
+            "redeliveries": Counter(
+                "streamcount_source_redeliveries",
+                "Messages the bus delivered more than once (each dropped after the first).",
+                ["source"],
+                registry=registry,
+            ),
+            "reconnects": Counter(
+                "streamcount_source_reconnects",
+                "Connections to the bus made again after losing one.",
+                ["source"],
+                registry=registry,
+            ),
+            "gap_messages": Counter(
+                "streamcount_source_gap_messages",
+                "Messages removed by the stream's retention before they were read, accepted "
+                "with --accept-gap (never counted).",
+                ["source"],
+                registry=registry,
+            ),
+            "terminated": Counter(
+                "streamcount_source_terminated",
+                "Messages terminated on the bus because none of their records could be "
+                "counted (each record is in the dead-letter file).",
+                ["source"],
+                registry=registry,
+            ),
+        }
         for reason in REJECT_REASONS:
             self.records_rejected.labels(reason=reason)
         for kind in alert_kinds:
@@ -419,3 +467,38 @@ class Metrics:
                 delta = total - before if total >= before else total
                 if delta:
                     counter.labels(sink=sink).inc(delta)
+
+    def observe_source(
+        self,
+        source: str,
+        *,
+        connected: bool,
+        lag_messages: int,
+        redeliveries: int,
+        reconnects: int,
+        gap_messages: int,
+        terminated: int,
+    ) -> None:
+        """Bring a message-bus source's metrics up to its own report (e.g.
+        ``observe_source(name, **dataclasses.asdict(source.bus_stats()))``).
+
+        ``connected`` and ``lag_messages`` are current values; the others are the source's
+        running totals, added as the difference since the previous call (a total that went
+        down, from a rebuilt source, counts in full, as Prometheus treats a counter reset).
+        """
+        self.source_connected.labels(source=source).set(1.0 if connected else 0.0)
+        self.source_lag.labels(source=source).set(float(lag_messages))
+        totals = {
+            "redeliveries": redeliveries,
+            "reconnects": reconnects,
+            "gap_messages": gap_messages,
+            "terminated": terminated,
+        }
+        for kind, total in totals.items():
+            with self._lock:
+                before = self._source_seen.get((kind, source), 0)
+                self._source_seen[(kind, source)] = total
+            delta = total - before if total >= before else total
+            counter = self.source_totals[kind].labels(source=source)
+            if delta:
+                counter.inc(delta)

@@ -6,6 +6,9 @@ source it holds. Sources are built from the config through :data:`SOURCES` (the 
 
 Several sources may run at once (``input.source: [file, http]``); the loop reads them in
 turn, and each keeps its own position in the checkpoint, under its name.
+
+The ``nats`` source (:mod:`streamcount.intake.sources.nats`) is imported only when it is
+built, so the other commands do not pay for loading the NATS client.
 """
 
 from __future__ import annotations
@@ -17,7 +20,7 @@ from typing import Any, Protocol
 
 from streamcount.config.settings import Config
 from streamcount.errors import ConfigError
-from streamcount.intake.records import RecordBatch
+from streamcount.intake.records import RecordBatch, SourceHealth
 from streamcount.intake.sources.file import FollowedFile
 from streamcount.intake.sources.memory import IngestReceipt, IterableSource, QueueSource
 from streamcount.intake.sources.stdin import StdinSource
@@ -70,6 +73,10 @@ class Source(Protocol):
     def acknowledge(self, position: Any) -> None:
         """Everything up to ``position`` is in a written checkpoint (a bus source acks its
         messages here; a file has nothing to do)."""
+        ...
+
+    def health(self) -> SourceHealth:
+        """Whether it can deliver now (a bus may be away), its bus totals and gaps."""
         ...
 
     def drain(self) -> list[RecordBatch]:
@@ -127,6 +134,12 @@ def _file(config: Config, position: Any) -> Source:
     return FollowedFile(cfg.path, **kwargs)
 
 
+def _nats(config: Config, position: Any) -> Source:
+    from streamcount.intake.sources.nats import JetStreamSource
+
+    return JetStreamSource.from_config(config, position)
+
+
 SOURCES: dict[str, SourceSpec] = {
     spec.name: spec
     for spec in (
@@ -148,6 +161,12 @@ SOURCES: dict[str, SourceSpec] = {
             False,
             "POST /v1/transactions: one JSON object or NDJSON lines per request",
             format="jsonl",
+        ),
+        SourceSpec(
+            "nats",
+            _nats,
+            True,
+            "a NATS JetStream stream through a durable pull consumer (input.nats), exactly once",
         ),
     )
 }

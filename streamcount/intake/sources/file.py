@@ -8,7 +8,7 @@ import time
 from typing import IO, Any
 
 from streamcount.errors import ConfigError, InputError
-from streamcount.intake.records import RecordBatch
+from streamcount.intake.records import RecordBatch, SourceHealth
 from streamcount.intake.sources.lines import LineSplitter
 
 __all__ = ["FollowedFile"]
@@ -301,6 +301,10 @@ class FollowedFile:
         if self._identity is None and self._resume is not None:
             offset = self._resume[0]
         return {"path": self.path, "device": device, "inode": inode, "offset": offset}
+
+    def health(self) -> SourceHealth:
+        """Always able to deliver what it has."""
+        return SourceHealth()
 
     def drain(self) -> list[RecordBatch]:
         """Nothing is owed to a sender: what is not read now is read after a restart."""

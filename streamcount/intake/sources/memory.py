@@ -12,7 +12,7 @@ from typing import Any
 import numpy as np
 
 from streamcount.errors import InputError, ParseError
-from streamcount.intake.records import RecordBatch, line_offsets
+from streamcount.intake.records import RecordBatch, SourceHealth, line_offsets
 
 __all__ = ["IngestReceipt", "IterableSource", "QueueSource"]
 
@@ -78,6 +78,9 @@ class IterableSource:
 
     def drain(self) -> list[RecordBatch]:
         return []
+
+    def health(self) -> SourceHealth:
+        return SourceHealth()
 
     def close(self) -> None:
         self._exhausted = True
@@ -182,6 +185,9 @@ class QueueSource:
 
     def acknowledge(self, position: object) -> None:
         return None
+
+    def health(self) -> SourceHealth:
+        return SourceHealth()
 
     def drain(self) -> list[RecordBatch]:
         """Stop accepting bodies and hand out every one still queued."""

@@ -8,7 +8,7 @@ import sys
 import threading
 from typing import IO, Any
 
-from streamcount.intake.records import RecordBatch
+from streamcount.intake.records import RecordBatch, SourceHealth
 from streamcount.intake.sources.lines import LineSplitter
 
 __all__ = ["StdinSource"]
@@ -133,6 +133,10 @@ class StdinSource:
     def position(self) -> Any:
         """``None``: standard input cannot be resumed after a restart."""
         return None
+
+    def health(self) -> SourceHealth:
+        """Always able to deliver what it has."""
+        return SourceHealth()
 
     def drain(self) -> list[RecordBatch]:
         """Nothing is owed to a sender: what is not read now is read after a restart."""
