@@ -139,6 +139,9 @@ class Engine:
         #: called with the old-to-new id map when the vocabulary is compacted (followers of
         #: item ids, e.g. the change tests, renumber theirs)
         self.on_remap: Callable[[np.ndarray], None] | None = None
+        #: compact the vocabulary at the end of an add that closed a pane (see
+        #: compact_vocabulary); off in the processes of a parallel replay, which decide it
+        self.auto_compact = True
         #: names that must keep their ids whatever the panes hold (e.g. catalogue ancestors)
         self.pinned: Callable[[], Iterable[str]] | None = None
 
@@ -297,6 +300,7 @@ class Engine:
         self.next_seq += size
         self.transactions_seen += size
         self.window.close_counted(pane)
+        self.last_closed = pane
         if self.on_pane_closed is not None:
             self.on_pane_closed(self)
         return AddResult(size, (), 1, self.next_seq - 1, {})
@@ -402,7 +406,7 @@ class Engine:
                 closes = self._route_time(flat, lengths, seq, ts_ok, pane_idx[keep])
             else:
                 closes = self._route_count(flat, lengths, seq, ts_ok)
-        if closes:
+        if closes and self.auto_compact:
             self.compact_vocabulary()
         by_reason = Counter(r.reason for r in rejections)
         self.rejected.update(by_reason)
@@ -510,7 +514,9 @@ class Engine:
         if self.on_pane_closed is not None:
             self.on_pane_closed(self)
 
-    def compact_vocabulary(self, *, force: bool = False) -> np.ndarray | None:
+    def compact_vocabulary(
+        self, *, force: bool = False, used: np.ndarray | None = None
+    ) -> np.ndarray | None:
         """Release the item names no held pane uses any more (and that are not pinned), so the
         name table is bounded by the window, not by the feed's history.
 
@@ -521,9 +527,18 @@ class Engine:
         (an increasing map), every pane and buffer is remapped, ``on_remap`` is called with the
         map, and snapshots built before keep the names they were built with. Returns the map,
         or ``None`` when nothing was released. Cost: O(names + tracked entries).
+
+        ``used`` (bool by id) replaces what the held panes use, for a replay whose panes are
+        partly counted in other processes (it knows what one process would hold);
+        ``auto_compact = False`` leaves every compaction to such an explicit call.
         """
         size = len(self.vocabulary)
-        used = self.window.ids_in_use(size)
+        if used is None:
+            used = self.window.ids_in_use(size)
+        else:
+            used = np.array(used, dtype=bool)
+            if used.shape != (size,):
+                raise ValueError(f"used has shape {used.shape}, the vocabulary {size} names")
         if self.pinned is not None:
             for name in self.pinned():
                 item = self.vocabulary.get(name)
