@@ -29,8 +29,9 @@ from typing import Any
 import numpy as np
 
 from streamcount.config.load import config_from_mapping
-from streamcount.config.settings import MAX_TIMESTAMP, EngineConfig
+from streamcount.config.settings import EngineConfig
 from streamcount.engine.counters import Level, LossySummary, bucket_width
+from streamcount.engine.guards import Rejection, size_guards, time_guards
 from streamcount.engine.pane import Pane
 from streamcount.engine.rows import renumber, select_rows, sort_dedupe
 from streamcount.engine.snapshot import EngineStatistics, WindowSnapshot
@@ -43,15 +44,6 @@ STATE_VERSION = 1
 
 #: the vocabulary is compacted only when at least this many names can be released
 COMPACT_MIN_RELEASED = 4096
-
-
-@dataclass(frozen=True, slots=True)
-class Rejection:
-    """A transaction the engine set aside: its position in the call's input, reason, detail."""
-
-    index: int
-    reason: str
-    detail: str
 
 
 @dataclass(frozen=True, slots=True)
@@ -201,7 +193,7 @@ class Engine:
         distinct = lengths_raw.copy()  # exact where it matters: above the cap
         for i in np.flatnonzero(lengths_raw > int(self.config.max_basket_items)).tolist():
             distinct[i] = len(set(baskets[i]))
-        ok = self._size_guards(lengths_raw, distinct, rejections)
+        ok = size_guards(lengths_raw, distinct, int(self.config.max_basket_items), rejections)
         ts, pane_idx = self._time_guards(t, timestamps, ok, rejections)
         return ok, rejections, ts, pane_idx
 
@@ -233,7 +225,7 @@ class Engine:
             return AddResult(0, last_seq=self.next_seq - 1)
         flat, distinct = sort_dedupe(flat, lengths, len(self.vocabulary))
         rejections: list[Rejection] = []
-        ok = self._size_guards(lengths, distinct, rejections)
+        ok = size_guards(lengths, distinct, int(self.config.max_basket_items), rejections)
         ts, pane_idx = self._time_guards(t, timestamps, ok, rejections)
         keep = np.flatnonzero(ok)
         if keep.shape[0] != t:
@@ -305,26 +297,6 @@ class Engine:
             self.on_pane_closed(self)
         return AddResult(size, (), 1, self.next_seq - 1, {})
 
-    def _size_guards(
-        self, lengths_raw: np.ndarray, distinct: np.ndarray, rejections: list[Rejection]
-    ) -> np.ndarray:
-        """Empty baskets and baskets of too many distinct items; the rows left."""
-        ok = lengths_raw > 0
-        for i in np.flatnonzero(~ok).tolist():
-            rejections.append(Rejection(i, "empty", "transaction has no items"))
-        cap = int(self.config.max_basket_items)
-        for i in np.flatnonzero(ok & (distinct > cap)).tolist():
-            ok[i] = False
-            rejections.append(
-                Rejection(
-                    i,
-                    "too_many_items",
-                    f"{int(distinct[i])} distinct items > max_basket_items={cap}; "
-                    "raise max_basket_items to count such baskets",
-                )
-            )
-        return ok
-
     def _time_guards(
         self,
         t: int,
@@ -332,56 +304,17 @@ class Engine:
         ok: np.ndarray,
         rejections: list[Rejection],
     ) -> tuple[np.ndarray, np.ndarray | None]:
-        """Event times as floats (NaN: none) and, for a time-based window, each row's pane;
-        clears ``ok`` for rows without a usable time or whose pane already closed."""
-        ts = np.full(t, np.nan)
-        if timestamps is not None:
-            ts = np.array(timestamps, dtype=np.float64)  # None becomes NaN
-        if not self.time_based:
-            return ts, None
-        missing = ok & np.isnan(ts)
-        for i in np.flatnonzero(missing).tolist():
-            rejections.append(
-                Rejection(i, "missing_field", "a time-based window needs a timestamp")
-            )
-        ok &= ~missing
-        with np.errstate(invalid="ignore"):
-            odd = ok & ~(np.abs(ts) < MAX_TIMESTAMP)
-        for i in np.flatnonzero(odd).tolist():
-            rejections.append(
-                Rejection(
-                    i,
-                    "wrong_type",
-                    f"event time {float(ts[i])!r} is not epoch seconds below "
-                    f"{MAX_TIMESTAMP:.0e} (milliseconds?)",
-                )
-            )
-        ok &= ~odd
-        pane_idx = np.zeros(t, dtype=np.int64)
-        pane_idx[ok] = np.floor(ts[ok] / self.pane_seconds).astype(np.int64)
-        # watermark seen by each transaction = running max of earlier event times
-        prev = -np.inf if self.max_event_ts is None else self.max_event_ts
-        filled = np.where(ok, ts, -np.inf)
-        running = np.maximum.accumulate(np.concatenate(([prev], filled)))[:-1]
-        closed_limit = (
-            np.floor((running - self.config.allowed_lateness_seconds) / self.pane_seconds) - 1
+        return time_guards(
+            t,
+            timestamps,
+            ok,
+            rejections,
+            pane_seconds=self.pane_seconds if self.time_based else None,
+            watermark=self.max_event_ts,
+            lateness=self.config.allowed_lateness_seconds,
+            closed_through=self.window.closed_through,
+            expired_through=self.window.newest_index - self.window_panes,
         )
-        late = ok & (
-            (pane_idx <= np.maximum(closed_limit, self.window.closed_through))
-            | (pane_idx <= self.window.newest_index - self.window_panes)
-        )
-        for i in np.flatnonzero(late).tolist():
-            rejections.append(
-                Rejection(
-                    i,
-                    "too_late",
-                    f"event time {float(ts[i])!r} falls in pane {int(pane_idx[i])}, "
-                    "already closed (allowed_lateness_seconds="
-                    f"{self.config.allowed_lateness_seconds})",
-                )
-            )
-        ok &= ~late
-        return ts, pane_idx
 
     def _admit(
         self,
