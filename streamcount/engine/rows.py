@@ -8,21 +8,42 @@ from collections.abc import Sequence
 import numpy as np
 
 from streamcount.engine.counters import Level
+from streamcount.engine.keys import fits_int64, pack
 
 __all__ = ["renumber", "select_rows", "sort_dedupe"]
 
 
 def renumber(levels: Sequence[Level], ids: np.ndarray) -> list[Level]:
     """``levels`` with every item id ``i`` replaced by ``ids[i]``, rows re-sorted (ascending
-    ids within a row, rows in lexicographic order)."""
+    ids within a row, rows in lexicographic order); nothing is sorted when ``ids`` is
+    increasing (the order is kept).
+
+    >>> lv = Level(np.array([[0, 1], [0, 2]], dtype=np.int32), np.array([5, 6]), np.array([0, 0]))
+    >>> out = renumber([Level.empty(1), lv], np.array([9, 4, 2]))[1]
+    >>> out.items.tolist(), out.f.tolist()
+    ([[2, 9], [4, 9]], [6, 5])
+    """
+    ids = np.asarray(ids, dtype=np.int64)
+    increasing = bool((np.diff(ids) > 0).all())
     out = []
     for k, level in enumerate(levels, start=1):
         rows = np.asarray(level.items).reshape(-1, k)
-        rows = np.sort(ids[rows], axis=1) if rows.size else rows.astype(np.int32)
-        order = np.lexsort(rows.T[::-1]) if rows.shape[0] else np.zeros(0, dtype=np.int64)
         f = np.asarray(level.f, dtype=np.int64)
         delta = np.asarray(level.delta, dtype=np.int64)
-        out.append(Level(rows[order].astype(np.int32), f[order], delta[order]))
+        if not rows.shape[0]:
+            out.append(Level.empty(k))
+            continue
+        rows = ids[rows]
+        if not increasing:
+            rows.sort(axis=1)
+            radix = int(rows.max()) + 1
+            order = (
+                np.argsort(pack(rows, radix), kind="stable")
+                if fits_int64(radix, k)
+                else np.lexsort(rows.T[::-1])
+            )
+            rows, f, delta = rows[order], f[order], delta[order]
+        out.append(Level(rows.astype(np.int32), f, delta))
     return out
 
 
