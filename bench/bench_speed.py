@@ -154,10 +154,7 @@ def _replay_once(path: Path, cfg: Any, report: list[str], workers: int) -> tuple
     from streamcount.replay import replay_file
 
     start = time.perf_counter()
-    if workers == 1:
-        result = replay_file(str(path), cfg, report=report, progress=None)
-    else:
-        result = replay_file(str(path), cfg, report=report, progress=None, workers=workers)
+    result = replay_file(str(path), cfg, report=report, progress=None, workers=workers)
     return time.perf_counter() - start, result
 
 
@@ -210,7 +207,8 @@ def run_child(case: dict[str, Any]) -> dict[str, Any]:
         n = result.report["input"]["transactions"]
         out["tracked"] = list(result.engine.statistics().tracked_itemsets)
         out["report_items"] = {p: len(result.report.get(p, [])) for p in report}
-        out["worker_peak_rss_mb"] = getattr(result, "worker_peak_rss_mb", None)
+        out["worker_peak_rss_mb"] = result.stats.get("worker_peak_rss_mb")
+        out["parts"] = result.stats.get("parts")
     elif kind == "naive":
         times, (n,) = _timed(lambda: _naive_once(path, k, int(case["size"])), repeat)
     else:

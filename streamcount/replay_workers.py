@@ -11,7 +11,7 @@ How (a plain file of basket lines or JSON lines, count-based window)::
     parent: prefix sums: the sequence number each part starts at   -> tell the worker
     worker: count the whole panes inside its part with an engine of the same settings
             (sequence numbers from the part's first pane boundary)  -> each pane by item
-            names (streamcount.engine.exchange), the transactions before its first and after
+            names (streamcount.engine.wire), the transactions before its first and after
             its last pane boundary as they are, and what its open pane held at each batch end
     parent: part by part, batch by batch, in order: intern the batch's new names, add the
             loose transactions (Engine.add_ids), hand over the whole panes
@@ -45,6 +45,7 @@ import pickle
 import queue
 import resource
 import threading
+import time
 import traceback
 from collections import Counter
 from collections.abc import Callable
@@ -55,9 +56,9 @@ import numpy as np
 
 from streamcount.config.settings import Config
 from streamcount.engine.engine import Engine
-from streamcount.engine.exchange import PaneMeta, decode_pane, encode_pane
 from streamcount.engine.rows import sort_dedupe
 from streamcount.engine.vocab import ItemVocabulary
+from streamcount.engine.wire import PaneMeta, decode_pane, encode_pane
 from streamcount.intake import bulk
 from streamcount.intake.bulk import iter_batches, part_starts
 from streamcount.intake.formats import FORMATS, make_decoder
@@ -274,12 +275,16 @@ def _worker(path: str, config: Config, tasks: Any, results: Any, name: str) -> N
     try:
         while (task := tasks.get()) is not None:
             kind, r = task[0], task[1]
+            started = time.process_time()
             if kind == "decode":
                 part, decoded, engine_side = _decode_part(path, config, *task[2:5])
                 held[r] = part
-                results.put(("decoded", r, part.batch_sizes, decoded, engine_side))
+                cpu = time.process_time() - started
+                results.put(("decoded", r, part.batch_sizes, decoded, engine_side, cpu))
             else:
-                results.put(("counted", r, _count_part(held.pop(r), config, task[2], name)))
+                done = _count_part(held.pop(r), config, task[2], name)
+                done["cpu"] = time.process_time() - started
+                results.put(("counted", r, done))
     except BaseException as exc:  # report everything; the parent decides
         try:
             pickle.dumps(exc)
@@ -305,6 +310,8 @@ class _Assembly:
     next_seq: int = 1
     next_assembled: int = 0
     rss: float = 0.0
+    cpu_decode: float = 0.0
+    cpu_count: float = 0.0
 
 
 def _context() -> Any:
@@ -364,6 +371,7 @@ def run_parts(
                 err.add_note(f"in a replay worker:\n{msg[3]}")
                 raise err
             if kind == "decoded":
+                state.cpu_decode += msg[5]
                 state.batch_sizes[r] = msg[2]
                 pipeline.rejected_counts.update(msg[3])
                 pipeline.rejected_counts.update(msg[4])
@@ -377,6 +385,7 @@ def run_parts(
             else:
                 state.counted[r] = msg[2]
                 state.rss = max(state.rss, float(msg[2]["rss"]))
+                state.cpu_count += msg[2]["cpu"]
                 send_decode(r % workers)
                 while state.next_assembled in state.counted:
                     q = state.next_assembled
@@ -394,7 +403,12 @@ def run_parts(
                 p.terminate()
                 p.join(timeout=5)
         engine.auto_compact = True
-    return {"workers": workers, "parts": n_parts, "worker_peak_rss_mb": state.rss}
+    return {
+        "workers": workers,
+        "parts": n_parts,
+        "worker_peak_rss_mb": state.rss,
+        "worker_cpu_seconds": {"decode": state.cpu_decode, "count": state.cpu_count},
+    }
 
 
 def _next_message(results: Any, procs: list[Any]) -> tuple[Any, ...]:
@@ -457,8 +471,19 @@ def _add_loose(
     local = flat[a:b]
     table = np.full(len(names), -1, dtype=np.int64)
     used = np.unique(local)
-    table[used] = [engine.vocabulary.get(names[k]) for k in used.tolist()]
+    table[used] = _interned(engine, [names[k] for k in used.tolist()])
     return engine.add_ids(table[local], lengths[i:j], ts[i:j]).panes_closed
+
+
+def _interned(engine: Engine, names: list[str]) -> np.ndarray:
+    """The engine's ids of names it has interned (all of them must be)."""
+    ids = np.empty(len(names), dtype=np.int64)
+    for i, name in enumerate(names):
+        item = engine.vocabulary.get(name)
+        if item is None:
+            raise AssertionError(f"replay workers: {name!r} was not interned before use")
+        ids[i] = item
+    return ids
 
 
 def _compact_as_one_process(
@@ -482,8 +507,5 @@ def _compact_as_one_process(
         for idx, pane in window.panes.items():
             if idx >= oldest:
                 pane.ids_in_use(used)
-        for k in local_ids.tolist():
-            item = vocab.get(names[k])
-            assert item is not None, "a name the open pane holds is interned"
-            used[item] = True
+        used[_interned(engine, [names[k] for k in local_ids.tolist()])] = True
     engine.compact_vocabulary(used=used)

@@ -78,7 +78,8 @@ class Membership:
         (size 2 only)."""
         key = a * self.m + b
         if self.dense is not None:
-            return self.dense[key]
+            hit: np.ndarray = self.dense[key]
+            return hit
         _, found = lookup(self.keys, key.ravel())
         return found.reshape(key.shape)
 
@@ -165,7 +166,8 @@ class BatchCounts:
         if not keys.shape[0]:
             return np.zeros(0, dtype=np.int64)
         if self.dense is not None:
-            return self.dense[keys].astype(np.int64)
+            counts: np.ndarray = self.dense[keys].astype(np.int64)
+            return counts
         assert self.keys is not None and self.counts is not None
         if not self.keys.shape[0]:
             return np.zeros(keys.shape[0], dtype=np.int64)
