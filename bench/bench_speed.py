@@ -143,6 +143,8 @@ def _count_once(vocab: Any, chunks: list[tuple[Any, Any]], cfg: Any) -> tuple[fl
     start = time.perf_counter()
     engine = Engine(cfg.engine)
     engine.vocabulary = vocab
+    # the ids were interned beforehand: the vocabulary stays as it is (no compaction)
+    engine.auto_compact = False
     for flat, lengths in chunks:
         engine.add_ids(flat, lengths)
     engine.flush()
