@@ -76,7 +76,10 @@ class Membership:
     def pairs(self, a: np.ndarray, b: np.ndarray) -> np.ndarray:
         """Whether each pair ``(a[i], b[i])`` (``a < b``; arrays of any one shape) is tracked
         (size 2 only)."""
-        key = a * self.m + b
+        return self.tracked(a * self.m + b)
+
+    def tracked(self, key: np.ndarray) -> np.ndarray:
+        """Whether each pair key ``a * m + b`` (any shape) is tracked (size 2 only)."""
         if self.dense is not None:
             hit: np.ndarray = self.dense[key]
             return hit
@@ -311,13 +314,11 @@ def _triple_chunks(
         for lo in range(0, group.shape[0], step):
             g = group[lo : lo + step]
             mat = wide[starts[g][:, None] + np.arange(length)]
-            pair_ok = membership.pairs(mat[:, pairs[:, 0]], mat[:, pairs[:, 1]])
+            pair_key = mat[:, pairs[:, 0]] * radix + mat[:, pairs[:, 1]]
+            pair_ok = membership.tracked(pair_key)
             valid = pair_ok[:, ab] & pair_ok[:, ac] & pair_ok[:, bc]
-            row, combo = np.nonzero(valid)
-            if row.size:
-                sel = table[combo]
-                a, b, c = mat[row, sel[:, 0]], mat[row, sel[:, 1]], mat[row, sel[:, 2]]
-                yield (a * radix + b) * radix + c
+            if valid.any():  # key of (a, b, c) = key of (a, b) * radix + c
+                yield (pair_key[:, ab] * radix + mat[:, table[:, 2]])[valid]
     long = np.flatnonzero(lengths > _SHORT_BASKET)
     if long.shape[0]:
         yield from _long_triple_chunks(wide, starts[long], lengths[long], radix, membership)
