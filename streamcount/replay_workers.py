@@ -180,8 +180,7 @@ def _decode_part(
             continue
         kept = [decoded.baskets[i] for i in keep.tolist()]
         raw, lengths = vocab.encode_baskets(kept)
-        first = np.unique(raw, return_index=True)[1]  # first position of each id in the batch
-        seen.append(raw[np.sort(first)])
+        seen.append(_first_appearance(raw, len(vocab)))
         flat, lengths = sort_dedupe(raw, lengths, len(vocab))
         ts = np.full(keep.shape[0], np.nan)
         if decoded.ts is not None:
@@ -199,6 +198,24 @@ def _decode_part(
         seen,
     )
     return part, decoded_reasons, engine_reasons
+
+
+def _first_appearance(ids: np.ndarray, size: int) -> np.ndarray:
+    """The distinct ``ids`` (below ``size``) in order of first appearance: a stable radix
+    sort by 16-bit digits, the first of each run, those positions in order.
+
+    >>> _first_appearance(np.array([5, 2, 5, 7, 2, 0]), 8).tolist()
+    [5, 2, 7, 0]
+    """
+    if not ids.shape[0]:
+        return ids
+    perm = np.arange(ids.shape[0])
+    keys = ids
+    for shift in range(0, max(int(size - 1).bit_length(), 1), 16):
+        step = np.argsort(((keys >> shift) & 0xFFFF).astype(np.uint16), kind="stable")
+        perm, keys = perm[step], keys[step]
+    runs = np.flatnonzero(np.concatenate(([True], keys[1:] != keys[:-1])))
+    return ids[np.sort(perm[runs])]
 
 
 def _rows(part: _Part, lo: int, hi: int, ends: np.ndarray) -> tuple[np.ndarray, ...]:

@@ -7,6 +7,7 @@ from collections.abc import Sequence
 
 import numpy as np
 
+from streamcount.engine.batchcount import radix_sorted
 from streamcount.engine.counters import Level
 from streamcount.engine.keys import fits_int64, pack
 
@@ -57,7 +58,13 @@ def select_rows(
 def sort_dedupe(
     flat: np.ndarray, lengths: np.ndarray, vocab_size: int
 ) -> tuple[np.ndarray, np.ndarray]:
-    """Sort the ids of each transaction and drop repeats, all transactions at once."""
+    """Sort the ids of each transaction and drop repeats, all transactions at once (one radix
+    sort of ``transaction * radix + id`` keys).
+
+    >>> flat, lengths = sort_dedupe(np.array([3, 1, 3, 2, 0]), np.array([3, 2]), 4)
+    >>> flat.tolist(), lengths.tolist()
+    ([1, 3, 0, 2], [2, 2])
+    """
     t = lengths.shape[0]
     if flat.size == 0:
         return flat, lengths
@@ -68,7 +75,7 @@ def sort_dedupe(
     step = np.diff(combined)
     if (step > 0).all():
         return flat, lengths
-    combined.sort()
+    combined = radix_sorted(combined, t * radix)
     keep = np.concatenate(([True], combined[1:] != combined[:-1]))
     combined = combined[keep]
     new_txn = combined // radix
