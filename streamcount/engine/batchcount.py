@@ -111,21 +111,55 @@ def _drop_one(k: int) -> tuple[list[int], ...]:
 # ---- counts of one batch ----------------------------------------------------------------------
 
 
+class _Triangle:
+    """Pairs ``a < b`` of ids below ``m`` numbered row by row in the upper triangle:
+    ``start[a] + (b - a - 1)`` with ``start[a] = a * (2m - a - 1) / 2``. Half the cells of
+    ``a * m + b``, in the same order.
+
+    >>> t = _Triangle(4)
+    >>> t.of_keys(np.array([1, 2, 3, 6, 7, 11])).tolist()
+    [0, 1, 2, 3, 4, 5]
+    >>> t.to_keys(np.array([0, 4, 5])).tolist()
+    [1, 7, 11]
+    """
+
+    __slots__ = ("cells", "m", "start")
+
+    def __init__(self, m: int) -> None:
+        a = np.arange(max(m, 1), dtype=np.int64)
+        self.m = m
+        self.start = a * (2 * m - a - 1) // 2
+        self.cells = m * (m - 1) // 2
+
+    def of_keys(self, keys: np.ndarray) -> np.ndarray:
+        a, b = np.divmod(keys, self.m)
+        index: np.ndarray = self.start[a] + (b - a - 1)
+        return index
+
+    def to_keys(self, index: np.ndarray) -> np.ndarray:
+        a = np.searchsorted(self.start, index, side="right") - 1
+        keys: np.ndarray = a * self.m + (index - self.start[a] + a + 1)
+        return keys
+
+
 class BatchCounts:
     """How often each k-itemset occurs in one batch: a dense array over the local key space
     (``dense[key]``), or sorted distinct keys with their counts."""
 
-    __slots__ = ("counts", "dense", "keys")
+    __slots__ = ("counts", "dense", "keys", "triangle")
 
     def __init__(
         self,
         keys: np.ndarray | None = None,
         counts: np.ndarray | None = None,
         dense: np.ndarray | None = None,
+        triangle: _Triangle | None = None,
     ) -> None:
         self.keys = keys
         self.counts = counts
         self.dense = dense
+        #: when set, ``dense`` is indexed by pair position in the upper triangle (pairs only)
+        self.triangle = triangle
 
     @classmethod
     def of_chunks(cls, chunks: Iterator[np.ndarray], cells: int | None, total: int) -> BatchCounts:
@@ -169,7 +203,8 @@ class BatchCounts:
         if not keys.shape[0]:
             return np.zeros(0, dtype=np.int64)
         if self.dense is not None:
-            counts: np.ndarray = self.dense[keys].astype(np.int64)
+            cells = keys if self.triangle is None else self.triangle.of_keys(keys)
+            counts: np.ndarray = self.dense[cells].astype(np.int64)
             return counts
         assert self.keys is not None and self.counts is not None
         if not self.keys.shape[0]:
@@ -181,11 +216,12 @@ class BatchCounts:
         """Sorted keys counted at least ``min_count`` times that are not in the sorted
         ``tracked``, with their counts (consumes a dense histogram)."""
         if self.dense is not None:
-            dense = self.dense
+            dense, tri = self.dense, self.triangle
             if tracked.shape[0]:
-                dense[tracked] = 0
-            keys = np.flatnonzero(dense >= min_count)
-            return keys, dense[keys].astype(np.int64)
+                dense[tracked if tri is None else tri.of_keys(tracked)] = 0
+            cells = np.flatnonzero(dense >= min_count)
+            keys = cells if tri is None else tri.to_keys(cells)
+            return keys, dense[cells].astype(np.int64)
         assert self.keys is not None and self.counts is not None
         sel = self.counts >= min_count
         if tracked.shape[0] and self.keys.shape[0]:
@@ -279,17 +315,21 @@ def _spans(weights: np.ndarray, limit: int) -> list[tuple[int, int]]:
     return out
 
 
-def _pair_chunks(items: np.ndarray, later: np.ndarray, radix: int) -> Iterator[np.ndarray]:
-    """Keys ``a * radix + b`` of every pair of positions in one transaction, in chunks: the
-    item at position ``p`` pairs with the ``later[p]`` items after it."""
+def _pair_chunks(
+    items: np.ndarray, later: np.ndarray, radix: int, triangle: _Triangle | None = None
+) -> Iterator[np.ndarray]:
+    """Keys ``a * radix + b`` (or triangle positions) of every pair of positions in one
+    transaction, in chunks: the item at position ``p`` pairs with the ``later[p]`` items
+    after it."""
     wide = items.astype(np.int64)
+    first = wide * radix if triangle is None else triangle.start[wide] - wide - 1
     for lo, hi in _spans(later, CHUNK):
         lat = later[lo:hi]
         first_slot = np.cumsum(lat) - lat
         total = int(first_slot[-1] + lat[-1])
         starts = np.arange(lo + 1, hi + 1, dtype=np.int64)
         q = np.arange(total, dtype=np.int64) + np.repeat(starts - first_slot, lat)
-        yield np.repeat(wide[lo:hi] * radix, lat) + wide[q]
+        yield np.repeat(first[lo:hi], lat) + wide[q]
 
 
 def _triple_chunks(
@@ -415,7 +455,17 @@ def count_batch(
     ends = np.cumsum(lengths)
     later = ends[txn] - np.arange(items.shape[0], dtype=np.int64) - 1
     if k == 2:
-        return BatchCounts.of_chunks(_pair_chunks(items, later, radix), cells, int(later.sum()))
+        total = int(later.sum())
+        tri = _Triangle(radix)
+        if tri.cells <= _BINCOUNT_CELLS and tri.cells <= _DENSE_PER_KEY * max(total, 1):
+            dense: np.ndarray | None = None
+            for keys in _pair_chunks(items, later, radix, tri):
+                part = np.bincount(keys, minlength=tri.cells)
+                dense = part if dense is None else dense + part
+            if dense is None:
+                dense = np.zeros(tri.cells, dtype=np.int64)
+            return BatchCounts(dense=dense, triangle=tri)
+        return BatchCounts.of_chunks(_pair_chunks(items, later, radix), cells, total)
     if k == 3 and cells is not None:
         # the pairs of positions stand in for the number of triples in the choice of counting
         # method (a histogram of m**3 cells only pays for tiny m)
