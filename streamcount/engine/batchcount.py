@@ -367,25 +367,27 @@ def _triple_chunks(
 def _long_triple_chunks(
     wide: np.ndarray, starts: np.ndarray, lengths: np.ndarray, radix: int, membership: Membership
 ) -> Iterator[np.ndarray]:
-    """Triples of long baskets by bitsets: per basket the ``L x L`` matrix of tracked pairs
-    (upper triangle), each row packed into bits; a tracked pair ``(p, q)`` completes to a
-    triple with every ``r`` set in ``row[p] & row[q]``. Only passing triples are ever
-    unpacked. Baskets go in groups of similar length (at most ``CHUNK / 2`` matrix cells)."""
+    """Triples of long baskets by bitsets: per basket the tracked pairs of its upper triangle
+    as an ``L x L`` matrix, each row packed into bits; a tracked pair ``(p, q)`` completes to
+    a triple with every ``r`` set in ``row[p] & row[q]``. Only passing triples are ever
+    unpacked. Baskets go in groups of similar length (within a quarter of each other, at
+    most ``CHUNK / 2`` matrix cells), padded to the group's longest."""
     order = np.argsort(lengths, kind="stable")
     starts, lengths = starts[order], lengths[order]
-    cells = lengths.astype(np.int64) ** 2
-    for lo, hi in _spans(cells, CHUNK // 2):
+    for lo, hi in _length_groups(lengths, CHUNK // 2):
         width = int(lengths[hi - 1])  # the longest of the group
-        idx = np.arange(width)
-        present = idx[None, :] < lengths[lo:hi, None]  # (g, width)
-        mat = wide[
-            np.minimum(starts[lo:hi, None] + idx, starts[lo:hi, None] + lengths[lo:hi, None] - 1)
-        ]
-        ok = membership.pairs(mat[:, :, None], mat[:, None, :])
-        ok &= np.triu(np.ones((width, width), dtype=bool), 1)[None, :, :]
-        ok &= present[:, :, None] & present[:, None, :]
+        g = hi - lo
+        first = starts[lo:hi, None]
+        mat = wide[first + np.minimum(np.arange(width)[None, :], lengths[lo:hi, None] - 1)]
+        pi, pj = _upper_pairs(width)
+        # pair (pi, pj) of a basket is real when pj < its length (then pi is too)
+        tracked = membership.tracked(mat[:, pi] * radix + mat[:, pj])
+        tracked &= pj[None, :] < lengths[lo:hi, None]
+        ok = np.zeros((g, width, width), dtype=bool)
+        ok[:, pi, pj] = tracked
         bits = np.packbits(ok, axis=2)
-        j, p, q = np.nonzero(ok)
+        j, t = np.nonzero(tracked)
+        p, q = pi[t], pj[t]
         step = max(1, CHUNK // width)
         for lo2 in range(0, j.shape[0], step):
             jj, pp, qq = j[lo2 : lo2 + step], p[lo2 : lo2 + step], q[lo2 : lo2 + step]
@@ -397,6 +399,28 @@ def _long_triple_chunks(
             pair, r = np.nonzero(np.unpackbits(both, axis=1, count=width))
             jp = jj[pair]
             yield (mat[jp, pp[pair]] * radix + mat[jp, qq[pair]]) * radix + mat[jp, r]
+
+
+def _length_groups(lengths: np.ndarray, budget: int) -> list[tuple[int, int]]:
+    """Ranges of ascending ``lengths`` whose longest is within a quarter of the shortest and
+    whose ``count x longest**2`` stays within ``budget`` (one basket at least)."""
+    out = []
+    lo, n = 0, lengths.shape[0]
+    while lo < n:
+        top = int(np.searchsorted(lengths, int(lengths[lo]) * 5 // 4, side="right"))
+        hi = lo + 1
+        while hi < top and (hi + 1 - lo) * int(lengths[hi]) ** 2 <= budget:
+            hi += 1
+        out.append((lo, hi))
+        lo = hi
+    return out
+
+
+@lru_cache(maxsize=256)
+def _upper_pairs(width: int) -> tuple[np.ndarray, np.ndarray]:
+    """Positions ``(i, j)``, ``i < j < width``, row by row."""
+    i, j = np.triu_indices(width, 1)
+    return i.astype(np.int64), j.astype(np.int64)
 
 
 @lru_cache(maxsize=64)
