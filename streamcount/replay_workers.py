@@ -25,11 +25,11 @@ by batch in order of first appearance, and the vocabulary is compacted at the sa
 with the same names in use (the workers report what their open pane held there), so item ids,
 and with them every tie order, are the same.
 
-What stays in one process (and why): standard input and compressed files (they cannot be
-split by offset: decoding them is not faster in a second process than the counting it would
-feed, so no decode-ahead pipeline), CSV orders (an order's rows span lines, and open orders
-carry state from part to part) and time-based windows (panes follow event times and the
-lateness rule follows the watermark of everything before). :func:`plan` says which applies.
+What stays in one process (and why): standard input, pipes and compressed files (they cannot
+be split by offset; there is no decode-ahead pipeline for them in this version), CSV orders
+(an order's rows span lines, and open orders carry state from part to part) and time-based
+windows (panes follow event times and the lateness rule follows the watermark of everything
+before). :func:`plan` says which applies.
 
 Memory: a worker holds the decoded ids of at most two parts (a part is about a sixth of the
 file per worker, at most ``MAX_PART_BYTES``); the parent holds the finished parts not yet
@@ -44,6 +44,7 @@ import os
 import pickle
 import queue
 import resource
+import stat
 import threading
 import time
 import traceback
@@ -118,12 +119,14 @@ def plan(path: str, config: Config, workers: int) -> Plan:
     if spec is None or not spec.stateless:
         return one(f"{config.input.format} records span lines (open orders carry state)")
     try:
+        if not stat.S_ISREG(os.stat(path).st_mode):
+            return one("a pipe or device cannot be split by offset")
         with open(path, "rb") as fh:
             if fh.read(2) == b"\x1f\x8b":
                 return one("a compressed file cannot be split by offset")
             size = os.fstat(fh.fileno()).st_size
     except OSError:
-        return one("the input is not a readable regular file")  # replay_file names the error
+        return one("the input cannot be opened")  # replay_file reports the error itself
     parts = workers * _PARTS_PER_WORKER
     parts = max(parts, -(-size // MAX_PART_BYTES))
     block = bulk.BLOCK_BYTES  # read at call time, as decode_file reads it
