@@ -181,13 +181,14 @@ def _decode_part(
         engine_reasons.update(r.reason for r in rejections)
         if not keep.shape[0]:
             continue
-        kept = [decoded.baskets[i] for i in keep.tolist()]
+        baskets = decoded.baskets
+        kept = baskets if keep.shape[0] == len(baskets) else [baskets[i] for i in keep.tolist()]
         raw, lengths = vocab.encode_baskets(kept)
         seen.append(_first_appearance(raw, len(vocab)))
         flat, lengths = sort_dedupe(raw, lengths, len(vocab))
         ts = np.full(keep.shape[0], np.nan)
         if decoded.ts is not None:
-            ts = np.array([decoded.ts[i] for i in keep.tolist()], dtype=np.float64)
+            ts = np.array(decoded.ts, dtype=np.float64)[keep]
         flats.append(flat)
         lengths_all.append(lengths)
         ts_all.append(ts)
