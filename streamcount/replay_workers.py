@@ -38,6 +38,8 @@ assembled.
 
 from __future__ import annotations
 
+import ctypes
+import ctypes.util
 import gc
 import multiprocessing
 import os
@@ -287,10 +289,26 @@ def _count_part(part: _Part, config: Config, first_seq: int, name: str) -> dict[
     }
 
 
+def _keep_freed_memory() -> None:
+    """glibc only: keep freed blocks for reuse rather than handing them back to the system
+    and faulting fresh pages in for the next array (measured on the benchmark: a worker's
+    page faults fall by half and its system time with them). Elsewhere nothing changes."""
+    try:
+        libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6")
+        mallopt = libc.mallopt
+    except (OSError, AttributeError):
+        return
+    trim_threshold, top_pad, mmap_threshold = -1, -2, -3  # glibc's M_* parameter numbers
+    mallopt(mmap_threshold, 64 << 20)
+    mallopt(trim_threshold, 128 << 20)
+    mallopt(top_pad, 16 << 20)
+
+
 def _worker(path: str, config: Config, tasks: Any, results: Any, name: str) -> None:
     """A worker's loop: ``("decode", r, start, stop)`` and ``("count", r, first_seq)`` tasks
     in order, ``None`` to stop; every answer goes to ``results`` tagged with ``r``."""
     gc.disable()  # short-lived acyclic lists, as in one process
+    _keep_freed_memory()
     held: dict[int, _Part] = {}
     r = -1
     try:
