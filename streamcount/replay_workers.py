@@ -31,7 +31,7 @@ be split by offset; there is no decode-ahead pipeline for them in this version),
 windows (panes follow event times and the lateness rule follows the watermark of everything
 before). :func:`plan` says which applies.
 
-Memory: a worker holds the decoded ids of at most two parts (a part is about a sixth of the
+Memory: a worker holds the decoded ids of at most two parts (a part is about a quarter of the
 file per worker, at most ``MAX_PART_BYTES``); the parent holds the finished parts not yet
 assembled.
 """
@@ -73,8 +73,9 @@ __all__ = ["MAX_PART_BYTES", "MAX_WORKERS", "Plan", "default_workers", "plan", "
 MAX_WORKERS = 8
 #: largest part a worker decodes at once (its decoded ids are held until counted)
 MAX_PART_BYTES = 32 << 20
-#: parts per worker when the file is small enough (more parts: the parent starts earlier)
-_PARTS_PER_WORKER = 6
+#: parts per worker when the file is small enough (more parts: the parent starts earlier;
+#: fewer: fewer panes cut by a part boundary, which the parent counts itself)
+_PARTS_PER_WORKER = 4
 #: parts a worker has in hand at once (decoded and waiting, or queued)
 _AHEAD = 2
 
