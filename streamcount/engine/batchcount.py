@@ -177,26 +177,26 @@ class BatchCounts:
                     part = np.bincount(keys, minlength=cells)
                     dense = part if dense is None else dense + part
             return cls(dense=dense if dense is not None else np.zeros(cells, dtype=np.int64))
-        # small chunks (one per basket length) are pooled up to CHUNK keys before a sort
-        parts: list[tuple[np.ndarray, np.ndarray]] = []
+        # small chunks (one per basket length) are pooled up to CHUNK keys before a sort; each
+        # sorted pool is merged into the running total at once, so memory follows the number
+        # of distinct keys, not the number of chunks
+        total_keys = np.zeros(0, dtype=np.int64)
+        total_counts = np.zeros(0, dtype=np.int64)
         pool: list[np.ndarray] = []
         pooled = 0
         for keys in chunks:
             pool.append(keys)
             pooled += keys.shape[0]
             if pooled >= CHUNK:
-                parts.append(_sorted_counts(_concat(pool), cells))
+                total_keys, total_counts = _add_counts(
+                    total_keys, total_counts, *_sorted_counts(_concat(pool), cells)
+                )
                 pool, pooled = [], 0
-        if pooled or not parts:
-            parts.append(_sorted_counts(_concat(pool), cells))
-        if len(parts) == 1:
-            return cls(*parts[0])
-        keys = np.concatenate([p[0] for p in parts])
-        counts = np.concatenate([p[1] for p in parts])
-        order = np.argsort(keys, kind="stable")
-        keys, counts = keys[order], counts[order]
-        starts = np.flatnonzero(np.concatenate(([True], keys[1:] != keys[:-1])))
-        return cls(keys[starts], np.add.reduceat(counts, starts))
+        if pooled or not total_keys.shape[0]:
+            total_keys, total_counts = _add_counts(
+                total_keys, total_counts, *_sorted_counts(_concat(pool), cells)
+            )
+        return cls(total_keys, total_counts)
 
     def take(self, keys: np.ndarray) -> np.ndarray:
         """The batch count of each of ``keys`` (0 for one absent from the batch)."""
@@ -228,6 +228,27 @@ class BatchCounts:
             _, found = lookup(tracked, self.keys)
             sel &= ~found
         return self.keys[sel], self.counts[sel]
+
+
+def _add_counts(
+    keys_a: np.ndarray, counts_a: np.ndarray, keys_b: np.ndarray, counts_b: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """The sum of two sorted runs of distinct keys with counts (a key in both adds up).
+
+    >>> [x.tolist() for x in _add_counts(np.array([1, 4]), np.array([1, 1]),
+    ...                                   np.array([2, 4]), np.array([5, 5]))]
+    [[1, 2, 4], [1, 5, 6]]
+    """
+    if not keys_a.shape[0]:
+        return keys_b, counts_b
+    if not keys_b.shape[0]:
+        return keys_a, counts_a
+    pos, found = lookup(keys_a, keys_b)
+    counts_a = counts_a.copy()
+    counts_a[pos[found]] += counts_b[found]
+    fresh = ~found
+    keys, counts = merge_sorted(keys_a, (counts_a,), keys_b[fresh], (counts_b[fresh],))
+    return keys, counts
 
 
 def _concat(parts: list[np.ndarray]) -> np.ndarray:

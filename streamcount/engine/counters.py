@@ -45,7 +45,7 @@ from typing import Protocol
 import numpy as np
 
 from streamcount.engine.batchcount import Membership, count_batch, merge_sorted, unpack_local
-from streamcount.engine.keys import lookup, pack
+from streamcount.engine.keys import lookup, pack, unpack
 
 __all__ = ["Level", "LossySummary", "Summary", "bucket_width"]
 
@@ -315,14 +315,15 @@ class LossySummary:
             f_old = old_f + batch.take(old_keys)
             keep_old = np.ones(f_old.shape[0], dtype=bool) if exact else (f_old + old_d > b1)
             new_keys, new_counts = batch.fresh(min_new, old_keys)
+            del batch  # its histogram or keys are no longer needed (memory)
             keys, f, d = merge_sorted(
                 old_keys[keep_old],
                 (f_old[keep_old], old_d[keep_old]),
                 new_keys,
                 (new_counts, np.full(new_keys.shape[0], b0, dtype=np.int64)),
             )
-            rows_local = _unpack_local(keys, m, k)
-            self._levels[k - 1] = Level(survivors[rows_local].astype(np.int32), f, d)
+            rows_local = unpack(keys, max(m, 1), k)  # int32: survivors[...] stays int32
+            self._levels[k - 1] = Level(survivors[rows_local], f, d)
             prev_keys = keys
             if keys.shape[0] == 0:  # nothing of size k is tracked, so nothing larger can be
                 for j in range(k + 1, self.max_itemset_size + 1):
