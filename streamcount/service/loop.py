@@ -42,16 +42,19 @@ from streamcount.intake.records import Decoded, RecordBatch
 from streamcount.intake.sources import SOURCES, Source, build_sources
 from streamcount.pipeline import Pipeline
 from streamcount.rules.derive import Rule, measure_rules
-from streamcount.service.api import ServiceApi, View
+from streamcount.service.api import ServiceApi, View, rule_notes
 from streamcount.service.checkpoint import load_latest_checkpoint, save_checkpoint
+from streamcount.service.history import HistoryStore
 from streamcount.service.metrics import Metrics, RuleSample, ServiceState
 
 __all__ = ["STATE_VERSION", "Service"]
 
 logger = logging.getLogger(__name__)
 
-#: version of the checkpoint's contents (the container has its own format version)
-STATE_VERSION = 2
+#: version of the checkpoint's contents (the container has its own format version); 3 adds
+#: the history behind /v1/history. A checkpoint of an older version is refused with a message
+#: (start with --fresh, or keep running the version that wrote it)
+STATE_VERSION = 3
 
 _READ_RECORDS = 20000  # records taken from the sources per turn
 _PUBLISH_SECONDS = 0.5  # the HTTP view is refreshed at most this often (and at pane close)
@@ -116,6 +119,8 @@ class Service:
         self.sinks = SinkFanout((*build_sinks(config.sinks).sinks, *extra_sinks))
         self.pipeline = Pipeline(config, sinks=self.sinks, clock=clock)
         self.pipeline.on_alerts(self._alerts_raised)
+        self.history = HistoryStore(config.history.max_points, config.history.alerted_closes)
+        self.pipeline.on_close(self._closed)
         restored = None if fresh else self._restore()
         positions = (restored or {}).get("sources") or {}
         built = sources if sources is not None else build_sources(config, positions)
@@ -141,6 +146,9 @@ class Service:
             ingest=ingest,
             ingest_timeout_seconds=config.server.request_timeout_seconds,
             stale_seconds=30.0 + config.input.poll_interval_seconds,
+            page=config.page,
+            max_itemset_size=config.engine.max_itemset_size,
+            clock=clock,
         )
         self.server: Any = None
 
@@ -177,6 +185,7 @@ class Service:
             )
         try:
             self.pipeline.load_state(meta["pipeline"], arrays)
+            self.history.load_state(meta["history"], arrays)
         except (KeyError, ValueError, TypeError) as exc:
             raise CheckpointError(
                 f"checkpoint in {directory} cannot be restored: {exc}; start with --fresh to "
@@ -372,7 +381,22 @@ class Service:
 
     def _alerts_raised(self, records: list[dict[str, Any]]) -> None:
         self.metrics.observe_alerts(Counter(str(r["kind"]) for r in records))
-        self._publish(self.pipeline.last_close)
+
+    def _closed(self, close: int, window: WindowSnapshot, records: list[dict[str, Any]]) -> None:
+        """After every evaluated pane close: one history point per followed itemset; a close
+        that raised alerts is published at once (with the window it was evaluated on)."""
+        monitor = self.pipeline.monitor
+        active = [s.rule.items for s in monitor.listing.active()] if monitor is not None else []
+        last = self.pipeline.engine.last_closed
+        self.history.record(
+            close,
+            window,
+            active=active,
+            alerted=[tuple(r["items"]) for r in records],
+            pane=-1 if last is None else int(last.index),
+        )
+        if records:
+            self._publish(window)
 
     def _observe_sources(self) -> None:
         """Readiness follows the sources (a bus that is away), and bus sources' totals go to
@@ -418,13 +442,19 @@ class Service:
             window_max_error=window.max_error,
         )
         monitor = self.pipeline.monitor
-        rules: tuple[Rule, ...] = tuple(monitor.active_rules) if monitor is not None else ()
+        listed = monitor.listing.active() if monitor is not None else []
+        rules: tuple[Rule, ...] = tuple(s.rule for s in listed)
         rules_window = self.pipeline.rules_window
         budget = monitor.budget if monitor is not None else None
         if fresh and rules:
             # the active rules re-measured with the overlay (the list changes at pane closes)
             rules = tuple(measure_rules(window, [r.key for r in rules], config=self.config.rules))
             rules_window = window.window_dict()
+        alerts = tuple(self.pipeline.alert_history)
+        closes = self.pipeline.closes
+        as_of = {"pane_close": closes, "last_seq": int(window.last_seq)}
+        rules_seq = window.last_seq if rules_window is None else rules_window["last_seq"]
+        history = self.history.view
         status = {
             "version": __version__,
             "window": window.window_dict(),
@@ -445,9 +475,37 @@ class Service:
             "overlay": fresh,
             "sources": [self._source_status(i.source) for i in self.inputs],
             "alerts_budget": None if budget is None else budget.as_dict(),
+            "as_of": as_of,
+            "fill": self._fill(window, stats.live_panes, stats.window_panes),
+            "min_support": self.config.rules.min_support,
+            "checkpoints": bool(self.config.checkpoint.checkpoint_dir),
+            "sinks": {
+                name: {"sent": st.sent, "failed": st.failed, "dropped": st.dropped}
+                for name, st in self.sinks.stats_by_sink().items()
+            },
+            "history": history.summary(),
         }
-        alerts = tuple(self.pipeline.alert_history)
-        return View(window, stats, rules, alerts, status, rules_window, key)
+        return View(
+            window,
+            stats,
+            rules,
+            alerts,
+            status,
+            rules_window,
+            key,
+            as_of=as_of,
+            history=history,
+            rule_notes=rule_notes(listed, alerts),
+            rules_version=f"{closes}.{rules_seq}",
+        )
+
+    def _fill(self, window: WindowSnapshot, live_panes: int, window_panes: int) -> float:
+        """How full the window is: transactions over ``engine.window_size`` (count-based), or
+        live panes over the panes of a full window (time-based); at most 1."""
+        engine = self.config.engine
+        if engine.window_seconds is None:
+            return min(1.0, window.transactions / engine.window_size)
+        return min(1.0, live_panes / max(1, window_panes))
 
     @staticmethod
     def _source_status(source: Source) -> dict[str, Any]:
@@ -493,11 +551,14 @@ class Service:
         if not directory:
             return True
         pipeline_meta, arrays = self.pipeline.state()
+        history_meta, history_arrays = self.history.state()
+        arrays.update(history_arrays)
         now = self.clock()
         positions = {i.source.name: i.source.position() for i in self.inputs}
         meta = {
             "state_version": STATE_VERSION,
             "pipeline": pipeline_meta,
+            "history": history_meta,
             "decoders": {i.source.name: i.decoder.state_dict() for i in self.inputs},
             "sources": positions,
             "written_at": now,
