@@ -26,6 +26,7 @@ from typing import Any, TextIO
 
 from streamcount.config.settings import Config
 from streamcount.engine.engine import Engine
+from streamcount.intake import bulk
 from streamcount.intake.bulk import iter_batches
 from streamcount.intake.formats import make_decoder
 from streamcount.intake.records import Decoded
@@ -44,6 +45,8 @@ class ReplayResult:
     report: dict[str, Any]
     pipeline: Pipeline
     alerts: list[dict[str, Any]] = field(default_factory=list)
+    #: how it ran: ``workers``, and ``why_one_process`` or ``parts`` and the workers' peak RSS
+    stats: dict[str, Any] = field(default_factory=dict)
 
     @property
     def engine(self) -> Engine:
@@ -72,16 +75,13 @@ class _Progress:
         self.stream.flush()
 
 
-def replay_decoded(
-    parts_in: Iterable[Decoded],
+def _pipeline(
     config: Config,
-    *,
-    report: Iterable[str] = ("itemsets",),
-    progress: TextIO | None = None,
+    report: Iterable[str],
     on_alert: Callable[[dict[str, Any]], None] | None = None,
-) -> ReplayResult:
-    """Run the pipeline (with rules and alerts when the report asks for them) over decoded
-    transactions, then report on the final window."""
+) -> tuple[set[str], Pipeline, list[dict[str, Any]]]:
+    """The report parts asked for, a pipeline (rules and alerts when they are asked for) and
+    the list its alerts are collected into."""
     parts = set(report)
     unknown = parts - set(REPORT_PARTS)
     if unknown:
@@ -96,6 +96,20 @@ def replay_decoded(
                 on_alert(record)
 
     pipeline.on_alerts(collect)
+    return parts, pipeline, alerts
+
+
+def replay_decoded(
+    parts_in: Iterable[Decoded],
+    config: Config,
+    *,
+    report: Iterable[str] = ("itemsets",),
+    progress: TextIO | None = None,
+    on_alert: Callable[[dict[str, Any]], None] | None = None,
+) -> ReplayResult:
+    """Run the pipeline (with rules and alerts when the report asks for them) over decoded
+    transactions, then report on the final window."""
+    parts, pipeline, alerts = _pipeline(config, report, on_alert)
     bar = _Progress(progress)
     # The loop builds short-lived lists of strings (no reference cycles: parse errors come
     # without tracebacks); the cyclic collector would only rescan them, at about a fifth of
@@ -109,8 +123,15 @@ def replay_decoded(
     finally:
         if collecting:
             gc.enable()
+    bar.update(pipeline.engine.transactions_seen, final=True)
+    return _report(pipeline, config, parts, alerts)
+
+
+def _report(
+    pipeline: Pipeline, config: Config, parts: set[str], alerts: list[dict[str, Any]]
+) -> ReplayResult:
+    """The report on the pipeline's final window."""
     engine = pipeline.engine
-    bar.update(engine.transactions_seen, final=True)
     # the last partial batch is reported as an exact overlay, as the service shows it: the
     # counting state stays a function of the input alone (batch cuts are count-based)
     snap = engine.fresh_snapshot()
@@ -138,7 +159,10 @@ def decode_file(path: str, config: Config) -> Iterable[Decoded]:
         config.engine.max_basket_items,
         require_ts=config.engine.window_seconds is not None,
     )
-    for batch in iter_batches(path, max_record_bytes=config.input.max_record_bytes):
+    batches = iter_batches(
+        path, max_record_bytes=config.input.max_record_bytes, block_bytes=bulk.BLOCK_BYTES
+    )
+    for batch in batches:
         yield decoder.decode(batch)
     tail = decoder.close_all()
     if tail:
@@ -151,6 +175,32 @@ def replay_file(
     *,
     report: Iterable[str] = ("itemsets",),
     progress: TextIO | None = sys.stderr,
+    workers: int = 1,
 ) -> ReplayResult:
-    """Read ``path`` (``.gz`` transparently, ``-`` for stdin) in ``config.input.format``."""
-    return replay_decoded(decode_file(path, config), config, report=report, progress=progress)
+    """Read ``path`` (``.gz`` transparently, ``-`` for stdin) in ``config.input.format``.
+
+    ``workers > 1`` counts whole panes in that many processes when the input allows it (a
+    plain file of basket or JSON lines, a count-based window; see
+    :mod:`streamcount.replay_workers`), with exactly the report of one process; otherwise it
+    runs in one process and ``stats["why_one_process"]`` says why.
+    """
+    from streamcount.replay_workers import plan, run_parts
+
+    the_plan = plan(path, config, workers)
+    if not the_plan.parallel:
+        result = replay_decoded(decode_file(path, config), config, report=report, progress=progress)
+        result.stats = {"workers": 1, "why_one_process": the_plan.why_one_process}
+        return result
+    parts, pipeline, alerts = _pipeline(config, report)
+    bar = _Progress(progress)
+    collecting = gc.isenabled()
+    gc.disable()  # as in one process: short-lived acyclic lists only
+    try:
+        stats = run_parts(path, config, the_plan, pipeline, bar.update)
+    finally:
+        if collecting:
+            gc.enable()
+    bar.update(pipeline.engine.transactions_seen, final=True)
+    result = _report(pipeline, config, parts, alerts)
+    result.stats = stats
+    return result

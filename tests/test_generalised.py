@@ -82,6 +82,34 @@ def test_exact_counts_equal_the_definition(
 # ---- lossy mode: within the bounds, over a sliding window ------------------------------------
 
 
+@given(data=st.data(), levels=st.sampled_from(LEVEL_CHOICES), chunk=st.integers(1, 9))
+def test_add_ids_maps_through_the_catalogue_as_add_does(
+    data: st.DataObject,
+    levels: tuple[str, ...],
+    chunk: int,
+    tmp_path_factory: pytest.TempPathFactory,
+) -> None:
+    """A feed decoded straight to ids (``Engine.add_ids``) is filtered, mapped and extended
+    with ancestors exactly as the same feed given by name, and sets aside the same orders."""
+    taxonomy = data.draw(taxonomies())
+    baskets = data.draw(streams(taxonomy, 40))
+    tmp = tmp_path_factory.mktemp("cat")
+    settings = {"epsilon": 0.0, "max_itemset_size": 3, "window_size": 400, "pane_size": 100}
+    by_name = build_engine(taxonomy, tmp, levels, batch_size=7, **settings)
+    by_id = build_engine(taxonomy, tmp, levels, batch_size=7, **settings)
+    for lo in range(0, len(baskets), chunk):
+        part = baskets[lo : lo + chunk]
+        a = by_name.add(part)
+        flat = by_id.vocabulary.encode_flat([n for b in part for n in b])
+        b = by_id.add_ids(flat, np.array([len(x) for x in part], dtype=np.int64))
+        assert (a.accepted, a.rejections) == (b.accepted, b.rejections)
+    by_name.flush()
+    by_id.flush()
+    by_id.check_invariants()
+    assert tracked_counts(by_id) == tracked_counts(by_name)
+    assert tracked_counts(by_id) == dict(oracle_counts(taxonomy, without_fees(baskets), levels, 3))
+
+
 @given(
     data=st.data(),
     levels=st.sampled_from(LEVEL_CHOICES[2:]),

@@ -25,35 +25,29 @@ but itself, and by the tests against exact recounts)::
 ``epsilon = 0`` counts exactly: nothing is ever deleted and ``delta = 0``.
 
 Hot path: a batch is a CSR pair (``indptr``, ``items``) of ascending, distinct item ids per
-transaction. Each level enumerates the k-combinations of each transaction's surviving items
-with one fancy-index per basket length (a precomputed combination table), packs them into
-int64 keys in a batch-local dense radix, and counts them with one sort (``np.unique``). No
-Python object is created per itemset.
+transaction. Each level renumbers the surviving items densely for the batch, and
+:mod:`streamcount.engine.batchcount` enumerates and counts the candidate k-itemsets as int64
+keys in that radix (pairs and triples in a few passes, a histogram or a radix sort). The
+tracked entries, in the same radix, take their batch counts by lookup, and the new entries are
+merged into them in order (no re-sort). No Python object is created per itemset.
 
 Memory: per tracked itemset ``4k`` bytes of ids plus 16 bytes of ``(f, delta)``; a batch holds
-its enumerated combinations in chunks of at most ``_CHUNK_COMBOS`` rows.
+its enumerated candidates in chunks of at most :data:`~streamcount.engine.batchcount.CHUNK`.
 """
 
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
-from functools import lru_cache
 from typing import Protocol
 
 import numpy as np
 
-from streamcount.engine.keys import PairSet, combination_table, fits_int64, lookup, pack, unpack
+from streamcount.engine.batchcount import Membership, count_batch, merge_sorted, unpack_local
+from streamcount.engine.keys import PairSet, lookup, pack, unpack
 
 __all__ = ["Level", "LossySummary", "Summary", "bucket_width", "drop_excluded_pairs"]
-
-# Rows of combinations materialised at once while enumerating a batch (bounds peak memory:
-# about 8 bytes x k per row plus the packed key).
-_CHUNK_COMBOS = 1 << 21
-# Dense membership matrices for (k-1)-subsets are used up to this many cells.
-_DENSE_CELLS = 1 << 24
-# Counting by bincount (O(n), no sort) when the key space has at most this many cells.
-_BINCOUNT_CELLS = 1 << 22
 
 
 def bucket_width(epsilon: float) -> int:
@@ -308,14 +302,9 @@ class LossySummary:
                 sel = allowed[cur_items]
                 cur_items = cur_items[sel]
                 cur_txn = cur_txn[sel]
-            membership = _Membership(prev_keys, m, k - 1)
-            batch_keys, batch_counts = _count_combinations(cur_items, cur_txn, t, k, m, membership)
+            membership = Membership(prev_keys, m, k - 1)
+            batch = count_batch(cur_items, cur_txn, t, k, m, membership)
             excluding = k == 2 and self.excluded_pairs is not None and len(self.excluded_pairs) > 0
-            if excluding:
-                assert self.excluded_pairs is not None
-                batch_keys, batch_counts = drop_excluded_pairs(
-                    batch_keys, batch_counts, survivors, m, self.excluded_pairs
-                )
 
             # tracked entries: to local ids; drop those with a pruned item or subset
             if len(old):
@@ -332,20 +321,24 @@ class LossySummary:
             else:
                 old_keys = _pack_local(np.zeros((0, k), dtype=np.int64), m)
                 old_f = old_d = np.zeros(0, dtype=np.int64)
-            pos, found = lookup(batch_keys, old_keys)
-            add = np.where(found, batch_counts[pos] if batch_counts.size else 0, 0)
-            f_old = old_f + add
+            # the local radix keeps the order of rows, so old_keys is sorted
+            f_old = old_f + batch.take(old_keys)
             keep_old = np.ones(f_old.shape[0], dtype=bool) if exact else (f_old + old_d > b1)
-            in_old = np.zeros(batch_keys.shape[0], dtype=bool)
-            in_old[pos[found]] = True
-            new_sel = (batch_counts >= min_new) & ~in_old
-            keys = np.concatenate((old_keys[keep_old], batch_keys[new_sel]))
-            f = np.concatenate((f_old[keep_old], batch_counts[new_sel]))
-            d = np.concatenate((old_d[keep_old], np.full(int(new_sel.sum()), b0, dtype=np.int64)))
-            order = np.argsort(keys, kind="stable")
-            keys = keys[order]
-            rows_local = _unpack_local(keys, m, k)
-            self._levels[k - 1] = Level(survivors[rows_local].astype(np.int32), f[order], d[order])
+            new_keys, new_counts = batch.fresh(min_new, old_keys)
+            if excluding:  # excluded pairs are never inserted (tracked ones are dropped above)
+                assert self.excluded_pairs is not None
+                new_keys, new_counts = drop_excluded_pairs(
+                    new_keys, new_counts, survivors, m, self.excluded_pairs
+                )
+            del batch  # its histogram or keys are no longer needed (memory)
+            keys, f, d = merge_sorted(
+                old_keys[keep_old],
+                (f_old[keep_old], old_d[keep_old]),
+                new_keys,
+                (new_counts, np.full(new_keys.shape[0], b0, dtype=np.int64)),
+            )
+            rows_local = unpack(keys, max(m, 1), k)  # int32: survivors[...] stays int32
+            self._levels[k - 1] = Level(survivors[rows_local], f, d)
             prev_keys = keys
             if keys.shape[0] == 0:  # nothing of size k is tracked, so nothing larger can be
                 for j in range(k + 1, self.max_itemset_size + 1):
@@ -380,6 +373,19 @@ class LossySummary:
                 np.asarray(arrays[f"{prefix}L{k}.f"], dtype=np.int64),
                 np.asarray(arrays[f"{prefix}L{k}.delta"], dtype=np.int64),
             )
+        return s
+
+    @classmethod
+    def from_levels(
+        cls, epsilon: float, max_itemset_size: int, n: int, levels: Sequence[Level]
+    ) -> LossySummary:
+        """A summary of ``n`` transactions with the given entries (e.g. counted by another
+        process); the levels must be in this class's order (see :attr:`levels`)."""
+        if len(levels) != max_itemset_size:
+            raise ValueError(f"{len(levels)} levels for max_itemset_size={max_itemset_size}")
+        s = cls(epsilon, max_itemset_size)
+        s.n = int(n)
+        s._levels = list(levels)
         return s
 
     def remap(self, mapping: np.ndarray) -> None:
@@ -469,120 +475,4 @@ def _pack_local(rows: np.ndarray, m: int) -> np.ndarray:
 
 
 def _unpack_local(keys: np.ndarray, m: int, size: int) -> np.ndarray:
-    return unpack(keys, max(m, 1), size).astype(np.int64)
-
-
-class _Membership:
-    """Is every (k-1)-subset of a k-row tracked?  Dense matrix for pairs, sorted keys beyond.
-
-    For k = 2 every pair of surviving items qualifies (their 1-subsets are the survivors).
-    """
-
-    __slots__ = ("dense", "keys", "m", "size")
-
-    def __init__(self, keys: np.ndarray, m: int, size: int) -> None:
-        self.keys = keys
-        self.m = m
-        self.size = size
-        self.dense: np.ndarray | None = None
-        if size == 2 and m * m <= _DENSE_CELLS:
-            rows = _unpack_local(keys, m, 2)
-            dense = np.zeros((m, m), dtype=bool)
-            dense[rows[:, 0], rows[:, 1]] = True
-            self.dense = dense
-
-    def all_subsets_present(self, rows: np.ndarray) -> np.ndarray:
-        n, k = rows.shape
-        if self.size == 1 or n == 0:
-            return np.ones(n, dtype=bool)
-        ok = np.ones(n, dtype=bool)
-        for cols in _drop_one(k):
-            if self.dense is not None:
-                ok &= self.dense[rows[:, cols[0]], rows[:, cols[1]]]
-            else:
-                _, found = lookup(self.keys, _pack_local(rows[:, cols], self.m))
-                ok &= found
-        return ok
-
-
-@lru_cache(maxsize=16)
-def _drop_one(k: int) -> tuple[list[int], ...]:
-    """Column lists of the k subsets one item smaller: ``(1..k-1), (0, 2..k-1), ...``."""
-    return tuple([c for c in range(k) if c != drop] for drop in range(k))
-
-
-@lru_cache(maxsize=512)
-def _triple_pair_index(length: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """For baskets of ``length`` items: the pair table, and for each triple of the triple
-    table the positions of its pairs (ab, ac, bc) in the pair table."""
-    pairs = combination_table(length, 2)
-    triples = combination_table(length, 3)
-    where = np.full((length, length), -1, dtype=np.int64)
-    where[pairs[:, 0], pairs[:, 1]] = np.arange(pairs.shape[0])
-    ab = where[triples[:, 0], triples[:, 1]]
-    ac = where[triples[:, 0], triples[:, 2]]
-    bc = where[triples[:, 1], triples[:, 2]]
-    return pairs, ab, ac, bc
-
-
-def _count_combinations(
-    items: np.ndarray, txn: np.ndarray, t: int, k: int, m: int, membership: _Membership
-) -> tuple[np.ndarray, np.ndarray]:
-    """Sorted unique keys (local radix ``m``) of the k-combinations present, with counts.
-
-    ``items``/``txn`` list each transaction's surviving local ids (ascending within a
-    transaction, transactions in order). Transactions are grouped by their surviving length
-    ``L``; each group is a ``(g, L)`` matrix indexed once with the ``C(L, k) x k`` combination
-    table, so the work is a few large numpy operations per distinct length. For triples the
-    pair test runs on the ``C(L, 2)`` pairs of each basket and is combined per triple through
-    index tables, so a triple is materialised only when its three pairs are tracked.
-    Counting is one ``bincount`` when ``m**k`` is small, else one sort.
-    """
-    empty = (_pack_local(np.zeros((0, k), dtype=np.int64), m), np.zeros(0, dtype=np.int64))
-    if items.size == 0:
-        return empty
-    lengths = np.bincount(txn, minlength=t)
-    starts = np.zeros(t + 1, dtype=np.int64)
-    np.cumsum(lengths, out=starts[1:])
-    radix = max(m, 1)
-    packs_int = fits_int64(radix, k)
-    key_parts: list[np.ndarray] = []
-    triple_dense = k == 3 and membership.dense is not None
-    for length in np.unique(lengths[lengths >= k]).tolist():
-        table = combination_table(length, k)
-        group = np.flatnonzero(lengths == length)
-        step = max(1, _CHUNK_COMBOS // table.shape[0])
-        for lo in range(0, group.shape[0], step):
-            g = group[lo : lo + step]
-            mat = items[starts[g][:, None] + np.arange(length)]
-            if k == 2:
-                key = mat[:, table[:, 0]] * radix + mat[:, table[:, 1]]
-                key_parts.append(key.ravel())
-                continue
-            if triple_dense:
-                assert membership.dense is not None
-                pairs, ab, ac, bc = _triple_pair_index(length)
-                pair_ok = membership.dense[mat[:, pairs[:, 0]], mat[:, pairs[:, 1]]]
-                valid = pair_ok[:, ab] & pair_ok[:, ac] & pair_ok[:, bc]
-                row, combo = np.nonzero(valid)
-                if row.size == 0:
-                    continue
-                sel = table[combo]
-                a = mat[row, sel[:, 0]]
-                b = mat[row, sel[:, 1]]
-                c = mat[row, sel[:, 2]]
-                key_parts.append((a * radix + b) * radix + c)
-                continue
-            combos = mat[:, table].reshape(-1, k)
-            combos = combos[membership.all_subsets_present(combos)]
-            if combos.shape[0]:
-                key_parts.append(_pack_local(combos, m))
-    if not key_parts:
-        return empty
-    keys = np.concatenate(key_parts) if len(key_parts) > 1 else key_parts[0]
-    if packs_int and radix**k <= _BINCOUNT_CELLS and keys.shape[0] * 4 >= radix**k:
-        counts = np.bincount(keys, minlength=radix**k)
-        present = np.flatnonzero(counts)
-        return present.astype(np.int64), counts[present].astype(np.int64)
-    uniq, counts = np.unique(keys, return_counts=True)
-    return uniq, counts.astype(np.int64)
+    return unpack_local(keys, m, size)

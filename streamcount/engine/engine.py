@@ -32,9 +32,11 @@ from typing import Any
 import numpy as np
 
 from streamcount.config.load import config_from_mapping
-from streamcount.config.settings import MAX_TIMESTAMP, EngineConfig
-from streamcount.engine.counters import bucket_width
+from streamcount.config.settings import EngineConfig
+from streamcount.engine.counters import Level, LossySummary, bucket_width
+from streamcount.engine.guards import Rejection, size_guards, time_guards
 from streamcount.engine.pane import Pane
+from streamcount.engine.rows import renumber, select_rows, sort_dedupe, take_rows
 from streamcount.engine.snapshot import EngineStatistics, WindowSnapshot
 from streamcount.engine.taxonomy import ItemResolver, ItemTables
 from streamcount.engine.vocab import ItemVocabulary
@@ -46,15 +48,6 @@ STATE_VERSION = 1
 
 #: the vocabulary is compacted only when at least this many names can be released
 COMPACT_MIN_RELEASED = 4096
-
-
-@dataclass(frozen=True, slots=True)
-class Rejection:
-    """A transaction the engine set aside: its position in the call's input, reason, detail."""
-
-    index: int
-    reason: str
-    detail: str
 
 
 @dataclass(frozen=True, slots=True)
@@ -153,6 +146,9 @@ class Engine:
         #: called with the old-to-new id map when the vocabulary is compacted (followers of
         #: item ids, e.g. the change tests, renumber theirs)
         self.on_remap: Callable[[np.ndarray], None] | None = None
+        #: compact the vocabulary at the end of an add that closed a pane (see
+        #: compact_vocabulary); off in the processes of a parallel replay, which decide it
+        self.auto_compact = True
         #: names that must keep their ids whatever the panes hold (e.g. catalogue ancestors)
         self.pinned: Callable[[], Iterable[str]] | None = None
 
@@ -175,79 +171,191 @@ class Engine:
         t = len(baskets)
         if t == 0:
             return AddResult(0, last_seq=self.next_seq - 1)
-        lengths_raw = np.fromiter(map(len, baskets), dtype=np.int64, count=t)
-        rejections: list[Rejection] = []
-        ok = lengths_raw > 0
-        for i in np.flatnonzero(~ok).tolist():
-            rejections.append(Rejection(i, "empty", "transaction has no items"))
-        cap = int(self.config.max_basket_items)
-        for i in np.flatnonzero(lengths_raw > cap).tolist():
-            distinct = len(set(baskets[i]))
-            if distinct > cap:
-                ok[i] = False
-                rejections.append(
-                    Rejection(
-                        i,
-                        "too_many_items",
-                        f"{distinct} distinct items > max_basket_items={cap}; "
-                        "raise max_basket_items to count such baskets",
-                    )
-                )
+        ok, rejections = self._size_guards(baskets)
+        # the catalogue maps before the time guards: a basket its filters empty is not late
         mapped = self._map_items(baskets, ok, rejections) if self.items is not None else None
-        ts = np.full(t, np.nan)
-        if timestamps is not None:
-            ts = np.array(timestamps, dtype=np.float64)  # None becomes NaN
-        pane_idx: np.ndarray | None = None
-        if self.time_based:
-            missing = ok & np.isnan(ts)
-            for i in np.flatnonzero(missing).tolist():
-                rejections.append(
-                    Rejection(i, "missing_field", "a time-based window needs a timestamp")
-                )
-            ok &= ~missing
-            with np.errstate(invalid="ignore"):
-                odd = ok & ~(np.abs(ts) < MAX_TIMESTAMP)
-            for i in np.flatnonzero(odd).tolist():
-                rejections.append(
-                    Rejection(
-                        i,
-                        "wrong_type",
-                        f"event time {float(ts[i])!r} is not epoch seconds below "
-                        f"{MAX_TIMESTAMP:.0e} (milliseconds?)",
-                    )
-                )
-            ok &= ~odd
-            pane_idx = np.zeros(t, dtype=np.int64)
-            pane_idx[ok] = np.floor(ts[ok] / self.pane_seconds).astype(np.int64)
-            # watermark seen by each transaction = running max of earlier event times
-            prev = -np.inf if self.max_event_ts is None else self.max_event_ts
-            filled = np.where(ok, ts, -np.inf)
-            running = np.maximum.accumulate(np.concatenate(([prev], filled)))[:-1]
-            closed_limit = (
-                np.floor((running - self.config.allowed_lateness_seconds) / self.pane_seconds) - 1
-            )
-            late = ok & (
-                (pane_idx <= np.maximum(closed_limit, self.window.closed_through))
-                | (pane_idx <= self.window.newest_index - self.window_panes)
-            )
-            for i in np.flatnonzero(late).tolist():
-                rejections.append(
-                    Rejection(
-                        i,
-                        "too_late",
-                        f"event time {float(ts[i])!r} falls in pane {int(pane_idx[i])}, "
-                        "already closed (allowed_lateness_seconds="
-                        f"{self.config.allowed_lateness_seconds})",
-                    )
-                )
-            ok &= ~late
+        ts, pane_idx = self._time_guards(t, timestamps, ok, rejections)
         keep = np.flatnonzero(ok)
         if mapped is not None:
-            flat, lengths = _take_rows(*mapped, keep)
+            flat, lengths = take_rows(*mapped, keep)
         else:
             kept = [baskets[i] for i in keep.tolist()] if keep.shape[0] != t else baskets
+            # items of rejected baskets are never interned
             flat, lengths = self.vocabulary.encode_baskets(kept)
-        flat, lengths = _sort_dedupe(flat, lengths, len(self.vocabulary))
+        flat, lengths = sort_dedupe(flat, lengths, len(self.vocabulary))
+        return self._admit(flat, lengths, keep, ts, pane_idx, rejections)
+
+    def screen(
+        self,
+        baskets: Sequence[Sequence[str]],
+        timestamps: Sequence[float | None] | None = None,
+    ) -> tuple[np.ndarray, list[Rejection]]:
+        """What :meth:`add` would do with ``baskets`` now, without counting or interning:
+        the indices it would accept and the rejections it would report (in index order).
+
+        A worker that decodes part of a feed uses it to know how many transactions the part
+        holds before the part's first sequence number is known.
+        """
+        if not len(baskets):
+            return np.zeros(0, dtype=np.int64), []
+        ok, rejections, _, _ = self._guards(baskets, timestamps)
+        rejections.sort(key=lambda r: r.index)
+        return np.flatnonzero(ok), rejections
+
+    def _guards(
+        self,
+        baskets: Sequence[Sequence[str]],
+        timestamps: Sequence[float | None] | None,
+    ) -> tuple[np.ndarray, list[Rejection], np.ndarray, np.ndarray | None]:
+        """Every rejection rule of :meth:`add` (no state changes): ``(accepted mask,
+        rejections, event times, pane of each row for a time-based window)``."""
+        if self.items is not None:
+            raise ValueError("screen: an engine with a catalogue maps items as it counts them")
+        ok, rejections = self._size_guards(baskets)
+        ts, pane_idx = self._time_guards(len(baskets), timestamps, ok, rejections)
+        return ok, rejections, ts, pane_idx
+
+    def _size_guards(self, baskets: Sequence[Sequence[str]]) -> tuple[np.ndarray, list[Rejection]]:
+        lengths_raw = np.fromiter(map(len, baskets), dtype=np.int64, count=len(baskets))
+        rejections: list[Rejection] = []
+        distinct = lengths_raw.copy()  # exact where it matters: above the cap
+        for i in np.flatnonzero(lengths_raw > int(self.config.max_basket_items)).tolist():
+            distinct[i] = len(set(baskets[i]))
+        ok = size_guards(lengths_raw, distinct, int(self.config.max_basket_items), rejections)
+        return ok, rejections
+
+    def add_ids(
+        self,
+        flat: np.ndarray,
+        lengths: np.ndarray,
+        timestamps: Sequence[float | None] | np.ndarray | None = None,
+    ) -> AddResult:
+        """Take a chunk of transactions already interned with :attr:`vocabulary`.
+
+        ``flat`` holds the item ids of every transaction one after another (any order within
+        a transaction, repeats allowed) and ``lengths`` how many belong to each; the same
+        rejections as :meth:`add`, on the distinct ids. For feeds decoded straight to ids.
+
+        Raises
+        ------
+        ValueError
+            An id outside the vocabulary, or lengths that do not add up to ``flat``.
+        """
+        flat = np.asarray(flat, dtype=np.int32)
+        lengths = np.asarray(lengths, dtype=np.int64)
+        t = int(lengths.shape[0])
+        if int(lengths.sum()) != flat.shape[0] or (t and int(lengths.min()) < 0):
+            raise ValueError(f"add_ids: lengths add up to {int(lengths.sum())}, not {flat.size}")
+        if flat.size and (int(flat.min()) < 0 or int(flat.max()) >= len(self.vocabulary)):
+            raise ValueError(f"add_ids: ids must lie in [0, {len(self.vocabulary)})")
+        if t == 0:
+            return AddResult(0, last_seq=self.next_seq - 1)
+        flat, distinct = sort_dedupe(flat, lengths, len(self.vocabulary))
+        rejections: list[Rejection] = []
+        ok = size_guards(lengths, distinct, int(self.config.max_basket_items), rejections)
+        if self.items is not None:
+            flat, distinct = self._map_ids(flat, distinct, ok, rejections)
+        ts, pane_idx = self._time_guards(t, timestamps, ok, rejections)
+        keep = np.flatnonzero(ok)
+        if keep.shape[0] != t:
+            flat, distinct = select_rows(flat, distinct, ok)
+        return self._admit(flat, distinct, keep, ts, pane_idx, rejections)
+
+    def start_at(self, seq: int) -> None:
+        """Number the next accepted transaction ``seq`` (a fresh engine counting a later part
+        of a feed whose first ``seq - 1`` transactions are counted elsewhere)."""
+        if self.transactions_seen or self.next_seq != 1:
+            raise ValueError("start_at: only a fresh engine can start at another sequence number")
+        if seq < 1:
+            raise ValueError(f"start_at: seq = {seq}; sequence numbers start at 1")
+        self.next_seq = int(seq)
+
+    def add_counted_pane(
+        self,
+        levels: Sequence[Level],
+        names: Sequence[str],
+        transactions: int,
+        *,
+        min_ts: float | None = None,
+        max_ts: float | None = None,
+    ) -> AddResult:
+        """Take a whole pane counted elsewhere: the next ``pane_size`` transactions, as the
+        Lossy Counting summary of exactly those transactions (``levels``: one per itemset
+        size, item ids indexing ``names``), then close it as :meth:`add` would.
+
+        Gives the same window as counting those transactions here (a worker that counted
+        them with this engine's settings produced the same summary): the names are interned
+        in the given order, rows are renumbered to this engine's ids, and ``on_pane_closed``
+        runs. Count-based windows only; the pane must start at the next pane boundary.
+
+        Raises
+        ------
+        ValueError
+            A time-based window, a pane that is not whole or not next, or levels that do not
+            fit the settings.
+        """
+        size = self.pane_size
+        if size is None:
+            raise ValueError("add_counted_pane: count-based windows only")
+        if transactions != size or (self.next_seq - 1) % size:
+            raise ValueError(
+                f"add_counted_pane: a pane of {transactions} transactions at sequence number "
+                f"{self.next_seq}; a counted pane must hold pane_size={size} transactions "
+                "and start at a pane boundary"
+            )
+        if len(levels) != self.max_itemset_size:
+            raise ValueError(
+                f"add_counted_pane: {len(levels)} levels for max_itemset_size="
+                f"{self.max_itemset_size}"
+            )
+        index = (self.next_seq - 1) // size
+        if index in self.window.panes:
+            raise ValueError(f"add_counted_pane: pane {index} already holds transactions")
+        ids = self.vocabulary.encode_flat(names, len(names))
+        pane = self.window.pane(index)
+        pane.summary = LossySummary.from_levels(
+            self.epsilon, self.max_itemset_size, size, renumber(levels, ids)
+        )
+        pane.first_seq, pane.last_seq = self.next_seq, self.next_seq + size - 1
+        pane.min_ts, pane.max_ts = min_ts, max_ts
+        self.next_seq += size
+        self.transactions_seen += size
+        self.window.close_counted(pane)
+        self.last_closed = pane
+        if self.on_pane_closed is not None:
+            self.on_pane_closed(self)
+        return AddResult(size, (), 1, self.next_seq - 1, {})
+
+    def _time_guards(
+        self,
+        t: int,
+        timestamps: Sequence[float | None] | np.ndarray | None,
+        ok: np.ndarray,
+        rejections: list[Rejection],
+    ) -> tuple[np.ndarray, np.ndarray | None]:
+        return time_guards(
+            t,
+            timestamps,
+            ok,
+            rejections,
+            pane_seconds=self.pane_seconds if self.time_based else None,
+            watermark=self.max_event_ts,
+            lateness=self.config.allowed_lateness_seconds,
+            closed_through=self.window.closed_through,
+            expired_through=self.window.newest_index - self.window_panes,
+        )
+
+    def _admit(
+        self,
+        flat: np.ndarray,
+        lengths: np.ndarray,
+        keep: np.ndarray,
+        ts: np.ndarray,
+        pane_idx: np.ndarray | None,
+        rejections: list[Rejection],
+    ) -> AddResult:
+        """Number the accepted rows (``keep`` of the chunk, CSR ``flat``/``lengths`` of
+        ascending distinct ids) and route them to their panes."""
         n_ok = int(lengths.shape[0])
         seq = np.arange(self.next_seq, self.next_seq + n_ok, dtype=np.int64)
         self.next_seq += n_ok
@@ -260,7 +368,7 @@ class Engine:
                 closes = self._route_time(flat, lengths, seq, ts_ok, pane_idx[keep])
             else:
                 closes = self._route_count(flat, lengths, seq, ts_ok)
-        if closes:
+        if closes and self.auto_compact:
             self.compact_vocabulary()
         by_reason = Counter(r.reason for r in rejections)
         self.rejected.update(by_reason)
@@ -272,9 +380,31 @@ class Engine:
     ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Map the baskets still ``ok`` through the catalogue; clears ``ok`` for the ones the
         filters empty. Returns ``(rows, flat, lengths)``: the rows mapped and their CSR."""
-        assert self.items is not None
         rows = np.flatnonzero(ok)
         flat, lengths = self.vocabulary.encode_baskets([baskets[i] for i in rows.tolist()])
+        flat, lengths = self._expand(rows, flat, lengths, ok, rejections)
+        return rows, flat, lengths
+
+    def _map_ids(
+        self, flat: np.ndarray, lengths: np.ndarray, ok: np.ndarray, rejections: list[Rejection]
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """:meth:`_map_items` for a chunk already interned (CSR over every row of the chunk):
+        the mapped chunk, ascending and distinct per row, rows not ``ok`` left empty."""
+        rows = np.flatnonzero(ok)
+        mapped, mapped_lengths = self._expand(rows, *select_rows(flat, lengths, ok), ok, rejections)
+        full = np.zeros(lengths.shape[0], dtype=np.int64)
+        full[rows] = mapped_lengths
+        return sort_dedupe(mapped, full, len(self.vocabulary))
+
+    def _expand(
+        self,
+        rows: np.ndarray,
+        flat: np.ndarray,
+        lengths: np.ndarray,
+        ok: np.ndarray,
+        rejections: list[Rejection],
+    ) -> tuple[np.ndarray, np.ndarray]:
+        assert self.items is not None
         self.items.sync(self.vocabulary)
         flat, lengths = self.items.expand(flat, lengths)
         emptied = lengths == 0
@@ -287,7 +417,7 @@ class Engine:
                 )
             )
         ok[rows[emptied]] = False
-        return rows, flat, lengths
+        return flat, lengths
 
     def set_items(self, items: ItemResolver) -> None:
         """Map items with another catalogue version from the next transaction on; what was
@@ -398,7 +528,9 @@ class Engine:
         if self.on_pane_closed is not None:
             self.on_pane_closed(self)
 
-    def compact_vocabulary(self, *, force: bool = False) -> np.ndarray | None:
+    def compact_vocabulary(
+        self, *, force: bool = False, used: np.ndarray | None = None
+    ) -> np.ndarray | None:
         """Release the item names no held pane uses any more (and that are not pinned), so the
         name table is bounded by the window, not by the feed's history.
 
@@ -409,9 +541,18 @@ class Engine:
         (an increasing map), every pane and buffer is remapped, ``on_remap`` is called with the
         map, and snapshots built before keep the names they were built with. Returns the map,
         or ``None`` when nothing was released. Cost: O(names + tracked entries).
+
+        ``used`` (bool by id) replaces what the held panes use, for a replay whose panes are
+        partly counted in other processes (it knows what one process would hold);
+        ``auto_compact = False`` leaves every compaction to such an explicit call.
         """
         size = len(self.vocabulary)
-        used = self.window.ids_in_use(size)
+        if used is None:
+            used = self.window.ids_in_use(size)
+        else:
+            used = np.array(used, dtype=bool)
+            if used.shape != (size,):
+                raise ValueError(f"used has shape {used.shape}, the vocabulary {size} names")
         if self.items is not None:  # ancestors an item maps to are never released
             used |= self.items.pinned_mask(size)
         if self.pinned is not None:
@@ -592,39 +733,3 @@ class Engine:
         eng.max_event_ts = meta["max_event_ts"]
         eng.window.load_state(meta["window"], arrays)
         return eng
-
-
-def _take_rows(
-    rows: np.ndarray, flat: np.ndarray, lengths: np.ndarray, keep: np.ndarray
-) -> tuple[np.ndarray, np.ndarray]:
-    """The CSR ``flat``/``lengths`` of ``rows`` (ascending) restricted to the rows ``keep``
-    (ascending, a subset of ``rows``)."""
-    if keep.shape[0] == rows.shape[0]:
-        return flat, lengths
-    which = np.searchsorted(rows, keep)
-    ends = np.cumsum(lengths)
-    sel = lengths[which]
-    starts = ends[which] - sel
-    take = np.repeat(starts - (np.cumsum(sel) - sel), sel) + np.arange(int(sel.sum()))
-    return flat[take], sel
-
-
-def _sort_dedupe(
-    flat: np.ndarray, lengths: np.ndarray, vocab_size: int
-) -> tuple[np.ndarray, np.ndarray]:
-    """Sort the ids of each transaction and drop repeats, all transactions at once."""
-    t = lengths.shape[0]
-    if flat.size == 0:
-        return flat, lengths
-    txn = np.repeat(np.arange(t, dtype=np.int64), lengths)
-    radix = max(vocab_size, 1)
-    combined = txn * radix + flat
-    # already ascending and distinct within every transaction? (common for sorted feeds)
-    step = np.diff(combined)
-    if (step > 0).all():
-        return flat, lengths
-    combined.sort()
-    keep = np.concatenate(([True], combined[1:] != combined[:-1]))
-    combined = combined[keep]
-    new_txn = combined // radix
-    return (combined % radix).astype(np.int32), np.bincount(new_txn, minlength=t).astype(np.int64)

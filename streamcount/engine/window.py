@@ -128,6 +128,17 @@ class SlidingWindow:
         pane.closed = True
         self.closed_through = max(self.closed_through, pane.index)
 
+    def close_counted(self, pane: Pane) -> None:
+        """Close a pane whose summary was counted elsewhere and set on it whole (nothing
+        buffered); the window moves on to it as if it had been counted here."""
+        if pane.buffered:
+            raise ValueError(f"pane {pane.index} has buffered transactions")
+        if pane.counted and pane.index > self.newest_index:
+            self.newest_index = pane.index
+            self._expire()
+        pane.closed = True
+        self.closed_through = max(self.closed_through, pane.index)
+
     def advance_to(self, index: int) -> None:
         """Move the window's end to pane ``index`` although nothing was counted there (time
         passed on a quiet feed): panes that left the window are dropped (closed ones only)."""

@@ -21,7 +21,7 @@ import numpy as np
 from streamcount.errors import ConfigError, InputError
 from streamcount.intake.records import RecordBatch, line_offsets
 
-__all__ = ["BLOCK_BYTES", "iter_batches", "open_input"]
+__all__ = ["BLOCK_BYTES", "iter_batches", "open_input", "part_starts"]
 
 #: bytes read at a time: large enough that per-block overhead vanishes
 BLOCK_BYTES = 1 << 20
@@ -73,7 +73,12 @@ def _batch(lines: list[bytes], base: int, end: int, limit: int, cut: list[int]) 
 
 
 def iter_batches(
-    path: str, *, max_record_bytes: int = 65536, block_bytes: int = BLOCK_BYTES
+    path: str,
+    *,
+    max_record_bytes: int = 65536,
+    block_bytes: int = BLOCK_BYTES,
+    start: int = 0,
+    stop: int | None = None,
 ) -> Iterator[RecordBatch]:
     """Read ``path`` as batches of whole lines, in order.
 
@@ -86,6 +91,11 @@ def iter_batches(
         Longer lines are cut to their first ``max_record_bytes`` bytes and marked too long.
     block_bytes:
         Bytes read at a time (a batch holds the whole lines of one block).
+    start, stop:
+        Read only bytes ``start..stop-1`` of a plain file (not stdin, not gzip). Reads keep
+        to the grid of ``block_bytes`` from the start of the file, so a part that starts just
+        after the last newline of a block yields exactly the batches a reading of the whole
+        file yields there (see :func:`part_starts`).
 
     Yields
     ------
@@ -96,13 +106,22 @@ def iter_batches(
     if block_bytes < 1:
         raise ConfigError("block_bytes", block_bytes, "must be at least 1")
     limit = max_record_bytes
-    offset = 0  # of the first byte of ``pending``
+    offset = start  # of the first byte of ``pending``
     pending = b""
     skipping: tuple[bytes, int] | None = None  # (head, bytes seen) of an over-long line
     with open_input(path) as stream:
+        if start or stop is not None:
+            if path == "-" or not hasattr(stream, "seekable") or isinstance(stream, gzip.GzipFile):
+                raise InputError(f"input.path = {path!r}: only a plain file can be read in parts")
+            stream.seek(start)
+        pos = start
         while True:
+            size = block_bytes - pos % block_bytes
+            if stop is not None:
+                size = max(min(size, stop - pos), 0)
             try:
-                block = stream.read(block_bytes)
+                block = stream.read(size) if size else b""
+                pos += len(block)
             except (OSError, EOFError, gzip.BadGzipFile) as exc:
                 raise InputError(f"input.path = {path!r}: read failed ({exc})") from None
             if skipping is not None:
@@ -119,9 +138,11 @@ def iter_batches(
                 )
                 offset = end
                 skipping = None
-                block = block[nl + 1 :] if nl >= 0 else b""
-                if not block and nl < 0:
+                if nl < 0:  # the input ended inside the over-long line
                     break
+                block = block[nl + 1 :]
+                if not block:  # the newline was the block's last byte: read on
+                    continue
             if block:
                 data = pending + block if pending else block
                 cut = data.rfind(b"\n")
@@ -142,3 +163,28 @@ def iter_batches(
             offset = end
             if not block:
                 break
+
+
+def part_starts(path: str, size: int, parts: int, block_bytes: int = BLOCK_BYTES) -> list[int]:
+    """Where to cut a plain file of ``size`` bytes into about ``parts`` parts that read (with
+    :func:`iter_batches` ``start``/``stop``) exactly as the whole file reads: each cut is just
+    after the last newline of a block of the ``block_bytes`` grid, so every batch of the
+    whole file falls in one part. Returns the ascending cut offsets, ``0`` first (a block
+    without a newline cannot be cut after; fewer parts then).
+    """
+    blocks = -(-size // block_bytes)
+    cuts = [0]
+    if parts <= 1 or blocks <= 1:
+        return cuts
+    with open(path, "rb") as fh:
+        for j in range(1, parts):
+            block = max(round(j * blocks / parts), 1)  # cut in the block ending at block*B
+            if block * block_bytes >= size:
+                break
+            fh.seek((block - 1) * block_bytes)
+            data = fh.read(block_bytes)
+            nl = data.rfind(b"\n")
+            cut = (block - 1) * block_bytes + nl + 1
+            if nl >= 0 and cut > cuts[-1] and cut < size:
+                cuts.append(cut)
+    return cuts
