@@ -31,6 +31,7 @@ import numpy as np
 from streamcount.config.load import config_from_mapping
 from streamcount.config.settings import MAX_TIMESTAMP, EngineConfig
 from streamcount.engine.counters import bucket_width
+from streamcount.engine.merged import MergedPane, MergedSummary, renumber_levels
 from streamcount.engine.pane import Pane
 from streamcount.engine.snapshot import EngineStatistics, WindowSnapshot
 from streamcount.engine.vocab import ItemVocabulary
@@ -246,6 +247,72 @@ class Engine:
         self.rejected.update(by_reason)
         rejections.sort(key=lambda r: r.index)
         return AddResult(n_ok, tuple(rejections), closes, self.next_seq - 1, dict(by_reason))
+
+    def add_merged_pane(
+        self,
+        index: int,
+        merged: MergedPane,
+        *,
+        min_ts: float | None = None,
+        max_ts: float | None = None,
+    ) -> AddResult:
+        """Take pane ``index`` of a time-based window, merged from the summaries of the parts
+        of a feed counted elsewhere (:func:`streamcount.engine.merged.merge_parts`), and
+        close it as :meth:`add` closes a pane: ``on_pane_closed`` runs, then the vocabulary
+        may be compacted.
+
+        The pane keeps the parts' summed absent bound (:class:`MergedSummary`), so the window's
+        ``max_error`` is the sum of every part's bound. Its transactions get the next sequence
+        numbers, in one run. A pane of no transactions (every part empty) creates nothing: the
+        window's end moves to ``index`` as time passes on a quiet feed (``advance_watermark``),
+        and nothing is evaluated. ``min_ts`` and ``max_ts`` are the earliest and latest event
+        times the parts counted. Panes must come in index order.
+
+        Raises
+        ------
+        ValueError
+            A count-based window, a pane at or below the last closed one, or levels that do
+            not fit the settings.
+        """
+        if not self.time_based:
+            raise ValueError("add_merged_pane: time-based windows only (count-based: see add)")
+        if index <= self.window.closed_through:
+            raise ValueError(
+                f"add_merged_pane: pane {index} is at or below the last closed pane "
+                f"({self.window.closed_through}); merged panes come in index order"
+            )
+        if len(merged.levels) != self.max_itemset_size:
+            raise ValueError(
+                f"add_merged_pane: {len(merged.levels)} levels for max_itemset_size="
+                f"{self.max_itemset_size}"
+            )
+        n = int(merged.transactions)
+        if n == 0:
+            self.window.closed_through = index
+            self.window.advance_to(index)
+            return AddResult(0, last_seq=self.next_seq - 1)
+        ids = self.vocabulary.encode_flat(merged.names, len(merged.names)).astype(np.int64)
+        pane = self.window.pane(index)
+        pane.summary = MergedSummary(
+            self.epsilon,
+            self.max_itemset_size,
+            n,
+            renumber_levels(merged.levels, ids),
+            absent=merged.absent_bound,
+            parts=merged.parts,
+        )
+        pane.first_seq, pane.last_seq = self.next_seq, self.next_seq + n - 1
+        pane.min_ts, pane.max_ts = min_ts, max_ts
+        self.next_seq += n
+        self.transactions_seen += n
+        if max_ts is not None:
+            prev = self.max_event_ts
+            self.max_event_ts = max_ts if prev is None else max(prev, max_ts)
+        if index > self.window.newest_index:
+            self.window.advance_to(index)
+        self._close(pane)
+        self.compact_vocabulary()
+        return AddResult(n, (), 1, self.next_seq - 1, {})
 
     def _route_count(
         self, flat: np.ndarray, lengths: np.ndarray, seq: np.ndarray, ts: np.ndarray
