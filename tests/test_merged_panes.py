@@ -97,13 +97,15 @@ def _merged_engine(
             index, merged, min_ts=min(lows, default=None), max_ts=max(highs, default=None)
         )
         engine.check_invariants()
-    # the workers' watermark (their empty summaries say so): the window's end moves there
+    # the workers' watermark (their empty summaries say so): closed, then the window slides
+    # there as the merger's idle watermark does
     last = int(END // PANE_SECONDS) - 1
     if engine.window.closed_through < last:
         empty = PanePart(
             tuple(Level.empty(k) for k in range(1, engine.max_itemset_size + 1)), [], 0, 0
         )
         engine.add_merged_pane(last, merge_parts([empty], engine.max_itemset_size))
+    engine.advance_watermark(END)
     return engine
 
 

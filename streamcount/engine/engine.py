@@ -263,10 +263,12 @@ class Engine:
 
         The pane keeps the parts' summed absent bound (:class:`MergedSummary`), so the window's
         ``max_error`` is the sum of every part's bound. Its transactions get the next sequence
-        numbers, in one run. A pane of no transactions (every part empty) creates nothing: the
-        window's end moves to ``index`` as time passes on a quiet feed (``advance_watermark``),
-        and nothing is evaluated. ``min_ts`` and ``max_ts`` are the earliest and latest event
-        times the parts counted. Panes must come in index order.
+        numbers, in one run. A pane of no transactions (every part empty) creates nothing and
+        is not evaluated, as in one engine, where an index without transactions never becomes a
+        pane: the panes up to ``index`` count as closed, and the window's end stays at the
+        newest pane with transactions until :meth:`advance_watermark` moves it (a quiet feed).
+        ``min_ts`` and ``max_ts`` are the earliest and latest event times the parts counted.
+        Panes must come in index order.
 
         Raises
         ------
@@ -289,7 +291,6 @@ class Engine:
         n = int(merged.transactions)
         if n == 0:
             self.window.closed_through = index
-            self.window.advance_to(index)
             return AddResult(0, last_seq=self.next_seq - 1)
         ids = self.vocabulary.encode_flat(merged.names, len(merged.names)).astype(np.int64)
         pane = self.window.pane(index)
@@ -456,12 +457,14 @@ class Engine:
         if not self.time_based or not math.isfinite(now):
             return 0
         limit = math.floor((now - self.config.allowed_lateness_seconds) / self.pane_seconds) - 1
-        moved = limit - self.window.closed_through
+        # panes already closed up to ``limit`` (by events, or a merger's empty panes) still
+        # leave the window's end behind it until the watermark slides it there
+        moved = max(limit - self.window.closed_through, limit - self.window.newest_index)
         if moved <= 0:
             return 0
         for pane in [p for p in self.window.open_panes() if p.index <= limit]:
             self._close(pane)
-        self.window.closed_through = limit
+        self.window.closed_through = max(self.window.closed_through, limit)
         self.window.advance_to(limit)
         self.compact_vocabulary()
         return moved

@@ -19,7 +19,7 @@ import signal
 import threading
 import time
 from collections import Counter
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, replace
 from typing import Any
 
@@ -44,6 +44,7 @@ from streamcount.pipeline import Pipeline
 from streamcount.rules.derive import Rule, measure_rules
 from streamcount.service.api import ServiceApi, View
 from streamcount.service.checkpoint import load_latest_checkpoint, save_checkpoint
+from streamcount.service.extension import BatchHandler, ServiceExtension
 from streamcount.service.metrics import Metrics, RuleSample, ServiceState
 
 __all__ = ["STATE_VERSION", "Service"]
@@ -63,10 +64,20 @@ _OVERLAY_SECONDS = 1.0
 
 @dataclass(slots=True)
 class _Input:
-    """One source with its own decoder."""
+    """One source with its own decoder (or an extension's handler of its batches)."""
 
     source: Source
     decoder: Decoder
+    handler: BatchHandler | None = None
+
+
+def _role_extensions(config: Config) -> list[ServiceExtension]:
+    """What ``cluster.role`` adds to the service (nothing for one process alone)."""
+    if config.cluster.role is None:
+        return []
+    from streamcount.cluster import build_extension
+
+    return [build_extension(config)]
 
 
 class Service:
@@ -87,6 +98,9 @@ class Service:
     clock:
         Wall time (event lag, the future-time guard, checkpoint stamps); the only place it
         is read.
+    extensions:
+        What a role adds (:class:`~streamcount.service.extension.ServiceExtension`); by
+        default the one ``cluster.role`` names (a cluster worker or merger), else none.
     """
 
     def __init__(
@@ -98,6 +112,7 @@ class Service:
         sources: list[Source] | None = None,
         extra_sinks: tuple[Sink, ...] = (),
         clock: Callable[[], float] = time.time,
+        extensions: Sequence[ServiceExtension] | None = None,
     ) -> None:
         self.config = config
         self.clock = clock
@@ -113,13 +128,24 @@ class Service:
         self._counted_at = time.monotonic()  # when the counted panes last changed
         self.turns = 0
 
+        self.extensions = list(extensions) if extensions is not None else _role_extensions(config)
         self.sinks = SinkFanout((*build_sinks(config.sinks).sinks, *extra_sinks))
-        self.pipeline = Pipeline(config, sinks=self.sinks, clock=clock)
+        # a cluster worker counts one partition: rules and alerts belong to the merged window
+        alerts = config.cluster.role != "worker"
+        self.pipeline = Pipeline(config, sinks=self.sinks, clock=clock, alerts=alerts)
         self.pipeline.on_alerts(self._alerts_raised)
         restored = None if fresh else self._restore()
         positions = (restored or {}).get("sources") or {}
-        built = sources if sources is not None else build_sources(config, positions)
+        if sources is not None:
+            built = sources
+        elif config.cluster.role == "merger":
+            built = []  # a merger reads pane summaries (its extension's source), no orders
+        else:
+            built = build_sources(config, positions)
         self.inputs = [_Input(s, self._decoder_for(s.name)) for s in built]
+        for extension in self.extensions:
+            for source, handler in extension.inputs(positions):
+                self.inputs.append(_Input(source, self._decoder_for(source.name), handler))
         for item in self.inputs:
             state = ((restored or {}).get("decoders") or {}).get(item.source.name)
             if state:
@@ -143,6 +169,8 @@ class Service:
             stale_seconds=30.0 + config.input.poll_interval_seconds,
         )
         self.server: Any = None
+        for extension in self.extensions:
+            extension.bind(self)
 
     # -- set-up ------------------------------------------------------------------------------
 
@@ -182,6 +210,11 @@ class Service:
                 f"checkpoint in {directory} cannot be restored: {exc}; start with --fresh to "
                 "discard it"
             ) from exc
+        saved = meta.get("extensions") or {}
+        for extension in self.extensions:
+            prefix = f"ext.{extension.name}."
+            own = {k[len(prefix) :]: v for k, v in arrays.items() if k.startswith(prefix)}
+            extension.load_state(saved.get(extension.name), own)
         self._last_checkpoint_unix = float(meta.get("written_at", self.clock()))
         logger.info(
             "checkpoint restored from %s: %d transactions seen, resuming at %s",
@@ -299,13 +332,14 @@ class Service:
         if not seen and len(self.inputs) > 1 and timeout > 0:
             self._stop.wait(timeout)
         now = time.monotonic()
+        caught_up = all(i.source.caught_up for i in self.inputs)
         if seen:
             self._last_input = now
-        elif now - self._last_input >= self.config.input.idle_seconds and all(
-            i.source.caught_up for i in self.inputs
-        ):
+        elif now - self._last_input >= self.config.input.idle_seconds and caught_up:
             accepted += self._idle()
-        if seen or rejected:
+        extra = sum(e.turn(caught_up=caught_up) for e in self.extensions)
+        accepted += extra
+        if seen or rejected or extra:
             self.dead_letter.flush()
             self.metrics.observe_dead_letters(self.dead_letter.failed_writes)
             self.metrics.observe_batch(accepted, rejected, time.perf_counter() - started)
@@ -329,6 +363,8 @@ class Service:
     def _count(self, item: _Input, batch: RecordBatch) -> tuple[int, Counter[str]]:
         """Decode one batch, release the orders it closes, count; dead-letter what is set
         aside; tell the batch's sender (HTTP ingest) what became of it."""
+        if item.handler is not None:  # an extension's own records (e.g. pane summaries)
+            return item.handler(batch)
         decoded = item.decoder.decode(batch)
         if decoded.ts is not None:
             latest = max((t for t in decoded.ts if t is not None), default=None)
@@ -355,7 +391,10 @@ class Service:
                 accepted += intake.accepted
                 for error in intake.rejected:
                     self.dead_letter.write(error, source=item.source.name)
-        if self.pipeline.engine.advance_watermark(self.clock()) or accepted:
+        # the clock, or an extension's own watermark (a merger's: where its workers are)
+        marks = [m for e in self.extensions if (m := e.idle_watermark()) is not None]
+        now = min(marks) if marks else self.clock()
+        if self.pipeline.engine.advance_watermark(now) or accepted:
             self._unpublished = True
         return accepted
 
@@ -378,7 +417,8 @@ class Service:
         """Readiness follows the sources (a bus that is away), and bus sources' totals go to
         the metrics."""
         healths = [(i.source.name, i.source.health()) for i in self.inputs]
-        self.api.set_sources_ready(all(h.connected for _, h in healths))
+        ready = all(h.connected for _, h in healths) and all(e.ready() for e in self.extensions)
+        self.api.set_sources_ready(ready)
         for name, health in healths:
             if health.bus is not None:
                 self.metrics.observe_source(name, **dataclasses.asdict(health.bus))
@@ -446,6 +486,8 @@ class Service:
             "sources": [self._source_status(i.source) for i in self.inputs],
             "alerts_budget": None if budget is None else budget.as_dict(),
         }
+        for extension in self.extensions:
+            status[extension.name] = extension.status()
         alerts = tuple(self.pipeline.alert_history)
         return View(window, stats, rules, alerts, status, rules_window, key)
 
@@ -492,9 +534,23 @@ class Service:
         directory = self.config.checkpoint.checkpoint_dir
         if not directory:
             return True
+        for extension in self.extensions:
+            if not extension.before_checkpoint():
+                # e.g. a worker's pane summaries not yet durable on the bus: its input must
+                # not be acknowledged, so no checkpoint now; the next interval tries again
+                logger.warning(
+                    "checkpoint to %s put off: %s is not ready", directory, extension.name
+                )
+                self.metrics.observe_checkpoint(False, self.clock())
+                self._last_checkpoint_mono = time.monotonic()
+                return False
         pipeline_meta, arrays = self.pipeline.state()
         now = self.clock()
         positions = {i.source.name: i.source.position() for i in self.inputs}
+        extension_meta = {}
+        for extension in self.extensions:
+            extension_meta[extension.name], own = extension.state()
+            arrays.update({f"ext.{extension.name}.{k}": v for k, v in own.items()})
         meta = {
             "state_version": STATE_VERSION,
             "pipeline": pipeline_meta,
@@ -502,6 +558,8 @@ class Service:
             "sources": positions,
             "written_at": now,
         }
+        if self.extensions:
+            meta["extensions"] = extension_meta
         ok = False
         try:
             path = save_checkpoint(
@@ -551,6 +609,8 @@ class Service:
         self.dead_letter.close()
         for item in self.inputs:
             item.source.close()
+        for extension in self.extensions:
+            extension.close()
         logger.info("stopped after %d transactions", self.pipeline.engine.transactions_seen)
         return saved
 
