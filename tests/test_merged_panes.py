@@ -125,7 +125,7 @@ def _feed(seed: int, n: int, panes: int) -> tuple[list[list[str]], list[float]]:
     workers=st.integers(1, 3),
     k=st.integers(1, 3),
 )
-@settings(max_examples=40, deadline=None)
+@settings(deadline=None)
 def test_exact_merge_equals_one_engine(
     seed: int, n: int, panes: int, window_panes: int, workers: int, k: int
 ) -> None:
@@ -160,7 +160,7 @@ def test_exact_merge_equals_one_engine(
     epsilon=st.sampled_from([0.5, 0.2, 0.1, 0.05]),
     k=st.integers(1, 3),
 )
-@settings(max_examples=40, deadline=None)
+@settings(deadline=None)
 def test_lossy_merge_keeps_the_bounds_with_summed_error(
     seed: int, n: int, panes: int, workers: int, epsilon: float, k: int
 ) -> None:

@@ -132,7 +132,13 @@ class SummaryPublisher:
 
     def close(self, timeout: float = 5.0) -> None:
         """Stop publishing (what is still queued is not sent) and end the thread."""
-        self._call(lambda: self._stop.set() if self._stop is not None else None)
+
+        def stop() -> None:
+            if self._stop is not None and self._wake is not None:
+                self._stop.set()
+                self._wake.set()
+
+        self._call(stop)
         if self._started:
             self._thread.join(timeout)
 

@@ -137,6 +137,8 @@ class WorkerExtension:
 
     def before_checkpoint(self) -> bool:
         self._publish_watermark()
+        if not self.publisher.connected:  # the bus is away: no use holding the loop up
+            return self.publisher.pending == 0
         timeout = self.config.cluster.publish_timeout_seconds
         started = time.monotonic()
         if self.publisher.flush(timeout):
