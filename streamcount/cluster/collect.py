@@ -302,7 +302,7 @@ class PaneCollector:
                 self.timeout,
                 ", ".join(missing) or "nobody",
             )
-        parts = tuple(held[w] for w in self.workers if w in held)
+        parts = tuple(held[w] for w in sorted(held))  # a worker since removed counts too
         return Close(pane, parts, how, missing, runs)
 
     def _missing_runs(
