@@ -17,6 +17,8 @@ from __future__ import annotations
 
 import json
 import random
+import shutil
+import subprocess
 import threading
 import time
 from collections.abc import Callable, Iterator, Sequence
@@ -30,6 +32,7 @@ from nats_server import (
     NatsServer,
     add_stream,
     consumer_info,
+    free_port,
     nats_server_running,
     publish,
     run_async,
@@ -37,6 +40,7 @@ from nats_server import (
 from oracle import assert_snapshot_bounds, exact_counts
 from prometheus_client import generate_latest
 from service_helpers import ServiceRunner, parse_metrics, wait_until
+from tools import require_tool
 
 from streamcount.config.load import config_from_mapping, fingerprint, fingerprint_settings
 from streamcount.config.settings import Config
@@ -126,16 +130,23 @@ def _last_pane(orders: Sequence[dict[str, Any]]) -> int:
 
 
 def _mapping(
-    server: NatsServer, tmp: Path, role: str, *, engine: dict[str, Any] | None = None, **extra: Any
+    server: NatsServer | str,
+    tmp: Path,
+    role: str,
+    *,
+    engine: dict[str, Any] | None = None,
+    **extra: Any,
 ) -> dict[str, Any]:
-    """A worker's (``w1``, ``w2``) or the merger's (``m``) settings."""
+    """A worker's (``w1``, ``w2``) or the merger's (``m``) settings for ``server`` (or its
+    URL)."""
+    url = server if isinstance(server, str) else server.url
     data: dict[str, Any] = {
         "input": {
             "source": "nats",
             "format": "jsonl",
             "idle_seconds": 3600.0,  # the clock never closes a pane: the orders are from 2025
             "dead_letter_path": str(tmp / f"dead-letter-{role}.jsonl"),
-            "nats": {"servers": [server.url], "reconnect_wait_seconds": 0.1},
+            "nats": {"servers": [url], "reconnect_wait_seconds": 0.1},
         },
         "engine": engine or ENGINE,
         "sinks": {"log": False},
@@ -159,7 +170,7 @@ def _mapping(
     return data
 
 
-def _config(server: NatsServer, tmp: Path, role: str, **kw: Any) -> Config:
+def _config(server: NatsServer | str, tmp: Path, role: str, **kw: Any) -> Config:
     data = _mapping(server, tmp, role, **kw)
     data["server"] = {"listen": None}
     return config_from_mapping(data)
@@ -565,6 +576,86 @@ def test_bus_restarts_mid_stream_lose_nothing_and_count_nothing_twice(
             )
         finally:
             quiet.close()
+
+
+def test_workers_and_merger_speak_tls_to_the_nats_server(
+    tmp_path: Path, cluster: _Cluster, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """``tls://`` servers: the server's certificate is verified against the trusted
+    authorities, here a private one named by ``SSL_CERT_FILE`` (README, TLS to the NATS
+    server)."""
+    openssl = shutil.which("openssl")
+    if openssl is None:
+        pytest.skip("the openssl command is needed to make a test certificate")
+    cert, key = tmp_path / "cert.pem", tmp_path / "key.pem"
+    subprocess.run(
+        [
+            *(openssl, "req", "-x509", "-newkey", "rsa:2048", "-nodes", "-days", "2"),
+            *("-keyout", str(key), "-out", str(cert), "-subj", "/CN=127.0.0.1"),
+            *("-addext", "subjectAltName=IP:127.0.0.1"),
+        ],
+        check=True,
+        capture_output=True,
+        timeout=60,
+    )
+    port = free_port()
+    store = tmp_path / "tls-store"
+    proc = subprocess.Popen(
+        [
+            *(require_tool("nats-server"), "-js", "-sd", str(store), "-a", "127.0.0.1"),
+            *("-p", str(port), "--tls", "--tlscert", str(cert), "--tlskey", str(key)),
+            *("-l", str(tmp_path / "tls-nats.log")),
+        ],
+        stdin=subprocess.DEVNULL,
+    )
+    try:
+        url = f"tls://127.0.0.1:{port}"
+        # the server is up, but its certificate is trusted by nobody yet: refused
+        wait_until(
+            lambda: "CERTIFICATE_VERIFY_FAILED" in (_refused(url) or ""),
+            "the certificate to be refused",
+            timeout=20,
+        )
+        monkeypatch.setenv("SSL_CERT_FILE", str(cert))
+        wait_until(lambda: _refused(url) is None, "a verified TLS connection", timeout=20)
+        add_stream(url)
+        orders = _orders(3000, seed=12)
+        _publish(url, _partition(orders))
+        _publish(url, _closing(orders))
+        for w in WORKERS:
+            cluster.start(w, _config(url, tmp_path, w))
+        config = _config(url, tmp_path, "m")
+        merger = cluster.start("m", config)
+        last = _last_pane(orders)
+        wait_until(lambda: _closed_through(merger) == last, f"the merger to close pane {last}")
+        _assert_equals_replay(merger.pipeline.engine, orders, config, tmp_path)
+        cluster.close()
+    finally:
+        proc.terminate()
+        proc.wait(30)
+
+
+def _refused(url: str) -> str | None:
+    """Why a TLS connection to ``url`` fails (``None``: it works)."""
+
+    errors: list[str] = []
+
+    async def note(exc: Exception) -> None:
+        errors.append(f"{type(exc).__name__}: {exc}")
+
+    async def go() -> None:
+        import nats as nats_client
+
+        nc = await nats_client.connect(
+            url, connect_timeout=2, max_reconnect_attempts=1, allow_reconnect=False, error_cb=note
+        )
+        await nc.close()
+
+    try:
+        run_async(go())
+    except Exception as exc:
+        return "; ".join([*errors, f"{type(exc).__name__}: {exc}"])
+    return None
 
 
 # -- processes killed at random moments (subprocesses, SIGKILL) --------------------------------
