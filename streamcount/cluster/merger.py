@@ -80,6 +80,7 @@ class MergerExtension:
         )
         self.pane_seconds = float(config.engine.pane_seconds or 0.0)
         self.merge_seconds: list[float] = []
+        self.close_seconds: list[float] = []
         self._service: Service | None = None
         self._source: SummarySource | None = None
 
@@ -219,8 +220,10 @@ class MergerExtension:
         )
         if merged.transactions:
             self._service.metrics.cluster_merge_seconds.observe(seconds)
+            # the last closes' merge time, and merge plus rules and alerts (bench_cluster.py)
             self.merge_seconds.append(seconds)
-            del self.merge_seconds[:-1000]
+            self.close_seconds.append(time.perf_counter() - started)
+            del self.merge_seconds[:-1000], self.close_seconds[:-1000]
         return result.accepted
 
     def _name_missing(self, alerts: list[Alert]) -> list[Alert]:
