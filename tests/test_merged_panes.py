@@ -94,7 +94,14 @@ def _merged_engine(
         lows = [m.start for m, _, _ in got if m.start is not None]
         highs = [m.end for m, _, _ in got if m.end is not None]
         engine.add_merged_pane(
-            index, merged, min_ts=min(lows, default=None), max_ts=max(highs, default=None)
+            index,
+            merged.levels,
+            merged.names,
+            merged.transactions,
+            absent_bound=merged.absent_bound,
+            parts=merged.parts,
+            min_ts=min(lows, default=None),
+            max_ts=max(highs, default=None),
         )
         engine.check_invariants()
     # the workers' watermark (their empty summaries say so): closed, then the window slides
@@ -104,7 +111,7 @@ def _merged_engine(
         empty = PanePart(
             tuple(Level.empty(k) for k in range(1, engine.max_itemset_size + 1)), [], 0, 0
         )
-        engine.add_merged_pane(last, merge_parts([empty], engine.max_itemset_size))
+        engine.add_merged_pane(last, empty.levels, (), 0, absent_bound=0)
     engine.advance_watermark(END)
     return engine
 
@@ -223,11 +230,11 @@ def test_a_merged_pane_survives_a_checkpoint_with_its_bound() -> None:
 def test_merged_panes_come_in_order_and_refuse_counting() -> None:
     config = _config(0.0, 2, window_panes=2)
     engine = Engine(config)
-    empty = merge_parts([PanePart((Level.empty(1), Level.empty(2)), [], 0, 0)], 2)
-    engine.add_merged_pane(5, empty)  # nothing in it: the window's end moves, nothing opens
+    empty = (Level.empty(1), Level.empty(2))
+    engine.add_merged_pane(5, empty, (), 0, absent_bound=0)  # nothing in it: nothing opens
     assert engine.window.closed_through == 5 and not engine.window.panes
     with pytest.raises(ValueError, match="at or below the last closed pane"):
-        engine.add_merged_pane(4, empty)
+        engine.add_merged_pane(4, empty, (), 0, absent_bound=0)
     one = merge_parts(
         [
             PanePart(
@@ -244,7 +251,9 @@ def test_merged_panes_come_in_order_and_refuse_counting() -> None:
     )
     closes: list[int] = []
     engine.on_pane_closed = lambda e: closes.append(e.last_closed.index)  # type: ignore[union-attr]
-    result = engine.add_merged_pane(6, one, min_ts=60.5, max_ts=61.0)
+    result = engine.add_merged_pane(
+        6, one.levels, one.names, one.transactions, absent_bound=0, min_ts=60.5, max_ts=61.0
+    )
     assert (result.accepted, result.panes_closed, result.last_seq, closes) == (2, 1, 2, [6])
     pane: Pane = engine.window.panes[6]
     assert pane.closed and (pane.first_seq, pane.last_seq) == (1, 2)
@@ -252,4 +261,4 @@ def test_merged_panes_come_in_order_and_refuse_counting() -> None:
         pane.summary.add_batch(np.array([0, 1]), np.array([0], dtype=np.int32))
     count = Engine(EngineConfig(epsilon=0.0, window_size=4, pane_size=2))
     with pytest.raises(ValueError, match="time-based windows only"):
-        count.add_merged_pane(0, one)
+        count.add_merged_pane(0, one.levels, one.names, 2, absent_bound=0)

@@ -216,7 +216,14 @@ class MergerExtension:
         ]
         highs = [p.meta.end for p in close.parts if p.meta.end is not None and p.meta.transactions]
         result = engine.add_merged_pane(
-            close.index, merged, min_ts=min(lows, default=None), max_ts=max(highs, default=None)
+            close.index,
+            merged.levels,
+            merged.names,
+            merged.transactions,
+            absent_bound=merged.absent_bound,
+            parts=merged.parts,
+            min_ts=min(lows, default=None),
+            max_ts=max(highs, default=None),
         )
         if merged.transactions:
             self._service.metrics.cluster_merge_seconds.observe(seconds)

@@ -30,8 +30,8 @@ import numpy as np
 
 from streamcount.config.load import config_from_mapping
 from streamcount.config.settings import MAX_TIMESTAMP, EngineConfig
-from streamcount.engine.counters import bucket_width
-from streamcount.engine.merged import MergedPane, MergedSummary, renumber_levels
+from streamcount.engine.counters import Level, bucket_width
+from streamcount.engine.merged import MergedSummary, renumber_levels
 from streamcount.engine.pane import Pane
 from streamcount.engine.snapshot import EngineStatistics, WindowSnapshot
 from streamcount.engine.vocab import ItemVocabulary
@@ -251,22 +251,29 @@ class Engine:
     def add_merged_pane(
         self,
         index: int,
-        merged: MergedPane,
+        levels: Sequence[Level],
+        names: Sequence[str],
+        transactions: int,
         *,
+        absent_bound: int,
+        parts: int = 1,
         min_ts: float | None = None,
         max_ts: float | None = None,
     ) -> AddResult:
-        """Take pane ``index`` of a time-based window, merged from the summaries of the parts
-        of a feed counted elsewhere (:func:`streamcount.engine.merged.merge_parts`), and
-        close it as :meth:`add` closes a pane: ``on_pane_closed`` runs, then the vocabulary
-        may be compacted.
+        """Take pane ``index`` of a time-based window, merged from the summaries of ``parts``
+        parts of a feed counted elsewhere (:func:`streamcount.engine.merged.merge_parts`:
+        ``levels``, one per itemset size, item ids indexing ``names``), and close it as
+        :meth:`add` closes a pane: ``on_pane_closed`` runs, then the vocabulary may be
+        compacted. The names are interned in the given order and rows renumbered to this
+        engine's ids.
 
-        The pane keeps the parts' summed absent bound (:class:`MergedSummary`), so the window's
-        ``max_error`` is the sum of every part's bound. Its transactions get the next sequence
-        numbers, in one run. A pane of no transactions (every part empty) creates nothing and
-        is not evaluated, as in one engine, where an index without transactions never becomes a
-        pane: the panes up to ``index`` count as closed, and the window's end stays at the
-        newest pane with transactions until :meth:`advance_watermark` moves it (a quiet feed).
+        The pane keeps the parts' summed ``absent_bound`` (:class:`MergedSummary`), so the
+        window's ``max_error`` is the sum of every part's bound. Its transactions get the next
+        sequence numbers, in one run. A pane of no transactions (every part empty) creates
+        nothing and is not evaluated, as in one engine, where an index without transactions
+        never becomes a pane: the panes up to ``index`` count as closed, and the window's end
+        stays at the newest pane with transactions until :meth:`advance_watermark` moves it (a
+        quiet feed).
         ``min_ts`` and ``max_ts`` are the earliest and latest event times the parts counted.
         Panes must come in index order.
 
@@ -283,24 +290,24 @@ class Engine:
                 f"add_merged_pane: pane {index} is at or below the last closed pane "
                 f"({self.window.closed_through}); merged panes come in index order"
             )
-        if len(merged.levels) != self.max_itemset_size:
+        if len(levels) != self.max_itemset_size:
             raise ValueError(
-                f"add_merged_pane: {len(merged.levels)} levels for max_itemset_size="
+                f"add_merged_pane: {len(levels)} levels for max_itemset_size="
                 f"{self.max_itemset_size}"
             )
-        n = int(merged.transactions)
+        n = int(transactions)
         if n == 0:
             self.window.closed_through = index
             return AddResult(0, last_seq=self.next_seq - 1)
-        ids = self.vocabulary.encode_flat(merged.names, len(merged.names)).astype(np.int64)
+        ids = self.vocabulary.encode_flat(names, len(names)).astype(np.int64)
         pane = self.window.pane(index)
         pane.summary = MergedSummary(
             self.epsilon,
             self.max_itemset_size,
             n,
-            renumber_levels(merged.levels, ids),
-            absent=merged.absent_bound,
-            parts=merged.parts,
+            renumber_levels(levels, ids),
+            absent=absent_bound,
+            parts=parts,
         )
         pane.first_seq, pane.last_seq = self.next_seq, self.next_seq + n - 1
         pane.min_ts, pane.max_ts = min_ts, max_ts
