@@ -374,6 +374,33 @@ def test_poison_summaries_are_dead_lettered_terminated_and_counting_goes_on(
     assert merger.api.status()["rejected"] == {"bad_summary": 1, "foreign_summary": 2}
 
 
+def test_an_idle_partition_does_not_hold_the_merger_back(
+    nats: NatsServer, tmp_path: Path, cluster: _Cluster
+) -> None:
+    # every order goes to partition 0; w2 never gets one. Its idle watermark (the clock,
+    # after input.idle_seconds) passes the feed's panes, and the empty summary it publishes
+    # there lets the merger close them: no timeout (an hour here), nothing missing
+    now = time.time()
+    orders = [o for o in _orders(6000, seed=13) if partition_of(o["id"], 2) == 0]
+    shift = (int(now // PANE) - 12) * PANE - T0  # the feed ends about a minute ago
+    for order in orders:
+        order["ts"] = round(order["ts"] + shift, 3)
+    publish(nats.url, "orders.0", [json.dumps(o).encode() for o in orders])
+    publish(nats.url, "orders.0", _closing(orders)[0])
+    cluster.start("w1", _config(nats, tmp_path, "w1"))
+    cluster.start("w2", _config(nats, tmp_path, "w2", input={"idle_seconds": 0.5}))
+    config = _config(nats, tmp_path, "m")
+    merger = cluster.start("m", config)
+    last = _last_pane(orders)
+    wait_until(lambda: (_closed_through(merger) or 0) >= last, f"the merger to close pane {last}")
+    status = merger.api.status()["cluster"]
+    assert status["incomplete_panes"] == [] and status["last_pane"]["w2"] >= last
+    worker = cluster.services["w2"]
+    assert worker.pipeline.engine.transactions_seen == 0
+    assert worker.api.status()["cluster"]["published"] >= 1  # empty summaries only
+    _assert_equals_replay(merger.pipeline.engine, orders, config, tmp_path)
+
+
 def test_a_stopped_worker_is_named_and_counted_again_when_it_returns(
     nats: NatsServer, tmp_path: Path, cluster: _Cluster
 ) -> None:

@@ -339,6 +339,9 @@ class Service:
             accepted += self._idle()
         extra = sum(e.turn(caught_up=caught_up) for e in self.extensions)
         accepted += extra
+        shown = self.api.view.status
+        if any(e.status() != shown.get(e.name) for e in self.extensions):
+            self._unpublished = True  # e.g. a worker's summaries acknowledged since
         if seen or rejected or extra:
             self.dead_letter.flush()
             self.metrics.observe_dead_letters(self.dead_letter.failed_writes)
