@@ -27,12 +27,24 @@ stop() {
 }
 trap stop EXIT INT TERM
 
+listening() {
+    "$py" -c "import socket; socket.create_connection(('127.0.0.1', 4222), 1)" 2>/dev/null
+}
+if listening; then
+    echo "127.0.0.1:4222 is taken (another NATS server?): stop it, or change the port in" \
+        "nats.conf and in the servers of the three configs" >&2
+    exit 1
+fi
 nats-server -c nats.conf >run/nats.log 2>&1 &
-pids="$pids $!"
+nats=$!
+pids="$pids $nats"
 tries=0
-until "$py" -c "import socket; socket.create_connection(('127.0.0.1', 4222), 1)" 2>/dev/null; do
+until listening; do
     tries=$((tries + 1))
-    if [ "$tries" -gt 50 ]; then echo "nats-server did not start: see run/nats.log" >&2; exit 1; fi
+    if [ "$tries" -gt 50 ] || ! kill -0 "$nats" 2>/dev/null; then
+        echo "nats-server did not start: see examples/cluster/run/nats.log" >&2
+        exit 1
+    fi
     sleep 0.2
 done
 "$py" create_streams.py "$url" streams/ORDERS.json streams/PANES.json
