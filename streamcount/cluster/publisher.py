@@ -213,7 +213,15 @@ class SummaryPublisher:
             options["user_credentials"] = self.nats.creds_file
         if self.token:
             options["token"] = self.token
-        return await nats.connect(**options)
+        nc = nats.NATS()
+        try:
+            await nc.connect(**options)
+        except BaseException:
+            # a handshake cut short (a server restarting) leaves the socket open: close it
+            with contextlib.suppress(Exception):
+                await nc.close()
+            raise
+        return nc
 
     async def _ensure_stream(self, js: Any) -> None:
         import nats.js.errors
