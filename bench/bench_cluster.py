@@ -17,10 +17,13 @@ s in panes of 5 s (5,000 orders a pane, as the count-based benchmarks), rules an
 * **Throughput** (the backlog read from the stream's first message, ``--repeat`` times, each
   run in fresh processes): ``one process`` is a :class:`~streamcount.service.loop.Service`
   reading both subjects (``orders.*``) until it closed the last pane; ``two workers + merger``
-  starts three processes at once, each a ``Service`` (``cluster.role`` worker w1, w2 and the
-  merger, a fresh summaries stream per run), and is timed from the first worker's start to
-  the merger closing the last pane. Orders per second = orders / that time. Target: the
-  cluster >= 1.3 x one process.
+  starts three processes, each a ``Service`` (``cluster.role`` worker w1, w2 and the merger, a
+  fresh summaries stream per run), let go at once when all three have started (interpreter
+  start and imports are not timed, in either set-up), and is timed to the merger closing the
+  last pane. Orders per second = orders / that time. Target: the cluster >= 1.3 x one process.
+* **CPU seconds** of each process over the timed interval (user + system, every thread;
+  ``nats-server`` not included): what the cluster costs beside one process, whatever the
+  other load on the machine does to the wall clock.
 * **Merge cost per pane close**: the merger's own timings of each close, the merge alone
   (decoding done, ``merge_parts``) and the merge plus rules and alerts.
 * **Delay from publish to alert**: a live feed (``generate --pace``, ``--live-rate`` orders/s
@@ -110,7 +113,12 @@ def run_child(case: dict[str, Any]) -> dict[str, Any]:
     config = _config(case)
     last = int(case["last_pane"])
     delays: list[float] = []
+    barrier = Path(case["barrier"])  # every process of a run starts counting at once
+    (barrier / f"{case['role_name']}.ready").touch()
+    while not (barrier / "go").exists():
+        time.sleep(0.005)
     started = time.time()
+    cpu_before = _cpu_seconds()
     service = Service(config, fresh=True)
     engine_of = lambda: service.pipeline.engine  # noqa: E731 - the engine is replaced on restore
     pane_seconds = float(config.engine.pane_seconds)
@@ -145,6 +153,7 @@ def run_child(case: dict[str, Any]) -> dict[str, Any]:
         "transactions": int(service.pipeline.engine.transactions_seen),
         "closed_through": int(service.pipeline.engine.window.closed_through),
         "delays": delays,
+        "cpu_seconds": _cpu_seconds() - cpu_before,
         "peak_rss_mb": machine.peak_rss_mb(),
     }
     if case["role"] == "merger":
@@ -152,6 +161,14 @@ def run_child(case: dict[str, Any]) -> dict[str, Any]:
         out["merge_seconds"] = list(extension.merge_seconds)
         out["close_seconds"] = list(extension.close_seconds)
     return out
+
+
+def _cpu_seconds() -> float:
+    """User plus system CPU time of this process, every thread."""
+    import resource
+
+    usage = resource.getrusage(resource.RUSAGE_SELF)
+    return usage.ru_utime + usage.ru_stime
 
 
 # -- the parent ---------------------------------------------------------------------------------
@@ -210,20 +227,41 @@ def _collect(proc: subprocess.Popen[str], timeout: float) -> dict[str, Any]:
     return json.loads([ln for ln in out.splitlines() if ln.strip()][-1])
 
 
+def _start_together(cases: dict[str, dict[str, Any]]) -> dict[str, dict[str, Any]]:
+    """Start one process per case; once every one has imported what it needs, let them all
+    go at once (interpreter start and imports are not timed)."""
+    barrier = Path(tempfile.mkdtemp(prefix="streamcount-bench-barrier-"))
+    procs = {name: _spawn({**case, "barrier": str(barrier)}) for name, case in cases.items()}
+    try:
+        deadline = time.monotonic() + 120
+        while not all((barrier / f"{c['role_name']}.ready").exists() for c in cases.values()):
+            if time.monotonic() > deadline or any(p.poll() is not None for p in procs.values()):
+                break
+            time.sleep(0.01)
+        (barrier / "go").touch()
+        return {name: _collect(proc, 1800) for name, proc in procs.items()}
+    finally:
+        shutil.rmtree(barrier, ignore_errors=True)
+
+
 def _run_single(common: dict[str, Any], tag: str) -> dict[str, Any]:
     case = {**common, "role": "single", "role_name": f"single{tag}", "subject": None}
-    return _collect(_spawn(case), 1800)
+    return _start_together({"single": case})["single"]
 
 
 def _run_cluster(common: dict[str, Any], tag: str) -> dict[str, dict[str, Any]]:
     panes = f"PANES{tag}"
+    prefix = common["prefix"]
     cases = {
-        "w1": {**common, "role": "worker", "role_name": "w1", "subject": common["prefix"] + ".0"},
-        "w2": {**common, "role": "worker", "role_name": "w2", "subject": common["prefix"] + ".1"},
+        "w1": {**common, "role": "worker", "role_name": "w1", "subject": prefix + ".0"},
+        "w2": {**common, "role": "worker", "role_name": "w2", "subject": prefix + ".1"},
         "merger": {**common, "role": "merger", "role_name": "merger", "subject": None},
     }
-    procs = {name: _spawn({**case, "panes": panes}) for name, case in cases.items()}
-    return {name: _collect(proc, 1800) for name, proc in procs.items()}
+    return _start_together({name: {**case, "panes": panes} for name, case in cases.items()})
+
+
+def _cpu(results: list[dict[str, Any]]) -> str:
+    return f"{machine.spread([r['cpu_seconds'] for r in results])['median']:.2f}"
 
 
 def _rate(s: dict[str, float]) -> str:
@@ -289,6 +327,9 @@ def run_parent(args: argparse.Namespace) -> int:
             f"{_quantile(merges, 0.99) * 1e3:.1f} ms ({len(merges)} closes); with rules and "
             f"alerts median {_quantile(closes, 0.5) * 1e3:.1f} ms, p99 "
             f"{_quantile(closes, 0.99) * 1e3:.1f} ms",
+            f"CPU seconds per run (median): one process {_cpu(singles)}; workers "
+            f"{_cpu([x[w] for x in clusters for w in ('w1', 'w2')])} each, merger "
+            f"{_cpu([x['merger'] for x in clusters])} (nats-server not included)",
             f"peak RSS: one process {max(x['peak_rss_mb'] for x in singles):,.0f} MB; workers "
             f"{max(x[w]['peak_rss_mb'] for x in clusters for w in ('w1', 'w2')):,.0f} MB, merger "
             f"{max(x['merger']['peak_rss_mb'] for x in clusters):,.0f} MB",
