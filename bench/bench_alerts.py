@@ -1,404 +1,184 @@
-"""Cost and behaviour of rules and alerts evaluated at every pane close.
+"""Alerts people can trust, measured: the false-alert promise, detection delays, a real pass,
+and the cost of detection.
 
 Run from the repository root::
 
-    python3 bench/bench_alerts.py             # (a), (b) and (c), prints the figures
-    python3 bench/bench_alerts.py --record    # ... and appends them to bench/RESULTS.md
-    python3 bench/bench_alerts.py --repeat 1 --transactions 100000   # quick
+    python3 bench/bench_alerts.py --quick                     # about a minute, prints only
+    nice -n 19 python3 bench/bench_alerts.py --parts calibration,delays,retail --jobs 2 --record
+    python3 bench/bench_alerts.py --parts cost --record       # a timing: on a quiet machine
 
-(a) **Overhead**: :func:`streamcount.replay.replay_file` on T10I4D100K (K=3, epsilon 0.001,
-    window 50,000 in panes of 5,000, ``min_support`` 0.005) with ``report=["itemsets"]`` and
-    with ``report=["itemsets", "rules", "alerts"]``, each in a fresh process, one warm-up and
-    ``--repeat`` timed runs; the overhead is the ratio of the medians (target <= 15 %).
-(b) **False alerts on a stationary stream**: a seeded :class:`SyntheticFeed` (T10.I4, N = 1000
-    items, 2,000 patterns, no drift) replayed with ``report=["alerts"]`` and the default rules
-    and alerts settings; every alert after warm-up is counted, per 100 pane closes. The stream
-    has no change in it, so every alert is a false one (alerts are signals for a person to
-    review, and this is the rate at which such a person would be bothered for nothing).
-(c) **Detection lag**: the same feed with one planted pair (:class:`Drift`) from a known
-    transaction on; the pair's exact count over the sliding window is computed alongside,
-    and the first ``emerged`` / ``surged`` alert for it is compared with the pane close at
-    which the exact count first reaches ``min_support`` x N.
+Parts (``--parts``, comma-separated; default all):
 
-Generation of the synthetic feed is not timed; only (a) is a timing.
+``calibration``
+    The promise itself. Stationary feeds (``bench/alert_feeds.py``: the generator with no
+    drift; the open retail dataset in a seeded random order, cycled) at budgets of 100, 1,000
+    and 10,000 false alerts per million transactions and windows 5,000/500, 10,000/1,000,
+    20,000/2,000 and 50,000/5,000 (``min_support`` 0.01, epsilon 0.001, K = 3), every alert
+    after warm-up counted as false, its rate per million with an exact Poisson 95 % upper bound
+    (``bench/alert_report.py``); then the default budget (1 per million) over 3,000,000
+    transactions after warm-up per window size on both feeds; then an overdispersed feed
+    (repeated orders) at the same windows, to show how far the guarantee breaks.
+``delays``
+    Planted changes on the generator feed against an exact recount of the window at every
+    pane close (window 10,000/1,000, default budget, 20 seeds): a pair of new products at
+    rates 0.015, 0.02, 0.04 (emerged delay after the exact window support first reaches
+    ``min_support``); an existing pair rising 0.01 -> 0.03, 0.02 -> 0.04, 0.03 -> 0.05 (first
+    emerged or surged alert after the change starts); a pair at 0.04 that stops (faded delay
+    after the stop). Misses and the alerts on other itemsets are counted too.
+``retail``
+    One pass over the open retail dataset in file order (window 20,000/2,000, ``min_support``
+    0.01, default budget): alerts per pane close by kind and the ten strongest alerts
+    (statistic / threshold) with their evidence and an exact recount of the itemset before and
+    since the estimated change.
+``cost``
+    A timing: ``replay_file`` of T10I4D100K (K = 3, epsilon 0.001, window 50,000/5,000) with
+    report ``itemsets`` against ``itemsets,rules,alerts``, each run in a fresh process, the
+    two interleaved, ``--cost-runs`` of each; medians and min-max, target <= 15 % end to end.
+
+Every case runs in a fresh process (``--case``); the count parts are seeded and do not depend
+on timing, so they may run side by side (``--jobs``) and their results are kept in
+``bench/.cache/alerts/`` (``--resume`` reuses the ones made by the same code). The cost part
+always runs alone, after the others, and is never cached. Alerts are signals for a person to
+review, not decisions: these figures say how often such a person would be bothered for
+nothing, and how late a real change reaches them.
 """
 
 from __future__ import annotations
 
 import argparse
-import gc
+import hashlib
 import json
 import sys
 import time
-from itertools import combinations
+from concurrent.futures import ThreadPoolExecutor, as_completed
 from pathlib import Path
 from typing import Any
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-import machine  # bench/ is not a package: the scripts import their neighbour by path
+import alert_parts  # bench/ is not a package: neighbours are imported by path
+import alert_realdata
+import machine
+
+__all__ = ["main", "run_all", "run_cost", "run_parent"]
 
 SCRIPT = Path(__file__).resolve()
-WINDOW_SIZE = 50_000
-PANE_SIZE = 5_000
-BATCH_SIZE = 5_000
-OVERHEAD_MIN_SUPPORT = 0.005
-TARGET_OVERHEAD_PCT = 15.0
-FULL_REPORT = ("itemsets", "rules", "alerts")
-#: drift planted in (c): a pair of existing items with support 1-3 % each and (nearly) no
-#: co-occurrence, added together to this fraction of transactions from ``--drift-start`` on
-DRIFT_RATE = 0.03
+CACHE_DIR = machine.BENCH_DIR / ".cache" / "alerts"
+PARTS = ("calibration", "delays", "retail", "cost")
+WINDOWS = "5000/500,10000/1000,20000/2000,50000/5000"
+#: what a child process runs besides streamcount (a cached result depends on them)
+_CHILD_MODULES = ("alert_feeds.py", "alert_recount.py", "alert_runs.py", "machine.py")
 
 
-def _config(*, min_support: float | None = None) -> Any:
-    """K=3, epsilon 0.001, window 50,000 / panes 5,000; rules and alerts at their defaults."""
-    from streamcount.config.settings import Config, EngineConfig, RulesConfig
-
-    rules = RulesConfig() if min_support is None else RulesConfig(min_support=min_support)
-    return Config(
-        engine=EngineConfig(
-            epsilon=0.001,
-            max_itemset_size=3,
-            window_size=WINDOW_SIZE,
-            pane_size=PANE_SIZE,
-            batch_size=BATCH_SIZE,
-        ),
-        rules=rules,
-    )
+def _code_hash() -> str:
+    """Hash of the code a cached result depends on (streamcount and the child modules)."""
+    h = hashlib.sha256()
+    files = sorted((machine.REPO_DIR / "streamcount").rglob("*.py"))
+    files += [machine.BENCH_DIR / n for n in _CHILD_MODULES]
+    for path in files:
+        h.update(path.relative_to(machine.REPO_DIR).as_posix().encode())
+        h.update(path.read_bytes())
+    return h.hexdigest()[:16]
 
 
-def _chunks(baskets: list[list[str]], size: int = 8192) -> list[Any]:
-    from streamcount.intake.formats import Chunk
-
-    return [Chunk(baskets[i : i + size], None, None) for i in range(0, len(baskets), size)]
-
-
-def _feed(transactions: int, seed: int, drifts: tuple[Any, ...] = ()) -> list[list[str]]:
-    from streamcount.demo.generator import GeneratorParams, SyntheticFeed
-
-    params = GeneratorParams(transactions=transactions, items=1000, patterns=2000, seed=seed)
-    return [list(t) for t in SyntheticFeed(params, drifts).transactions()]
-
-
-# ---------------------------------------------------------------------------------------------
-# child side
-
-
-def _overhead_child(case: dict[str, Any]) -> dict[str, Any]:
-    from streamcount.intake.formats import iter_file_chunks
-    from streamcount.replay import replay_chunks, replay_file
-
-    path = str(machine.data_path("T10I4D100K.dat.gz"))
-    cfg = _config(min_support=OVERHEAD_MIN_SUPPORT)
-    report = tuple(case["report"])
-    size = case.get("size")
-
-    def once() -> tuple[float, Any]:
-        start = time.perf_counter()
-        if size is None:
-            res = replay_file(path, cfg, report=report, progress=None)
-        else:
-            chunks = list(iter_file_chunks(path, "basket"))
-            items = [b for c in chunks for b in c.items][:size]
-            res = replay_chunks(_chunks(items), cfg, report=report, progress=None)
-        return time.perf_counter() - start, res
-
-    once()
-    gc.collect()
-    times, res = [], None
-    for _ in range(int(case["repeat"])):
-        seconds, res = once()
-        times.append(seconds)
-        gc.collect()
-    assert res is not None
-    n = res.report["input"]["transactions"]
-    return {
-        "transactions": n,
-        "seconds": times,
-        "tps": [n / t for t in times],
-        "itemsets": len(res.report.get("itemsets", [])),
-        "rules": len(res.report.get("rules", [])),
-        "alerts": len(res.report.get("alerts", [])),
-    }
-
-
-def _false_alerts_child(case: dict[str, Any]) -> dict[str, Any]:
-    from streamcount.replay import replay_chunks
-
-    baskets = _feed(int(case["transactions"]), int(case["seed"]))
-    cfg = _config()
+def _run(case: dict[str, Any], *, resume: bool, code: str) -> dict[str, Any]:
+    key = hashlib.sha256(json.dumps([case, code], sort_keys=True).encode()).hexdigest()[:24]
+    path = CACHE_DIR / f"{key}.json"
+    if resume and path.exists() and case["kind"] != "cost":
+        out: dict[str, Any] = json.loads(path.read_text(encoding="utf-8"))
+        out["cached"] = True
+        return out
     start = time.perf_counter()
-    res = replay_chunks(_chunks(baskets), cfg, report=("alerts",), progress=None)
-    seconds = time.perf_counter() - start
-    closes = len(baskets) // PANE_SIZE
-    warm_closes = max(0, closes - (WINDOW_SIZE // PANE_SIZE - 1))
-    kinds: dict[str, int] = {}
-    for a in res.alerts:
-        kinds[a["kind"]] = kinds.get(a["kind"], 0) + 1
-    return {
-        "transactions": len(baskets),
-        "seconds": seconds,
-        "pane_closes": closes,
-        "pane_closes_after_warmup": warm_closes,
-        "alerts_by_kind": kinds,
-        "alerts": len(res.alerts),
-        "per_100_closes": 100.0 * len(res.alerts) / max(warm_closes, 1),
-        "examples": [
-            {k: a[k] for k in ("kind", "seq", "items", "antecedent", "consequent")}
-            for a in res.alerts[:10]
-        ],
-    }
-
-
-def _pick_pair(baskets: list[list[str]]) -> tuple[tuple[str, str], dict[str, Any]]:
-    """Two items with support 1-3 % and the fewest co-occurrences (ties: by name)."""
-    n = len(baskets)
-    where: dict[str, set[int]] = {}
-    for t, basket in enumerate(baskets):
-        for item in basket:
-            where.setdefault(item, set()).add(t)
-    band = sorted(i for i, ts in where.items() if 0.01 * n <= len(ts) <= 0.03 * n)
-    best = min(combinations(band, 2), key=lambda p: (len(where[p[0]] & where[p[1]]), p))
-    return best, {
-        "support": {i: len(where[i]) / n for i in best},
-        "co_occurrences_before_drift": len(where[best[0]] & where[best[1]]),
-        "candidates": len(band),
-    }
-
-
-def _drift_child(case: dict[str, Any]) -> dict[str, Any]:
-    from streamcount.demo.generator import Drift
-    from streamcount.replay import replay_chunks
-
-    total, seed, start_at = int(case["transactions"]), int(case["seed"]), int(case["start"])
-    base = _feed(start_at, seed)  # the drift never changes base transactions
-    pair, chosen = _pick_pair(base)
-    del base
-    drift = Drift(items=pair, start=start_at, rate=float(case["rate"]))
-    baskets = _feed(total, seed, (drift,))
-    cfg = _config()
-    res = replay_chunks(_chunks(baskets), cfg, report=("alerts",), progress=None)
-
-    # exact count of the pair over the sliding window at each pane close (brute force)
-    both = [1 if pair[0] in b and pair[1] in b else 0 for b in baskets]
-    per_pane = [sum(both[i : i + PANE_SIZE]) for i in range(0, len(both), PANE_SIZE)]
-    panes = WINDOW_SIZE // PANE_SIZE
-    min_support = cfg.rules.min_support
-    crossing_seq = None
-    exact = []
-    for c in range(1, len(per_pane) + 1):
-        in_window = per_pane[max(0, c - panes) : c]
-        n_window = min(c, panes) * PANE_SIZE
-        count = sum(in_window)
-        exact.append({"seq": c * PANE_SIZE, "count": count, "transactions": n_window})
-        if crossing_seq is None and c >= panes and count >= min_support * n_window:
-            crossing_seq = c * PANE_SIZE
-
-    target = set(pair)
-
-    def first(kind: str, exact_pair: bool) -> dict[str, Any] | None:
-        for a in res.alerts:
-            if a["kind"] != kind:
-                continue
-            if kind == "surged":
-                items = set(a["items"])
-            else:
-                items = set(a["antecedent"] or ()) | set(a["consequent"] or ())
-            if (items == target) if exact_pair else target <= items:
-                lag = None
-                if crossing_seq is not None:
-                    lag = (int(a["seq"]) - crossing_seq) / PANE_SIZE
-                return {
-                    "seq": a["seq"],
-                    "items": a["items"],
-                    "antecedent": a["antecedent"],
-                    "consequent": a["consequent"],
-                    "lag_panes": lag,
-                    "panes_after_drift_start": (int(a["seq"]) - start_at) / PANE_SIZE,
-                }
-        return None
-
-    return {
-        "transactions": total,
-        "pair": list(pair),
-        "chosen": chosen,
-        "drift": {"start": start_at, "start_seq": start_at + 1, "rate": drift.rate},
-        "min_support": min_support,
-        "crossing_seq": crossing_seq,
-        "exact_window_counts": exact,
-        "first_emerged": first("emerged", True),
-        "first_surged": first("surged", True),
-        "first_any_with_pair": {k: first(k, False) for k in ("emerged", "surged")},
-        "alerts": len(res.alerts),
-    }
-
-
-def run_child(case: dict[str, Any]) -> dict[str, Any]:
-    kind = case["kind"]
-    if kind == "overhead":
-        out = _overhead_child(case)
-    elif kind == "false_alerts":
-        out = _false_alerts_child(case)
-    elif kind == "drift":
-        out = _drift_child(case)
-    else:
-        raise ValueError(f"unknown case kind {kind!r}")
-    out["case"] = case
-    out["peak_rss_mb"] = machine.peak_rss_mb()
+    out = machine.run_case(SCRIPT, case)
+    out["wall_seconds"] = time.perf_counter() - start
+    if case["kind"] != "cost":
+        CACHE_DIR.mkdir(parents=True, exist_ok=True)
+        path.write_text(json.dumps(out), encoding="utf-8")
     return out
 
 
-# ---------------------------------------------------------------------------------------------
-# parent side
+def run_all(cases: list[dict[str, Any]], args: argparse.Namespace) -> list[dict[str, Any]]:
+    """Run the count cases ``--jobs`` at a time (longest first); results in case order."""
+    code = _code_hash()
+    order = sorted(range(len(cases)), key=lambda i: -alert_parts.work(cases[i]))
+    results: list[dict[str, Any] | None] = [None] * len(cases)
+    with ThreadPoolExecutor(max_workers=max(1, args.jobs)) as pool:
+        futures = {pool.submit(_run, cases[i], resume=args.resume, code=code): i for i in order}
+        for done, fut in enumerate(as_completed(futures), 1):
+            i = futures[fut]
+            results[i] = fut.result()
+            took = f"{results[i].get('wall_seconds', 0):.0f} s"
+            if results[i].get("cached"):
+                took += " (cached)"
+            print(f"  [{done}/{len(cases)}] {alert_parts.label(cases[i])}: {took}", flush=True)
+    return [r for r in results if r is not None]
 
 
-def _fmt(s: dict[str, float]) -> str:
-    return f"{s['median']:,.0f} [{s['min']:,.0f}..{s['max']:,.0f}]"
+def run_cost(args: argparse.Namespace) -> list[dict[str, Any]]:
+    """Fresh processes, the two reports interleaved (ABBA...), never in parallel."""
+    code = _code_hash()
+    out = []
+    for r in range(args.cost_runs):
+        pair = alert_realdata.COST_REPORTS if r % 2 == 0 else alert_realdata.COST_REPORTS[::-1]
+        for report in pair:
+            case = alert_realdata.cost_case(args, report)
+            res = _run(case, resume=False, code=code)
+            res["round"] = r
+            out.append(res)
+            print(f"  cost round {r + 1}: {','.join(report)} {res['tps'][0]:,.0f} tx/s", flush=True)
+    return out
 
 
 def run_parent(args: argparse.Namespace) -> int:
+    parts = [p for p in args.parts.split(",") if p]
+    unknown = set(parts) - set(PARTS)
+    if unknown:
+        raise SystemExit(f"--parts: unknown {sorted(unknown)}; choose from {','.join(PARTS)}")
     info = machine.machine_info()
-    print(f"# streamcount rules/alerts benchmark, {info['date']}")
+    print(f"# streamcount alerts benchmark, {info['date']}")
     print(machine.format_machine(info))
-    raw: dict[str, Any] = {
-        "machine": info,
-        "settings": {
-            "epsilon": 0.001,
-            "max_itemset_size": 3,
-            "window_size": WINDOW_SIZE,
-            "pane_size": PANE_SIZE,
-            "batch_size": BATCH_SIZE,
-            "repeat": args.repeat,
-            "size": args.size,
-            "transactions": args.transactions,
-            "seed": args.seed,
-            "drift_start": args.drift_start,
-            "drift_rate": args.drift_rate,
-        },
-    }
+    raw: dict[str, Any] = {"machine": info, "settings": alert_parts.settings(args, parts)}
     md: list[str] = []
-
-    # (a) overhead
-    print(
-        f"\n## (a) overhead of rules + alerts at every pane close: T10I4D100K, K=3, eps 0.001, "
-        f"min_support {OVERHEAD_MIN_SUPPORT}, {args.repeat} repeats after one warm-up"
-    )
-    runs = {}
-    for name, report in (("itemsets", ["itemsets"]), ("full", list(FULL_REPORT))):
-        runs[name] = machine.run_case(
-            SCRIPT,
-            {"kind": "overhead", "report": report, "repeat": args.repeat, "size": args.size},
-        )
-    base_s = machine.spread(runs["itemsets"]["seconds"])
-    full_s = machine.spread(runs["full"]["seconds"])
-    overhead = 100.0 * (full_s["median"] / base_s["median"] - 1.0)
-    ok_a = overhead <= TARGET_OVERHEAD_PCT
-    raw["overhead"] = {"runs": runs, "overhead_pct": overhead, "target": machine.verdict(ok_a)}
-    lines_a = [
-        f"report itemsets               {_fmt(machine.spread(runs['itemsets']['tps']))} tx/s, "
-        f"median {base_s['median']:.3f} s, peak {runs['itemsets']['peak_rss_mb']:,.0f} MB",
-        f"report itemsets,rules,alerts  {_fmt(machine.spread(runs['full']['tps']))} tx/s, "
-        f"median {full_s['median']:.3f} s, peak {runs['full']['peak_rss_mb']:,.0f} MB "
-        f"({runs['full']['rules']} active rules, {runs['full']['alerts']} alerts at the end)",
-        f"overhead {overhead:+.1f} % (target <= {TARGET_OVERHEAD_PCT:.0f} %): "
-        f"{machine.verdict(ok_a)}",
-    ]
-    print("\n".join(lines_a))
-    md += [
-        "### (a) Overhead of rules + alerts at every pane close",
-        "",
-        f"T10I4D100K{f' (first {args.size:,})' if args.size else ''}, K=3, epsilon 0.001, "
-        f"window 50,000 / panes 5,000, min_support {OVERHEAD_MIN_SUPPORT}; each report in a "
-        f"fresh process, one warm-up, {args.repeat} timed runs (tx/s median [min..max]).",
-        "",
-        *[f"    {ln}" for ln in lines_a],
-    ]
-
-    # (b) false alerts
-    print(
-        f"\n## (b) false alerts on a stationary synthetic stream ({args.transactions:,} tx, "
-        f"T10.I4 N=1000 |L|=2000, seed {args.seed}, no drift; default rules and alerts, "
-        "window 50,000 / panes 5,000, eps 0.001, K=3)"
-    )
-    fa = machine.run_case(
-        SCRIPT, {"kind": "false_alerts", "transactions": args.transactions, "seed": args.seed}
-    )
-    raw["false_alerts"] = fa
-    line_b = (
-        f"{fa['alerts']} alerts after warm-up over {fa['pane_closes_after_warmup']} pane closes "
-        f"= {fa['per_100_closes']:.1f} per 100 pane closes; by kind {fa['alerts_by_kind'] or '{}'}"
-    )
-    print(line_b)
-    for ex in fa["examples"]:
-        print(f"    {ex}")
-    md += [
-        "",
-        "### (b) False-alert rate on a stationary stream",
-        "",
-        f"SyntheticFeed T10.I4, items 1000, patterns 2000, seed {args.seed}, "
-        f"{args.transactions:,} transactions, no drift; default RulesConfig / AlertsConfig, "
-        "window 50,000 / panes 5,000, epsilon 0.001, K=3. Every alert here is a false one.",
-        "",
-        f"    {line_b}",
-    ]
-
-    # (c) drift detection lag
-    print(
-        f"\n## (c) planted pair from transaction {args.drift_start:,} at rate {args.drift_rate} "
-        "(same feed, same settings)"
-    )
-    dr = machine.run_case(
-        SCRIPT,
-        {
-            "kind": "drift",
-            "transactions": args.transactions,
-            "seed": args.seed,
-            "start": args.drift_start,
-            "rate": args.drift_rate,
-        },
-    )
-    raw["drift"] = dr
-
-    def describe(hit: dict[str, Any] | None) -> str:
-        if hit is None:
-            return "none"
-        lag = "n/a" if hit["lag_panes"] is None else f"{hit['lag_panes']:+.0f} panes"
-        return (
-            f"seq {hit['seq']:,} ({hit['panes_after_drift_start']:.0f} panes after the drift "
-            f"starts; lag after the exact crossing {lag})"
-        )
-
-    crossing = dr["crossing_seq"]
-    lines_c = [
-        f"pair {dr['pair']} (supports before the drift "
-        + ", ".join(f"{v:.2%}" for v in dr["chosen"]["support"].values())
-        + f", {dr['chosen']['co_occurrences_before_drift']} co-occurrences in "
-        f"{args.drift_start:,} transactions)",
-        f"drift starts at seq {dr['drift']['start_seq']:,}; exact window count first reaches "
-        f"min_support {dr['min_support']} x N at the pane close of seq "
-        + (f"{crossing:,}" if crossing else "never"),
-        f"first emerged (rule over exactly the pair): {describe(dr['first_emerged'])}",
-        f"first surged (the pair):                    {describe(dr['first_surged'])}",
-    ]
-    print("\n".join(lines_c))
-    md += [
-        "",
-        "### (c) Planted pair: detection lag",
-        "",
-        f"Same feed with Drift(pair, start={args.drift_start:,}, rate={args.drift_rate}); "
-        "lag = (alert seq - seq of the pane close where the exact window count first reaches "
-        "min_support x N) / pane_size. A surge compares the newest pane with the rest of the "
-        "window, so it can fire before the window's support crosses (negative lag).",
-        "",
-        *[f"    {ln}" for ln in lines_c],
-    ]
-
+    if set(parts) - {"cost"}:
+        md += [
+            "Calibration, delays and the retail pass are counts: they depend on the seeds and "
+            "the code alone, not on the machine's load ('run s' is wall time on a shared "
+            "machine, for information). Cases run in fresh processes, two at a time; "
+            "with `--resume` finished cases come from `bench/.cache/alerts/`, reused only "
+            "for the same code (streamcount and the child modules hashed).",
+        ]
+    builders = {
+        "calibration": (alert_parts.calibration_cases, alert_parts.calibration_md),
+        "delays": (alert_parts.delay_cases, alert_parts.delays_md),
+        "retail": (alert_realdata.retail_cases, alert_realdata.retail_md),
+    }
+    for part in parts:
+        if part == "cost":
+            continue
+        make, report = builders[part]
+        cases = make(args)
+        print(f"\n## {part}: {len(cases)} cases, {args.jobs} at a time", flush=True)
+        results = run_all(cases, args)
+        lines, summary = report(args, results)
+        print("\n".join(lines), flush=True)
+        md += ["", *lines]
+        if part == "retail":
+            results = alert_realdata.compact_retail(results)
+        else:
+            results = alert_parts.compact(part, results)
+        raw[part] = {"summary": summary, "results": results}
+    if "cost" in parts:
+        print(f"\n## cost: {args.cost_runs} rounds, interleaved, one process per run", flush=True)
+        results = run_cost(args)
+        lines, summary = alert_realdata.cost_md(args, results)
+        print("\n".join(lines))
+        md += ["", *lines]
+        raw["cost"] = {"summary": summary, "results": results}
     info["load_average_at_end"] = machine.load_average()
     print(f"\n# load average at end {info['load_average_at_end']}")
     if args.record:
-        md_path, json_path = machine.record(
-            "alerts", "rules and alerts (bench_alerts.py)", "\n".join(md), raw
-        )
+        title = f"alerts: {', '.join(parts)} (bench_alerts.py)"
+        md_path, json_path = machine.record("alerts", title, "\n".join(md), raw)
         print(f"recorded: {md_path} and {json_path}")
     return 0
 
@@ -406,23 +186,45 @@ def run_parent(args: argparse.Namespace) -> int:
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--record", action="store_true", help="append to bench/RESULTS.md")
-    ap.add_argument("--repeat", type=int, default=3, help="timed runs per report in (a)")
-    ap.add_argument("--size", type=int, default=None, help="T10I4D100K transactions in (a)")
+    ap.add_argument("--parts", default=",".join(PARTS), help=f"subset of {','.join(PARTS)}")
+    ap.add_argument("--quick", action="store_true", help="small sizes: about a minute")
+    ap.add_argument("--jobs", type=int, default=1, help="count cases run side by side")
+    ap.add_argument("--resume", action="store_true", help="reuse cached count cases")
+    ap.add_argument("--windows", default=WINDOWS, help="WINDOW/PANE list (calibration)")
+    ap.add_argument("--budgets", default="100,1000,10000", help="per million (calibration)")
+    ap.add_argument("--feeds", default="generator,retail", help="stationary feeds")
     ap.add_argument(
-        "--transactions", type=int, default=300_000, help="synthetic stream length in (b), (c)"
+        "--calib-transactions", type=int, default=1_000_000, help="after warm-up, per case"
     )
-    ap.add_argument("--seed", type=int, default=7, help="seed of the synthetic feed")
+    ap.add_argument("--default-feeds", default="generator,retail", help="at the default budget")
     ap.add_argument(
-        "--drift-start", type=int, default=None, help="0-based start of the planted pair (c)"
+        "--default-transactions", type=int, default=3_000_000, help="after warm-up, per window"
     )
-    ap.add_argument("--drift-rate", type=float, default=DRIFT_RATE, help="planted pair's rate")
+    ap.add_argument("--burst-budgets", default="1,100,1000,10000", help="overdispersed feed")
+    ap.add_argument("--k", type=int, default=3, help="largest itemset size")
+    ap.add_argument("--epsilon", type=float, default=0.001)
+    ap.add_argument("--min-support", type=float, default=0.01)
+    ap.add_argument("--seed", type=int, default=1, help="first seed")
+    ap.add_argument("--seeds", type=int, default=20, help="seeds per delay scenario")
+    ap.add_argument("--horizon", type=int, default=20, help="panes after a planted change")
+    ap.add_argument("--top", type=int, default=10, help="strongest retail alerts shown")
+    ap.add_argument("--cost-runs", type=int, default=5, help="runs of each report (cost)")
+    ap.add_argument("--cost-repeat", type=int, default=1, help="timed runs per process (cost)")
+    ap.add_argument("--cost-size", type=int, default=None, help="T10I4D100K prefix (cost)")
+    ap.add_argument("--cost-min-support", type=float, default=0.005, help="min_support (cost)")
     ap.add_argument("--case", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.case:
-        print(json.dumps(run_child(json.loads(args.case))))
+        import alert_runs
+
+        print(json.dumps(alert_runs.run_case(json.loads(args.case))))
         return 0
-    if args.drift_start is None:
-        args.drift_start = args.transactions // 2
+    if args.quick:
+        args.windows = "10000/1000"
+        args.calib_transactions = args.default_transactions = 10_000
+        args.burst_budgets = "1,1000"
+        args.seeds, args.horizon, args.top = 1, 8, 5
+        args.cost_runs, args.cost_size = 1, 20_000
     return run_parent(args)
 
 

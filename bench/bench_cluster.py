@@ -129,7 +129,7 @@ def run_child(case: dict[str, Any]) -> dict[str, Any]:
             delays.append(time.time() - (pane.index + 1) * pane_seconds)
 
     service.pipeline.on_close(closed)
-    extension = service.extensions[0] if service.extensions else None
+    extension: Any = service.extensions.items[0] if service.extensions else None
 
     def going(svc: Service) -> bool:
         if case["role"] == "worker":

@@ -16,8 +16,9 @@ Data flow (open the modules in this order to follow one order through the servic
                      detectors (emerged, surged, faded) -> Alert records -> sinks
 
 Around the flow: config (typed, validated settings), service (the loop, the HTTP API, metrics,
-checkpoints), replay (a file as fast as possible), cli, and apart from the core the demo
-material (demo: the generator, the invented shop, the demo).
+checkpoints, the per-pane-close history and the page at ``GET /`` with its files in web/),
+replay (a file as fast as possible), cli, and apart from the core the demo material (demo: the
+generator, the invented shop, the demo).
 """
 
 from __future__ import annotations

@@ -24,7 +24,7 @@ OLD_PORT = "9464"
 #: ports an example uses for something other than streamcount's listener
 OTHER_PORTS = {
     8765: "examples/webhook_receiver.py: the example webhook receiver, a separate program",
-    4222: "NATS's own client port (nats-server, a separate program): input.nats.servers",
+    4222: "NATS's own documented client port (the nats source's server, a separate program)",
 }
 _ADDRESS = re.compile(r"(?:127\.0\.0\.1|0\.0\.0\.0|localhost|\[::1?\]):(\d+)")
 

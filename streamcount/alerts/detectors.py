@@ -104,10 +104,10 @@ class PaneClose:
         return tuple(sorted(self.window.item_names[i] for i in row.tolist()))
 
     def key_of(self, items: tuple[str, ...], index: Mapping[str, int]) -> int | None:
-        ids = [index.get(n) for n in items]
-        if any(i is None for i in ids):
+        if not all(n in index for n in items):
             return None
-        return int(self.tracker.keys_of(np.array([sorted(ids)], dtype=np.int32))[0])  # type: ignore[type-var]
+        ids = sorted(index[n] for n in items)
+        return int(self.tracker.keys_of(np.array([ids], dtype=np.int32))[0])
 
 
 @dataclass(slots=True)

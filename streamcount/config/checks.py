@@ -342,6 +342,9 @@ KEY_RULES: dict[str, tuple[_Check, ...]] = {
     "checkpoint.checkpoint_interval_seconds": (_above(0),),
     "logging.level": (_one_of(*_LOG_LEVELS),),
     "logging.format": (_one_of("text", "json"),),
+    "history.max_points": (_at_least(1),),
+    "history.alerted_closes": (_at_least(0),),
+    "page.refresh_seconds": ((lambda v: 0.5 <= v <= 3600, "must be between 0.5 and 3600 seconds"),),
 }
 
 #: values normalised before the rules run (written back into the Config)

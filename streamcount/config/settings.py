@@ -24,11 +24,13 @@ __all__ = [
     "Config",
     "CsvConfig",
     "EngineConfig",
+    "HistoryConfig",
     "InputConfig",
     "JsonlConfig",
     "LoggingConfig",
     "MetricsConfig",
     "NatsConfig",
+    "PageConfig",
     "RulesConfig",
     "ServerConfig",
     "SinksConfig",
@@ -321,6 +323,27 @@ class LoggingConfig:
 
 
 @dataclass(frozen=True, slots=True)
+class HistoryConfig:
+    """The per-pane-close history behind ``GET /v1/history`` and the page's chart."""
+
+    #: points (one itemset at one pane close) held at most; the oldest pane close goes first
+    max_points: int = 200000
+    #: pane closes an alerted itemset stays followed after its last alert (active rules
+    #: are always followed)
+    alerted_closes: int = 20
+
+
+@dataclass(frozen=True, slots=True)
+class PageConfig:
+    """The page served at ``GET /`` on the API's listener."""
+
+    #: serve the page (false: ``/`` answers 404; the API is unchanged)
+    enabled: bool = True
+    #: seconds between the page's refreshes
+    refresh_seconds: float = 3.0
+
+
+@dataclass(frozen=True, slots=True)
 class Config:
     """The whole validated configuration."""
 
@@ -334,3 +357,5 @@ class Config:
     checkpoint: CheckpointConfig = field(default_factory=CheckpointConfig)
     logging: LoggingConfig = field(default_factory=LoggingConfig)
     cluster: ClusterConfig = field(default_factory=ClusterConfig)
+    history: HistoryConfig = field(default_factory=HistoryConfig)
+    page: PageConfig = field(default_factory=PageConfig)

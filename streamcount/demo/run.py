@@ -246,9 +246,10 @@ def demo_main(args: argparse.Namespace) -> int:
         f"pulls {' + '.join(PROMOTION)} from order {PROMOTION_START:,}."
     )
     if bound:
-        say(
-            f"Metrics: http://{bound[0]}:{bound[1]}/metrics   API: http://{bound[0]}:{bound[1]}/v1/status"
-        )
+        base = f"http://{bound[0]}:{bound[1]}"
+        keep = "" if args.forever else "; --forever keeps it live after the demo"
+        say(f"Page: {base}/   (open it in a browser{keep})")
+        say(f"Metrics: {base}/metrics   API: {base}/v1/status")
     say("Warm-up: no alerts until the first window (6,000 orders) is full.")
     started = time.monotonic()
     last_status = 0.0

@@ -3,25 +3,31 @@
 :class:`ServiceApi` implements :class:`~streamcount.service.server.ApiBackend`. HTTP threads
 only read the latest :class:`View` (swapped by reference, never mutated) and hand ingest bodies
 to the ``http`` source's queue, so a request never blocks counting and never sees a half-made
-state. Every answer that describes counts names the window it was computed on.
+state. Every answer that describes counts names the window it was computed on, and every
+answer the page uses carries ``as_of``: the pane-close number and the window's last sequence
+number of the view it was read from, so a reader combines only answers of one view.
 """
 
 from __future__ import annotations
 
 import time
-from collections.abc import Callable
+from collections import deque
+from collections.abc import Callable, Mapping, Sequence
 from concurrent.futures import Future
 from concurrent.futures import TimeoutError as FutureTimeout
 from dataclasses import dataclass, field
 from typing import Any
 
+from streamcount.alerts.listing import ListedRule, RuleKey
+from streamcount.config.settings import PageConfig
 from streamcount.engine.snapshot import EngineStatistics, WindowSnapshot
 from streamcount.errors import InputError
 from streamcount.intake.sources import IngestReceipt
 from streamcount.rules.derive import Rule
+from streamcount.service.history import HistoryView
 from streamcount.service.server import RULE_SORTS
 
-__all__ = ["ServiceApi", "View"]
+__all__ = ["ServiceApi", "View", "rule_notes"]
 
 
 @dataclass(frozen=True, slots=True)
@@ -37,6 +43,17 @@ class View:
     rules_window: dict[str, Any] | None = None
     #: the panes (index, counted) the window was summed from
     window_key: tuple[tuple[int, int], ...] = ()
+    #: ``{"pane_close", "last_seq"}``: pane closes evaluated and the window's last sequence
+    #: number; every answer read from this view carries it
+    as_of: Mapping[str, int] = field(default_factory=lambda: {"pane_close": 0, "last_seq": 0})
+    #: the per-pane-close history (``None``: none kept)
+    history: HistoryView | None = None
+    #: per active rule (by key): ``since_seq``, ``since_pane``, ``last_change``
+    rule_notes: Mapping[tuple[tuple[str, ...], tuple[str, ...]], Mapping[str, Any]] = field(
+        default_factory=dict
+    )
+    #: names the rules' content: the pane close and last sequence number they were measured on
+    rules_version: str = "0.0"
 
 
 _SORT_KEYS: dict[str, Callable[[Rule], float]] = {
@@ -45,6 +62,10 @@ _SORT_KEYS: dict[str, Callable[[Rule], float]] = {
     "support": lambda r: r.support.value,
 }
 assert tuple(_SORT_KEYS) == RULE_SORTS
+
+
+#: ``orders_per_second`` in ``/v1/status``: accepted transactions over about this many seconds
+_RATE_SECONDS = 10.0
 
 
 class ServiceApi:
@@ -65,6 +86,12 @@ class ServiceApi:
         How long a POST waits for the loop to count its body.
     stale_seconds:
         ``/healthz`` fails when the loop has not turned for this long.
+    page:
+        The page's settings (``page.*``).
+    max_itemset_size:
+        ``engine.max_itemset_size`` (``/v1/history`` refuses larger itemsets).
+    clock:
+        Wall time, for the event lag in ``/v1/status``.
     """
 
     def __init__(
@@ -76,6 +103,9 @@ class ServiceApi:
         ingest: Callable[[bytes], Future[IngestReceipt]] | None = None,
         ingest_timeout_seconds: float = 10.0,
         stale_seconds: float = 30.0,
+        page: PageConfig | None = None,
+        max_itemset_size: int = 3,
+        clock: Callable[[], float] = time.time,
     ) -> None:
         self._view = view
         self._metrics_payload = metrics_payload
@@ -86,11 +116,20 @@ class ServiceApi:
         self._ready = False
         self._sources_ready = True
         self._last_turn = time.monotonic()
+        self._page = page if page is not None else PageConfig()
+        self._max_itemset_size = int(max_itemset_size)
+        self._clock = clock
+        #: (monotonic time, transactions_seen) at each publish, for orders_per_second
+        self._seen: deque[tuple[float, int]] = deque(maxlen=256)
+        #: the last full rules answer: (view, arguments, answer); pages open on one service
+        #: ask the same question of the same view, so it is built once per view
+        self._rules_cache: tuple[View, tuple[Any, ...], dict[str, Any]] | None = None
 
     # -- called by the loop -------------------------------------------------------------------
 
     def publish(self, view: View) -> None:
         """Make ``view`` the one requests read (an atomic reference swap)."""
+        self._seen.append((time.monotonic(), view.statistics.transactions_seen))
         self._view = view
 
     @property
@@ -123,8 +162,34 @@ class ServiceApi:
     def ready(self) -> bool:
         return self._ready and self._sources_ready
 
+    def page_enabled(self) -> bool:
+        """Whether ``GET /`` serves the page (``page.enabled``)."""
+        return self._page.enabled
+
     def status(self) -> dict[str, Any]:
-        return self._view.status
+        view = self._view
+        out = dict(view.status)
+        # a time-based window tracks the newest event time; a count-based one has the newest
+        # counted order's
+        newest = view.statistics.max_event_ts
+        if newest is None:
+            newest = view.window.last_ts
+        lag = None if newest is None else max(0.0, self._clock() - newest)
+        out["event_lag_seconds"] = lag
+        out["orders_per_second"] = self._rate()
+        out["page"] = {"refresh_seconds": self._page.refresh_seconds}
+        return out
+
+    def _rate(self) -> float:
+        """Transactions accepted per second over the last ``_RATE_SECONDS`` (wall clock)."""
+        samples = list(self._seen)
+        if not samples:
+            return 0.0
+        now = time.monotonic()
+        newest = samples[-1][1]
+        start = next((s for s in reversed(samples) if now - s[0] >= _RATE_SECONDS), samples[0])
+        elapsed = now - start[0]
+        return (newest - start[1]) / elapsed if elapsed > 0 else 0.0
 
     def itemsets(self, min_support: float | None, size: int | None, limit: int) -> dict[str, Any]:
         view = self._view
@@ -134,7 +199,12 @@ class ServiceApi:
             out.append(s.as_dict())
             if len(out) >= limit:
                 break
-        return {"window": view.window.window_dict(), "min_support": support, "itemsets": out}
+        return {
+            "as_of": dict(view.as_of),
+            "window": view.window.window_dict(),
+            "min_support": support,
+            "itemsets": out,
+        }
 
     def rules(
         self,
@@ -143,8 +213,23 @@ class ServiceApi:
         min_confidence: float | None,
         min_lift: float | None,
         min_support: float | None,
+        since: str | None = None,
     ) -> dict[str, Any]:
+        """The active rules; with ``since`` equal to the ``version`` of the current rules, only
+        ``{"as_of", "version", "window", "unchanged": true}`` (the reader has them)."""
         view = self._view
+        window = view.rules_window or view.window.window_dict()
+        if since is not None and since == view.rules_version:
+            return {
+                "as_of": dict(view.as_of),
+                "version": view.rules_version,
+                "window": window,
+                "unchanged": True,
+            }
+        args = (sort, limit, min_confidence, min_lift, min_support)
+        cached = self._rules_cache
+        if cached is not None and cached[0] is view and cached[1] == args:
+            return cached[2]
         chosen = [
             r
             for r in view.rules
@@ -155,15 +240,61 @@ class ServiceApi:
         if sort not in _SORT_KEYS:
             raise InputError(f"sort = {sort!r}: must be one of {list(RULE_SORTS)}")
         chosen.sort(key=_SORT_KEYS[sort], reverse=True)
-        return {
+        notes = view.rule_notes
+        blank = {"since_seq": None, "since_pane": None, "last_change": None}
+        answer = {
+            "as_of": dict(view.as_of),
+            "version": view.rules_version,
             # rules are evaluated at pane close: this is the window they were measured on
-            "window": view.rules_window or view.window.window_dict(),
-            "rules": [r.as_dict() for r in chosen[:limit]],
+            "window": window,
+            "rules": [{**r.as_dict(), **notes.get(r.key, blank)} for r in chosen[:limit]],
         }
+        self._rules_cache = (view, args, answer)  # one reference swap: safe across threads
+        return answer
 
     def alerts(self, since: int | None, limit: int) -> dict[str, Any]:
-        items = [a for a in self._view.alerts if since is None or int(a["seq"]) > since]
-        return {"alerts": items[-limit:]}
+        view = self._view
+        items = [a for a in view.alerts if since is None or int(a["seq"]) > since]
+        return {"as_of": dict(view.as_of), "alerts": items[-limit:]}
+
+    def history(self, items: list[str], since: int | None) -> dict[str, Any]:
+        """The history of one itemset after pane close ``since``; for an itemset with no
+        history, ``points: []`` and ``followed: false``.
+
+        Raises
+        ------
+        InputError
+            For no item, an empty name or more items than ``engine.max_itemset_size``.
+        """
+        names = sorted(set(items))
+        if not names or any(not n for n in names):
+            raise InputError("items: give the itemset's names, one items= parameter per item")
+        if len(names) > self._max_itemset_size:
+            raise InputError(
+                f"items: {len(names)} items; itemsets of at most engine.max_itemset_size = "
+                f"{self._max_itemset_size} are counted"
+            )
+        view = self._view
+        history = view.history
+        key = tuple(names)
+        since_seq = None if since is None or history is None else history.last_seq_of(since)
+        alerts = [
+            {k: a.get(k) for k in ("id", "kind", "seq", "pane", "event_time", "also")}
+            for a in view.alerts
+            if tuple(sorted(a["items"])) == key and (since_seq is None or int(a["seq"]) > since_seq)
+        ]
+        summary = history.summary() if history is not None else {}
+        return {
+            "as_of": dict(view.as_of),
+            "items": names,
+            "since": since,
+            "followed": history is not None and key in history.followed,
+            "first_close": summary.get("first_close"),
+            "last_close": summary.get("last_close"),
+            "max_points": summary.get("max_points"),
+            "points": [] if history is None else history.points_of(names, since),
+            "alerts": alerts,
+        }
 
     def ingest(self, body: bytes, content_type: str) -> dict[str, Any]:
         """Queue a body for the loop, wait until it is counted, answer what became of it."""
@@ -184,3 +315,34 @@ class ServiceApi:
                 f"{first['detail']}"
             )
         return {"accepted": receipt.accepted, "rejected": receipt.rejected}
+
+
+def rule_notes(
+    listed: Sequence[ListedRule], alerts: Sequence[Mapping[str, Any]]
+) -> dict[RuleKey, dict[str, Any]]:
+    """Per active rule (by key): since when it is active and its last change, with that alert's
+    evidence while the record is still held (``alerts.history``).
+
+    Parameters
+    ----------
+    listed:
+        The listing's active rules (read on the loop's thread, copied here).
+    alerts:
+        The alert records held, to find each last change's evidence by id.
+    """
+    by_id: dict[str, Mapping[str, Any]] | None = None
+    out = {}
+    for state in listed:
+        change = None
+        if state.last_change is not None:
+            if by_id is None:
+                by_id = {str(a["id"]): a for a in alerts}
+            change = dict(state.last_change)
+            record = by_id.get(str(change.get("id")))
+            change["evidence"] = None if record is None else record.get("evidence")
+        out[state.rule.key] = {
+            "since_seq": int(state.since_seq),
+            "since_pane": int(state.since_pane),
+            "last_change": change,
+        }
+    return out

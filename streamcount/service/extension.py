@@ -10,18 +10,19 @@ same file, so positions, counts and the extension's state always agree.
 from __future__ import annotations
 
 from collections import Counter
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from typing import TYPE_CHECKING, Any, Protocol
 
 import numpy as np
 
+from streamcount.config.settings import Config
 from streamcount.intake.records import RecordBatch
 
 if TYPE_CHECKING:
     from streamcount.intake.sources import Source
     from streamcount.service.loop import Service
 
-__all__ = ["BatchHandler", "ServiceExtension"]
+__all__ = ["BatchHandler", "Extensions", "ServiceExtension"]
 
 #: counts one batch of an extension's own source instead of the decoders: ``(transactions
 #: accepted, records set aside by reason)``
@@ -78,3 +79,79 @@ class ServiceExtension(Protocol):
     def close(self) -> None:
         """Release its connections and threads (after the final checkpoint); safe twice."""
         ...
+
+
+class Extensions:
+    """The extensions of one service, called together (each hook of :class:`ServiceExtension`
+    over all of them), so the loop reads as one call per hook.
+
+    Their checkpoint state goes under ``extensions`` (by name) in the meta and their arrays
+    under ``ext.<name>.`` prefixes.
+    """
+
+    def __init__(self, extensions: Sequence[ServiceExtension]) -> None:
+        self.items = list(extensions)
+
+    @classmethod
+    def for_role(cls, config: Config) -> Extensions:
+        """What ``cluster.role`` adds to the service (nothing for one process alone)."""
+        if config.cluster.role is None:
+            return cls(())
+        from streamcount.cluster import build_extension
+
+        return cls((build_extension(config),))
+
+    def __iter__(self) -> Iterator[ServiceExtension]:
+        return iter(self.items)
+
+    def __bool__(self) -> bool:
+        return bool(self.items)
+
+    def load_state(self, meta: Mapping[str, Any], arrays: Mapping[str, np.ndarray]) -> None:
+        saved = meta.get("extensions") or {}
+        for ext in self.items:
+            prefix = f"ext.{ext.name}."
+            own = {k[len(prefix) :]: v for k, v in arrays.items() if k.startswith(prefix)}
+            ext.load_state(saved.get(ext.name), own)
+
+    def inputs(self, positions: Mapping[str, Any]) -> list[tuple[Source, BatchHandler | None]]:
+        return [pair for ext in self.items for pair in ext.inputs(positions)]
+
+    def bind(self, service: Service) -> None:
+        for ext in self.items:
+            ext.bind(service)
+
+    def turn(self, *, caught_up: bool) -> int:
+        return sum(ext.turn(caught_up=caught_up) for ext in self.items)
+
+    def status_changed(self, shown: Mapping[str, Any]) -> bool:
+        """Whether any extension's status differs from the one in ``shown`` (a view's)."""
+        return any(ext.status() != shown.get(ext.name) for ext in self.items)
+
+    def add_status(self, status: dict[str, Any]) -> None:
+        for ext in self.items:
+            status[ext.name] = ext.status()
+
+    def idle_watermark(self, clock: Callable[[], float]) -> float:
+        """The lowest watermark an extension asks for, else the clock."""
+        marks = [m for ext in self.items if (m := ext.idle_watermark()) is not None]
+        return min(marks) if marks else clock()
+
+    def not_ready_for_checkpoint(self) -> str | None:
+        """The name of the first extension that puts the checkpoint off, or ``None``."""
+        return next((ext.name for ext in self.items if not ext.before_checkpoint()), None)
+
+    def state(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+        meta: dict[str, Any] = {}
+        arrays: dict[str, np.ndarray] = {}
+        for ext in self.items:
+            meta[ext.name], own = ext.state()
+            arrays.update({f"ext.{ext.name}.{k}": v for k, v in own.items()})
+        return meta, arrays
+
+    def ready(self) -> bool:
+        return all(ext.ready() for ext in self.items)
+
+    def close(self) -> None:
+        for ext in self.items:
+            ext.close()

@@ -42,17 +42,20 @@ from streamcount.intake.records import Decoded, RecordBatch
 from streamcount.intake.sources import SOURCES, Source, build_sources
 from streamcount.pipeline import Pipeline
 from streamcount.rules.derive import Rule, measure_rules
-from streamcount.service.api import ServiceApi, View
+from streamcount.service.api import ServiceApi, View, rule_notes
 from streamcount.service.checkpoint import load_latest_checkpoint, save_checkpoint
-from streamcount.service.extension import BatchHandler, ServiceExtension
+from streamcount.service.extension import BatchHandler, Extensions, ServiceExtension
+from streamcount.service.history import HistoryStore
 from streamcount.service.metrics import Metrics, RuleSample, ServiceState
 
 __all__ = ["STATE_VERSION", "Service"]
 
 logger = logging.getLogger(__name__)
 
-#: version of the checkpoint's contents (the container has its own format version)
-STATE_VERSION = 2
+#: version of the checkpoint's contents (the container has its own format version); 3 adds
+#: the history behind /v1/history. A checkpoint of an older version is refused with a message
+#: (start with --fresh, or keep running the version that wrote it)
+STATE_VERSION = 3
 
 _READ_RECORDS = 20000  # records taken from the sources per turn
 _PUBLISH_SECONDS = 0.5  # the HTTP view is refreshed at most this often (and at pane close)
@@ -69,15 +72,6 @@ class _Input:
     source: Source
     decoder: Decoder
     handler: BatchHandler | None = None
-
-
-def _role_extensions(config: Config) -> list[ServiceExtension]:
-    """What ``cluster.role`` adds to the service (nothing for one process alone)."""
-    if config.cluster.role is None:
-        return []
-    from streamcount.cluster import build_extension
-
-    return [build_extension(config)]
 
 
 class Service:
@@ -128,12 +122,16 @@ class Service:
         self._counted_at = time.monotonic()  # when the counted panes last changed
         self.turns = 0
 
-        self.extensions = list(extensions) if extensions is not None else _role_extensions(config)
+        self.extensions = (
+            Extensions(extensions) if extensions is not None else Extensions.for_role(config)
+        )
         self.sinks = SinkFanout((*build_sinks(config.sinks).sinks, *extra_sinks))
         # a cluster worker counts one partition: rules and alerts belong to the merged window
         alerts = config.cluster.role != "worker"
         self.pipeline = Pipeline(config, sinks=self.sinks, clock=clock, alerts=alerts)
         self.pipeline.on_alerts(self._alerts_raised)
+        self.history = HistoryStore(config.history.max_points, config.history.alerted_closes)
+        self.pipeline.on_close(self._closed)
         restored = None if fresh else self._restore()
         positions = (restored or {}).get("sources") or {}
         if sources is not None:
@@ -143,9 +141,8 @@ class Service:
         else:
             built = build_sources(config, positions)
         self.inputs = [_Input(s, self._decoder_for(s.name)) for s in built]
-        for extension in self.extensions:
-            for source, handler in extension.inputs(positions):
-                self.inputs.append(_Input(source, self._decoder_for(source.name), handler))
+        for source, handler in self.extensions.inputs(positions):
+            self.inputs.append(_Input(source, self._decoder_for(source.name), handler))
         for item in self.inputs:
             state = ((restored or {}).get("decoders") or {}).get(item.source.name)
             if state:
@@ -167,10 +164,12 @@ class Service:
             ingest=ingest,
             ingest_timeout_seconds=config.server.request_timeout_seconds,
             stale_seconds=30.0 + config.input.poll_interval_seconds,
+            page=config.page,
+            max_itemset_size=config.engine.max_itemset_size,
+            clock=clock,
         )
         self.server: Any = None
-        for extension in self.extensions:
-            extension.bind(self)
+        self.extensions.bind(self)
 
     # -- set-up ------------------------------------------------------------------------------
 
@@ -205,16 +204,13 @@ class Service:
             )
         try:
             self.pipeline.load_state(meta["pipeline"], arrays)
+            self.history.load_state(meta["history"], arrays)
         except (KeyError, ValueError, TypeError) as exc:
             raise CheckpointError(
                 f"checkpoint in {directory} cannot be restored: {exc}; start with --fresh to "
                 "discard it"
             ) from exc
-        saved = meta.get("extensions") or {}
-        for extension in self.extensions:
-            prefix = f"ext.{extension.name}."
-            own = {k[len(prefix) :]: v for k, v in arrays.items() if k.startswith(prefix)}
-            extension.load_state(saved.get(extension.name), own)
+        self.extensions.load_state(meta, arrays)
         self._last_checkpoint_unix = float(meta.get("written_at", self.clock()))
         logger.info(
             "checkpoint restored from %s: %d transactions seen, resuming at %s",
@@ -337,10 +333,9 @@ class Service:
             self._last_input = now
         elif now - self._last_input >= self.config.input.idle_seconds and caught_up:
             accepted += self._idle()
-        extra = sum(e.turn(caught_up=caught_up) for e in self.extensions)
+        extra = self.extensions.turn(caught_up=caught_up)
         accepted += extra
-        shown = self.api.view.status
-        if any(e.status() != shown.get(e.name) for e in self.extensions):
+        if self.extensions.status_changed(self.api.view.status):
             self._unpublished = True  # e.g. a worker's summaries acknowledged since
         if seen or rejected or extra:
             self.dead_letter.flush()
@@ -395,8 +390,7 @@ class Service:
                 for error in intake.rejected:
                     self.dead_letter.write(error, source=item.source.name)
         # the clock, or an extension's own watermark (a merger's: where its workers are)
-        marks = [m for e in self.extensions if (m := e.idle_watermark()) is not None]
-        now = min(marks) if marks else self.clock()
+        now = self.extensions.idle_watermark(self.clock)
         if self.pipeline.engine.advance_watermark(now) or accepted:
             self._unpublished = True
         return accepted
@@ -414,14 +408,28 @@ class Service:
 
     def _alerts_raised(self, records: list[dict[str, Any]]) -> None:
         self.metrics.observe_alerts(Counter(str(r["kind"]) for r in records))
-        self._publish(self.pipeline.last_close)
+
+    def _closed(self, close: int, window: WindowSnapshot, records: list[dict[str, Any]]) -> None:
+        """After every evaluated pane close: one history point per followed itemset; a close
+        that raised alerts is published at once (with the window it was evaluated on)."""
+        monitor = self.pipeline.monitor
+        active = [s.rule.items for s in monitor.listing.active()] if monitor is not None else []
+        last = self.pipeline.engine.last_closed
+        self.history.record(
+            close,
+            window,
+            active=active,
+            alerted=[tuple(r["items"]) for r in records],
+            pane=-1 if last is None else int(last.index),
+        )
+        if records:
+            self._publish(window)
 
     def _observe_sources(self) -> None:
         """Readiness follows the sources (a bus that is away), and bus sources' totals go to
         the metrics."""
         healths = [(i.source.name, i.source.health()) for i in self.inputs]
-        ready = all(h.connected for _, h in healths) and all(e.ready() for e in self.extensions)
-        self.api.set_sources_ready(ready)
+        self.api.set_sources_ready(all(h.connected for _, h in healths) and self.extensions.ready())
         for name, health in healths:
             if health.bus is not None:
                 self.metrics.observe_source(name, **dataclasses.asdict(health.bus))
@@ -461,13 +469,19 @@ class Service:
             window_max_error=window.max_error,
         )
         monitor = self.pipeline.monitor
-        rules: tuple[Rule, ...] = tuple(monitor.active_rules) if monitor is not None else ()
+        listed = monitor.listing.active() if monitor is not None else []
+        rules: tuple[Rule, ...] = tuple(s.rule for s in listed)
         rules_window = self.pipeline.rules_window
         budget = monitor.budget if monitor is not None else None
         if fresh and rules:
             # the active rules re-measured with the overlay (the list changes at pane closes)
             rules = tuple(measure_rules(window, [r.key for r in rules], config=self.config.rules))
             rules_window = window.window_dict()
+        alerts = tuple(self.pipeline.alert_history)
+        closes = self.pipeline.closes
+        as_of = {"pane_close": closes, "last_seq": int(window.last_seq)}
+        rules_seq = window.last_seq if rules_window is None else rules_window["last_seq"]
+        history = self.history.view
         status = {
             "version": __version__,
             "window": window.window_dict(),
@@ -488,11 +502,38 @@ class Service:
             "overlay": fresh,
             "sources": [self._source_status(i.source) for i in self.inputs],
             "alerts_budget": None if budget is None else budget.as_dict(),
+            "as_of": as_of,
+            "fill": self._fill(window, stats.live_panes, stats.window_panes),
+            "min_support": self.config.rules.min_support,
+            "checkpoints": bool(self.config.checkpoint.checkpoint_dir),
+            "sinks": {
+                name: {"sent": st.sent, "failed": st.failed, "dropped": st.dropped}
+                for name, st in self.sinks.stats_by_sink().items()
+            },
+            "history": history.summary(),
         }
-        for extension in self.extensions:
-            status[extension.name] = extension.status()
-        alerts = tuple(self.pipeline.alert_history)
-        return View(window, stats, rules, alerts, status, rules_window, key)
+        self.extensions.add_status(status)
+        return View(
+            window,
+            stats,
+            rules,
+            alerts,
+            status,
+            rules_window,
+            key,
+            as_of=as_of,
+            history=history,
+            rule_notes=rule_notes(listed, alerts),
+            rules_version=f"{closes}.{rules_seq}",
+        )
+
+    def _fill(self, window: WindowSnapshot, live_panes: int, window_panes: int) -> float:
+        """How full the window is: transactions over ``engine.window_size`` (count-based), or
+        live panes over the panes of a full window (time-based); at most 1."""
+        engine = self.config.engine
+        if engine.window_seconds is None:
+            return min(1.0, window.transactions / engine.window_size)
+        return min(1.0, live_panes / max(1, window_panes))
 
     @staticmethod
     def _source_status(source: Source) -> dict[str, Any]:
@@ -537,26 +578,25 @@ class Service:
         directory = self.config.checkpoint.checkpoint_dir
         if not directory:
             return True
-        for extension in self.extensions:
-            if not extension.before_checkpoint():
-                # e.g. a worker's pane summaries not yet durable on the bus: its input must
-                # not be acknowledged, so no checkpoint now; the next interval tries again
-                logger.warning(
-                    "checkpoint to %s put off: %s is not ready", directory, extension.name
-                )
-                self.metrics.observe_checkpoint(False, self.clock())
-                self._last_checkpoint_mono = time.monotonic()
-                return False
+        waiting = self.extensions.not_ready_for_checkpoint()
+        if waiting is not None:
+            # e.g. a worker's pane summaries not yet durable on the bus: its input must not be
+            # acknowledged, so no checkpoint now; the next interval tries again
+            logger.warning("checkpoint to %s put off: %s is not ready", directory, waiting)
+            self.metrics.observe_checkpoint(False, self.clock())
+            self._last_checkpoint_mono = time.monotonic()
+            return False
         pipeline_meta, arrays = self.pipeline.state()
+        history_meta, history_arrays = self.history.state()
+        arrays.update(history_arrays)
         now = self.clock()
         positions = {i.source.name: i.source.position() for i in self.inputs}
-        extension_meta = {}
-        for extension in self.extensions:
-            extension_meta[extension.name], own = extension.state()
-            arrays.update({f"ext.{extension.name}.{k}": v for k, v in own.items()})
+        extension_meta, extension_arrays = self.extensions.state()
+        arrays.update(extension_arrays)
         meta = {
             "state_version": STATE_VERSION,
             "pipeline": pipeline_meta,
+            "history": history_meta,
             "decoders": {i.source.name: i.decoder.state_dict() for i in self.inputs},
             "sources": positions,
             "written_at": now,
@@ -612,8 +652,7 @@ class Service:
         self.dead_letter.close()
         for item in self.inputs:
             item.source.close()
-        for extension in self.extensions:
-            extension.close()
+        self.extensions.close()
         logger.info("stopped after %d transactions", self.pipeline.engine.transactions_seen)
         return saved
 

@@ -16,7 +16,10 @@ Endpoints
 ``/v1/rules``              GET     rules: ``sort`` (lift|confidence|support), ``limit``,
                                    ``min_confidence``, ``min_lift``, ``min_support``
 ``/v1/alerts``             GET     recent alerts: ``since`` (alert sequence), ``limit``
+``/v1/history``            GET     one itemset's support per pane close: ``items`` (once per
+                                   item), ``since`` (pane close)
 ``/v1/transactions``       POST    ingest a body of transactions (only with HTTP ingest on)
+``/``, ``/page/*``         GET     the page (:mod:`.page`; no token needed, it holds no data)
 =========================  ======  ==========================================================
 
 ``HEAD`` is answered like ``GET``; the body is left out. Every error is JSON
@@ -54,6 +57,7 @@ from typing import Any, Protocol
 from streamcount.errors import InputError
 from streamcount.service.access import bearer_matches
 from streamcount.service.metrics import ITEM_TEXT_METRICS
+from streamcount.service.page import PAGE_FILES, page_file
 
 __all__ = [
     "INGEST_TYPES",
@@ -113,9 +117,22 @@ class ApiBackend(Protocol):
         min_confidence: float | None,
         min_lift: float | None,
         min_support: float | None,
-    ) -> dict[str, Any]: ...
+        since: str | None = None,
+    ) -> dict[str, Any]:
+        """The active rules; with ``since`` equal to their ``version``, only that they are
+        unchanged."""
+        ...
 
     def alerts(self, since: int | None, limit: int) -> dict[str, Any]: ...
+
+    def history(self, items: list[str], since: int | None) -> dict[str, Any]:
+        """One itemset's history after pane close ``since``; :class:`InputError` for a bad
+        itemset."""
+        ...
+
+    def page_enabled(self) -> bool:
+        """Whether ``GET /`` serves the page (``page.enabled``)."""
+        ...
 
     def ingest_enabled(self) -> bool:
         """Whether ``POST /v1/transactions`` exists (``input.http_ingest``)."""
@@ -195,6 +212,10 @@ class _Query:
         if value < low:
             raise _BadParameter(name, raw, f"must be a whole number >= {low}")
         return value
+
+    def text(self, name: str) -> str | None:
+        raw = self._values.get(name)
+        return None if raw is None or raw == "" else raw
 
     def limit(self) -> int:
         value = self.integer("limit", low=1)
@@ -282,12 +303,14 @@ def _itemsets(call: _Call) -> Response:
 
 
 def _rules(call: _Call) -> Response:
-    q = _Query(call.query, ("sort", "limit", "min_confidence", "min_lift", "min_support"))
+    q = _Query(call.query, ("sort", "limit", "min_confidence", "min_lift", "min_support", "since"))
     sort = q.choice("sort", RULE_SORTS)
     min_confidence = q.number("min_confidence", low=0.0, high=1.0, text=_FRACTION)
     min_lift = q.number("min_lift", low=0.0, text=">= 0")
     min_support = q.number("min_support", low=0.0, high=1.0, text=_FRACTION)
-    payload = call.backend.rules(sort, q.limit(), min_confidence, min_lift, min_support)
+    since = q.text("since")
+    extra = {} if since is None else {"since": since}
+    payload = call.backend.rules(sort, q.limit(), min_confidence, min_lift, min_support, **extra)
     return _json_response(200, payload)
 
 
@@ -295,6 +318,31 @@ def _alerts(call: _Call) -> Response:
     q = _Query(call.query, ("since", "limit"))
     since = q.integer("since", low=0)
     return _json_response(200, call.backend.alerts(since, q.limit()))
+
+
+def _history(call: _Call) -> Response:
+    # items may repeat (one per item: any name, commas included, is one value)
+    items = list(call.query.get("items", []))
+    q = _Query({k: v for k, v in call.query.items() if k != "items"}, ("since",))
+    since = q.integer("since", low=0)
+    if not items:
+        raise _BadParameter("items", "", "required: one items= parameter per item of the itemset")
+    try:
+        return _json_response(200, call.backend.history(items, since))
+    except InputError as exc:
+        return _error(400, "bad_parameter", str(exc))
+
+
+def _page(path: str) -> _Handler:
+    """The handler of one page file (the query string is ignored)."""
+
+    def handler(call: _Call) -> Response:
+        if not call.backend.page_enabled():
+            return _error(404, "not_found", "the page is off (page.enabled: false)")
+        content, headers = page_file(path)
+        return Response(200, headers, content)
+
+    return handler
 
 
 def _unsupported(message: str) -> Response:
@@ -380,7 +428,10 @@ _ROUTES: dict[str, _Route] = {
     "/v1/itemsets": _Route(_GET, _itemsets),
     "/v1/rules": _Route(_GET, _rules),
     "/v1/alerts": _Route(_GET, _alerts),
+    "/v1/history": _Route(_GET, _history),
     "/v1/transactions": _Route(("POST",), _ingest),
+    # the page's files hold no data: they load without the token, then ask for it
+    **{path: _Route(_GET, _page(path), public=True) for path in PAGE_FILES},
 }
 
 

@@ -537,7 +537,7 @@ class PullClient:
             return
         self._outstanding -= 1
         if self._outstanding == self._half:
-            self._room.set()  # type: ignore[union-attr]
+            self._wake()
         t = reply.split(".")
         o = 0 if len(t) == 9 else 2  # $JS.ACK.<domain>.<account hash>. in the newer form
         dseq = int(t[6 + o])
@@ -545,7 +545,7 @@ class PullClient:
             if not self._rewind:
                 logger.debug("%s: delivery %d, expected %d", self.name, dseq, self._next_dseq)
             self._rewind = True
-            self._room.set()  # type: ignore[union-attr]
+            self._wake()
             return
         self._next_dseq = dseq + 1
         self._last_reply = reply
@@ -569,6 +569,12 @@ class PullClient:
         t = reply.split(".")
         return int(t[8 if len(t) == 9 else 10])
 
+    def _wake(self) -> None:
+        """Tell the requester there is room for another pull request (set up with the
+        connection, before any message can arrive)."""
+        assert self._room is not None
+        self._room.set()
+
     def _status(self, headers: dict[str, str]) -> None:
         self._activity = time.monotonic()
         code = headers.get("Status", "")
@@ -584,7 +590,7 @@ class PullClient:
             logger.debug("%s: pull request ended: 409 %s", self.name, description)
             if "deleted" in description.lower():
                 self._rewind = True
-        self._room.set()  # type: ignore[union-attr]
+        self._wake()
 
     async def _publish(self, items: list[tuple[str, bytes]]) -> None:
         nc = self._nc
