@@ -552,7 +552,9 @@ def test_input_is_acknowledged_only_after_its_panes_are_on_the_bus(
     published = [mid for _, mid, _ in _stream_headers(nats.url, "PANES")]
     panes = sorted({int(mid.split(":")[1]) for mid in published})
     first = int(T0 // PANE)
-    assert panes == list(range(first, _last_pane(orders) + 1))
+    # every pane of the feed; maybe an empty one just before it (the first order's watermark)
+    assert [p for p in panes if p >= first] == list(range(first, _last_pane(orders) + 1))
+    assert all(p >= first - 1 for p in panes)
 
 
 @pytest.mark.parametrize("epsilon", [0.0, 0.01], ids=["exact", "lossy"])
