@@ -1,4 +1,4 @@
-"""The ``streamcount`` command: replay, run, demo, generate, check-config.
+"""The ``streamcount`` command: replay, run, merge, demo, generate, check-config.
 
 Every option that changes a setting is also a config key with the same name in snake_case
 (``--min-support`` is ``rules.min_support``); options override the file given with
@@ -161,6 +161,22 @@ def _cmd_run(args: argparse.Namespace) -> int:
     return Service(config, fresh=args.fresh).run()
 
 
+def _cmd_merge(args: argparse.Namespace) -> int:
+    """``streamcount merge``: the cluster's merger (``cluster.role: merger``), run like ``run``."""
+    from streamcount.service.loop import Service
+
+    extra: dict[str, object] = {"cluster.role": "merger"}
+    if args.listen is not None:
+        extra["server.listen"] = args.listen
+    if args.checkpoint_dir is not None:
+        extra["checkpoint.checkpoint_dir"] = args.checkpoint_dir
+    if args.accept_gap:
+        extra["input.nats.accept_gap"] = True
+    config = config_from_args(args, extra)
+    setup_logging(config.logging.level, config.logging.format)
+    return Service(config, fresh=args.fresh).run()
+
+
 def _cmd_demo(args: argparse.Namespace) -> int:
     from streamcount.demo.run import demo_main
 
@@ -240,6 +256,28 @@ def build_parser() -> argparse.ArgumentParser:
     )
     _add_setting_options(run)
     run.set_defaults(func=_cmd_run)
+
+    merge = sub.add_parser(
+        "merge",
+        help="a cluster's merger: one window, rules and alerts from the workers' pane summaries",
+        description="Merge the pane summaries that cluster workers (cluster.role: worker) "
+        "publish to NATS JetStream into one window, and run rules, alerts, sinks, metrics and "
+        "the HTTP API on it: `run` with cluster.role: merger (README, 'When one process is not "
+        "enough').",
+    )
+    merge.add_argument("--listen", metavar="HOST:PORT", help="HTTP listener (server.listen)")
+    merge.add_argument("--checkpoint-dir", metavar="DIR", help="checkpoint.checkpoint_dir")
+    merge.add_argument(
+        "--fresh", action="store_true", help="ignore existing checkpoints and start over"
+    )
+    merge.add_argument(
+        "--accept-gap",
+        action="store_true",
+        help="resume even though the summaries stream's retention removed messages after the "
+        "checkpoint (input.nats.accept_gap)",
+    )
+    _add_setting_options(merge)
+    merge.set_defaults(func=_cmd_merge)
 
     demo = sub.add_parser("demo", help="an invented shop's live feed, with alerts as they fire")
     demo.add_argument("--duration", type=float, default=45.0, help="seconds (default 45)")

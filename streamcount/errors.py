@@ -45,6 +45,18 @@ REASONS: dict[str, str] = {
     "empty": "a transaction with no items (a blank basket line is not a record)",
     "too_late": "an event time whose pane has already closed",
     "too_early": "an event time more than input.max_future_seconds ahead of the clock",
+    "bad_summary": (
+        "a pane summary (cluster merger) that is damaged, incomplete or inconsistent with its "
+        "own header"
+    ),
+    "foreign_summary": (
+        "a pane summary made with other counting settings (its fingerprint differs from the "
+        "merger's) or by a worker not in cluster.workers"
+    ),
+    "late_summary": (
+        "a pane summary that arrived after the merger closed its pane without it "
+        "(cluster.pane_timeout_seconds); never added"
+    ),
     "control_chars": (
         "an item name or order id holding a control character (C0 except tab, DEL, C1), a "
         "line or paragraph separator (U+2028, U+2029) or a bidirectional mark, embedding, "

@@ -15,13 +15,14 @@ from __future__ import annotations
 
 import logging
 from collections import Counter, deque
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 
 from streamcount.alerts.monitor import RuleMonitor
+from streamcount.alerts.record import Alert
 from streamcount.alerts.sinks import Sink
 from streamcount.catalogue.state import (
     CatalogueState,
@@ -31,11 +32,12 @@ from streamcount.catalogue.state import (
 )
 from streamcount.config.settings import Config
 from streamcount.engine.engine import Engine
+from streamcount.engine.pane import Pane
 from streamcount.engine.snapshot import WindowSnapshot
 from streamcount.errors import ParseError
 from streamcount.intake.records import Decoded
 
-__all__ = ["Intake", "Pipeline"]
+__all__ = ["AlertAmender", "Intake", "PaneListener", "Pipeline"]
 
 logger = logging.getLogger(__name__)
 
@@ -43,6 +45,12 @@ logger = logging.getLogger(__name__)
 _CHECKPOINT_ALERTS = 100
 
 AlertListener = Callable[[list[dict[str, Any]]], None]
+#: called at every pane close, alerts on or off: (the closed pane, the engine's item names by
+#: id at that moment; the pane's ids index them)
+PaneListener = Callable[[Pane, Sequence[str]], None]
+#: given the alerts a pane close raised (before they are recorded or sent), returns them,
+#: amended (e.g. the merger names the workers missing from the panes they rest on)
+AlertAmender = Callable[[list[Alert]], list[Alert]]
 #: called at every evaluated pane close: (the pane-close number, the window evaluated, the
 #: alert records raised there)
 CloseListener = Callable[[int, WindowSnapshot, list[dict[str, Any]]], None]
@@ -123,6 +131,8 @@ class Pipeline:
         self.closes = 0
         self._listeners: list[AlertListener] = []
         self._close_listeners: list[CloseListener] = []
+        self._pane_listeners: list[PaneListener] = []
+        self._amenders: list[AlertAmender] = []
 
     # -- catalogue ----------------------------------------------------------------------------
 
@@ -159,6 +169,17 @@ class Pipeline:
         """Call ``listener`` after every evaluated pane close (history, views), whether it
         raised alerts or not; the monitor's active rules are current then."""
         self._close_listeners.append(listener)
+
+    def on_pane(self, listener: PaneListener) -> None:
+        """Call ``listener`` with every closed pane and the item names its ids index, right
+        after it closed and before rules and alerts are evaluated (a cluster worker publishes
+        its summary there); called with alerts off too."""
+        self._pane_listeners.append(listener)
+
+    def amend_alerts(self, amender: AlertAmender) -> None:
+        """Pass the alerts of every pane close through ``amender`` before they are recorded
+        and sent (a merger adds the workers missing from the panes they rest on)."""
+        self._amenders.append(amender)
 
     def add(self, decoded: Decoded) -> Intake:
         """Count decoded transactions; returns what was accepted and everything set aside."""
@@ -228,9 +249,14 @@ class Pipeline:
     # -- pane close ---------------------------------------------------------------------------
 
     def _on_pane_closed(self, engine: Engine) -> None:
+        if self._pane_listeners and engine.last_closed is not None:
+            for pane_listener in self._pane_listeners:
+                pane_listener(engine.last_closed, engine.vocabulary.names)
         if self.monitor is None:
             return
         fired, window = self.monitor.evaluate_close(engine)
+        for amender in self._amenders:
+            fired = amender(fired)
         self.last_close = window
         self.closes += 1
         records = [a.as_dict() for a in fired]

@@ -72,6 +72,12 @@ class Evidence:
         The false-alert budget in force: the number of tests the pane's budget was split over,
         the per-test false-alarm level ``exp(-threshold)``, and the budget (expected false
         alerts per million transactions on a stationary feed).
+    incomplete_panes:
+        Only from a merger (``cluster.role: merger``): runs ``(first, last, missing workers)``
+        of consecutive panes, from the earlier of the change pane and the window's first pane
+        through the alert's pane, that were closed without those workers' summaries (their
+        orders there are not counted); empty when every pane was complete, and then left out
+        of the record.
     """
 
     direction: str
@@ -87,9 +93,10 @@ class Evidence:
     tests: int
     level: float
     budget_per_million: float
+    incomplete_panes: tuple[tuple[int, int, tuple[str, ...]], ...] = ()
 
     def as_dict(self) -> dict[str, object]:
-        return {
+        out: dict[str, object] = {
             "direction": self.direction,
             "reference_rate": self.reference_rate.as_dict(),
             "recent_rate": self.recent_rate.as_dict(),
@@ -104,6 +111,12 @@ class Evidence:
             "level": float(self.level),
             "budget_per_million": float(self.budget_per_million),
         }
+        if self.incomplete_panes:
+            out["incomplete_panes"] = [
+                {"first": int(first), "last": int(last), "missing_workers": list(workers)}
+                for first, last, workers in self.incomplete_panes
+            ]
+        return out
 
 
 @dataclass(frozen=True, slots=True)

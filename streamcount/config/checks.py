@@ -165,6 +165,9 @@ def _rename_problem(rules: tuple[str, ...]) -> str | None:
     return None
 
 
+#: a worker's name: one subject token, and part of each summary message's id
+_WORKER_NAME = re.compile(r"[A-Za-z0-9_-]{1,64}\Z")
+
 KEY_RULES: dict[str, tuple[_Check, ...]] = {
     "input.source": (
         (
@@ -335,6 +338,41 @@ KEY_RULES: dict[str, tuple[_Check, ...]] = {
             f"must be between 0 and {_MAX_TOP_RULES} (each rule adds three series)",
         ),
     ),
+    "cluster.role": (_one_of("worker", "merger"),),
+    "cluster.worker": (
+        (
+            lambda v: bool(_WORKER_NAME.match(v)),
+            "must be a worker name of 1 to 64 letters, digits, '_' or '-' (it is a subject token)",
+        ),
+    ),
+    "cluster.workers": (
+        (
+            lambda v: all(_WORKER_NAME.match(name) for name in v),
+            "each must be a worker name of 1 to 64 letters, digits, '_' or '-'",
+        ),
+    ),
+    "cluster.stream": (
+        (
+            lambda v: bool(_NATS_NAME.match(v)),
+            "must be a stream name: no spaces, dots, '*', '>' or slashes",
+        ),
+    ),
+    "cluster.subject": (
+        (
+            lambda v: bool(_NATS_SUBJECT.match(v)) and "*" not in v and ">" not in v,
+            "must be a subject to publish to, such as panes.{worker} (tokens separated by dots, "
+            "no wildcards; {worker} is replaced by the worker's name)",
+        ),
+    ),
+    "cluster.durable": (
+        (
+            lambda v: bool(_NATS_NAME.match(v)),
+            "must be a consumer name: no spaces, dots, '*', '>' or slashes",
+        ),
+    ),
+    "cluster.pane_timeout_seconds": (_above(0),),
+    "cluster.publish_timeout_seconds": (_above(0),),
+    "cluster.max_message_bytes": (_at_least(4096),),
     "checkpoint.checkpoint_dir": (_NON_EMPTY,),
     "checkpoint.checkpoint_interval_seconds": (_above(0),),
     "logging.level": (_one_of(*_LOG_LEVELS),),
@@ -459,6 +497,7 @@ def cross_checks(cfg: Config) -> None:
         )
     _server_checks(cfg)
     _nats_cross_checks(cfg)
+    _cluster_checks(cfg)
     if "http" in cfg.input.source and cfg.server.listen is None:
         _fail(
             "input.source",
@@ -513,6 +552,27 @@ def _nats_cross_checks(cfg: Config) -> None:
             "input.nats.token_env",
             nats.token_env,
             "set either input.nats.creds_file or input.nats.token_env, not both",
+        )
+
+
+def _cluster_checks(cfg: Config) -> None:
+    cluster = cfg.cluster
+    if cluster.role is None:
+        return
+    if cfg.engine.window_seconds is None:
+        _fail(
+            "cluster.role",
+            cluster.role,
+            "needs a time-based window (engine.window_seconds and engine.pane_seconds), so "
+            "the panes of every worker line up on the orders' own timestamps",
+        )
+    if cluster.role == "worker" and cluster.worker is None:
+        _fail("cluster.worker", None, "must name this worker (cluster.role is worker)")
+    if cluster.role == "merger" and not cluster.workers:
+        _fail(
+            "cluster.workers",
+            None,
+            "must list the workers whose summaries the merger expects (cluster.role is merger)",
         )
 
 

@@ -56,6 +56,13 @@ def describe(config: Config) -> str:
     """One line for the start-up log: source, window, derived error bound, thresholds, outputs."""
     inp, eng, rules = config.input, config.engine, config.rules
     source = " + ".join(f"file {inp.path}" if name == "file" else name for name in inp.source)
+    cluster = config.cluster
+    if cluster.role == "merger":
+        workers = ", ".join(cluster.workers or ())
+        source = f"pane summaries of {workers} from stream {cluster.stream}"
+    elif cluster.role == "worker":
+        subject = cluster.subject.replace("{worker}", cluster.worker or "")
+        source += f", as cluster worker {cluster.worker} publishing panes to {subject}"
     if eng.window_seconds is not None and eng.pane_seconds is not None:
         window = (
             f"window {eng.window_seconds:g}s in {window_panes(config)} panes "

@@ -20,6 +20,7 @@ __all__ = [
     "MAX_TIMESTAMP",
     "AlertsConfig",
     "CheckpointConfig",
+    "ClusterConfig",
     "Config",
     "CsvConfig",
     "EngineConfig",
@@ -319,6 +320,36 @@ class CheckpointConfig:
 
 
 @dataclass(frozen=True, slots=True)
+class ClusterConfig:
+    """Scale-out over NATS JetStream: workers count partitions of one feed and publish every
+    closed pane's summary; a merger merges them into one window (README, "When one process is
+    not enough"). Both connect with ``input.nats``'s servers and credentials."""
+
+    #: null: one process counts the whole feed; worker: count a partition and publish each
+    #: closed pane's summary; merger: merge the workers' summaries (``streamcount merge``)
+    role: str | None = None
+    #: this worker's name (role worker): letters, digits, '_' and '-'
+    worker: str | None = None
+    #: the workers whose summaries the merger expects (role merger)
+    workers: tuple[str, ...] | None = None
+    #: the JetStream stream holding the summaries (file storage; a worker creates it if missing)
+    stream: str = "PANES"
+    #: subject of a worker's summaries, ``{worker}`` replaced by its name; the merger reads
+    #: them all (``{worker}`` as ``*``)
+    subject: str = "panes.{worker}"
+    #: the merger's durable pull consumer on the summaries stream
+    durable: str = "streamcount-merger"
+    #: merger: a pane still missing some worker's summary this many seconds (wall clock) after
+    #: its first summary arrived is closed without it (the missing workers are named)
+    pane_timeout_seconds: float = 60.0
+    #: worker: longest wait for the stream to acknowledge published summaries before a
+    #: checkpoint; past it the checkpoint is put off (input is acknowledged only after)
+    publish_timeout_seconds: float = 30.0
+    #: largest message a summary chunk may be, in bytes; null: the server's max_payload
+    max_message_bytes: int | None = None
+
+
+@dataclass(frozen=True, slots=True)
 class LoggingConfig:
     level: str = "INFO"
     format: str = "text"  # text | json
@@ -359,5 +390,6 @@ class Config:
     metrics: MetricsConfig = field(default_factory=MetricsConfig)
     checkpoint: CheckpointConfig = field(default_factory=CheckpointConfig)
     logging: LoggingConfig = field(default_factory=LoggingConfig)
+    cluster: ClusterConfig = field(default_factory=ClusterConfig)
     history: HistoryConfig = field(default_factory=HistoryConfig)
     page: PageConfig = field(default_factory=PageConfig)

@@ -35,6 +35,7 @@ from streamcount.config.load import config_from_mapping
 from streamcount.config.settings import EngineConfig
 from streamcount.engine.counters import Level, LossySummary, bucket_width
 from streamcount.engine.guards import Rejection, size_guards, time_guards
+from streamcount.engine.merged import MergedSummary
 from streamcount.engine.pane import Pane
 from streamcount.engine.rows import renumber, select_rows, sort_dedupe, take_rows
 from streamcount.engine.snapshot import EngineStatistics, WindowSnapshot
@@ -427,6 +428,81 @@ class Engine:
         self.items.reset(items)
         self.items.sync(self.vocabulary)
 
+    def add_merged_pane(
+        self,
+        index: int,
+        levels: Sequence[Level],
+        names: Sequence[str],
+        transactions: int,
+        *,
+        absent_bound: int,
+        parts: int = 1,
+        min_ts: float | None = None,
+        max_ts: float | None = None,
+    ) -> AddResult:
+        """Take pane ``index`` of a time-based window, merged from the summaries of ``parts``
+        parts of a feed counted elsewhere (:func:`streamcount.engine.merged.merge_parts`:
+        ``levels``, one per itemset size, item ids indexing ``names``), and close it as
+        :meth:`add` closes a pane: ``on_pane_closed`` runs, then the vocabulary may be
+        compacted. The names are interned in the given order and rows renumbered to this
+        engine's ids.
+
+        The pane keeps the parts' summed ``absent_bound`` (:class:`MergedSummary`), so the
+        window's ``max_error`` is the sum of every part's bound. Its transactions get the next
+        sequence numbers, in one run. A pane of no transactions (every part empty) creates
+        nothing and is not evaluated, as in one engine, where an index without transactions
+        never becomes a pane: the panes up to ``index`` count as closed, and the window's end
+        stays at the newest pane with transactions until :meth:`advance_watermark` moves it (a
+        quiet feed).
+        ``min_ts`` and ``max_ts`` are the earliest and latest event times the parts counted.
+        Panes must come in index order.
+
+        Raises
+        ------
+        ValueError
+            A count-based window, a pane at or below the last closed one, or levels that do
+            not fit the settings.
+        """
+        if not self.time_based:
+            raise ValueError("add_merged_pane: time-based windows only (count-based: see add)")
+        if index <= self.window.closed_through:
+            raise ValueError(
+                f"add_merged_pane: pane {index} is at or below the last closed pane "
+                f"({self.window.closed_through}); merged panes come in index order"
+            )
+        if len(levels) != self.max_itemset_size:
+            raise ValueError(
+                f"add_merged_pane: {len(levels)} levels for max_itemset_size="
+                f"{self.max_itemset_size}"
+            )
+        n = int(transactions)
+        if n == 0:
+            self.window.closed_through = index
+            return AddResult(0, last_seq=self.next_seq - 1)
+        ids = self.vocabulary.encode_flat(names, len(names)).astype(np.int64)
+        pane = self.window.pane(index)
+        pane.summary = MergedSummary(
+            self.epsilon,
+            self.max_itemset_size,
+            n,
+            renumber(levels, ids),
+            absent=absent_bound,
+            parts=parts,
+        )
+        pane.first_seq, pane.last_seq = self.next_seq, self.next_seq + n - 1
+        pane.min_ts, pane.max_ts = min_ts, max_ts
+        self.next_seq += n
+        self.transactions_seen += n
+        if max_ts is not None:
+            prev = self.max_event_ts
+            self.max_event_ts = max_ts if prev is None else max(prev, max_ts)
+        if index > self.window.newest_index:
+            self.window.advance_to(index)
+        self._close(pane)
+        if self.auto_compact:
+            self.compact_vocabulary()
+        return AddResult(n, (), 1, self.next_seq - 1, {})
+
     def _route_count(
         self, flat: np.ndarray, lengths: np.ndarray, seq: np.ndarray, ts: np.ndarray
     ) -> int:
@@ -584,12 +660,14 @@ class Engine:
         if not self.time_based or not math.isfinite(now):
             return 0
         limit = math.floor((now - self.config.allowed_lateness_seconds) / self.pane_seconds) - 1
-        moved = limit - self.window.closed_through
+        # panes already closed up to ``limit`` (by events, or a merger's empty panes) still
+        # leave the window's end behind it until the watermark slides it there
+        moved = max(limit - self.window.closed_through, limit - self.window.newest_index)
         if moved <= 0:
             return 0
         for pane in [p for p in self.window.open_panes() if p.index <= limit]:
             self._close(pane)
-        self.window.closed_through = limit
+        self.window.closed_through = max(self.window.closed_through, limit)
         self.window.advance_to(limit)
         self.compact_vocabulary()
         return moved

@@ -16,6 +16,7 @@ import numpy as np
 
 from streamcount.engine.counters import LossySummary, Summary
 from streamcount.engine.keys import PairSet
+from streamcount.engine.merged import MergedSummary
 
 __all__ = ["Pane"]
 
@@ -183,7 +184,7 @@ class Pane:
     # -- persistence ------------------------------------------------------------------------
 
     def meta(self) -> dict[str, object]:
-        return {
+        out: dict[str, object] = {
             "index": self.index,
             "n": self.summary.n,
             "closed": self.closed,
@@ -192,6 +193,10 @@ class Pane:
             "min_ts": self.min_ts,
             "max_ts": self.max_ts,
         }
+        summary = self.summary
+        if isinstance(summary, MergedSummary):  # its bound is not ceil(n / w): keep it
+            out["merged"] = {"absent": summary.absent, "parts": summary.parts}
+        return out
 
     def to_arrays(self, prefix: str) -> dict[str, np.ndarray]:
         out = self.summary.to_arrays(prefix)
@@ -216,9 +221,21 @@ class Pane:
         excluded_pairs: PairSet | None = None,
     ) -> Pane:
         pane = cls(int(meta["index"]), epsilon, max_itemset_size, excluded_pairs)
-        pane.summary = LossySummary.from_arrays(
-            epsilon, max_itemset_size, int(meta["n"]), arrays, prefix, excluded_pairs
-        )
+        merged = meta.get("merged")
+        if merged is not None:
+            pane.summary = MergedSummary.from_arrays(
+                epsilon,
+                max_itemset_size,
+                int(meta["n"]),
+                arrays,
+                prefix,
+                absent=int(merged["absent"]),
+                parts=int(merged["parts"]),
+            )
+        else:
+            pane.summary = LossySummary.from_arrays(
+                epsilon, max_itemset_size, int(meta["n"]), arrays, prefix, excluded_pairs
+            )
         pane.closed = bool(meta["closed"])
         pane.first_seq = int(meta["first_seq"])
         pane.last_seq = int(meta["last_seq"])

@@ -19,7 +19,7 @@ import signal
 import threading
 import time
 from collections import Counter
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, replace
 from typing import Any
 
@@ -44,6 +44,7 @@ from streamcount.pipeline import Pipeline
 from streamcount.rules.derive import Rule, measure_rules
 from streamcount.service.api import ServiceApi, View, rule_notes
 from streamcount.service.checkpoint import load_latest_checkpoint, save_checkpoint
+from streamcount.service.extension import BatchHandler, Extensions, ServiceExtension
 from streamcount.service.history import HistoryStore
 from streamcount.service.metrics import Metrics, RuleSample, ServiceState
 
@@ -66,10 +67,11 @@ _OVERLAY_SECONDS = 1.0
 
 @dataclass(slots=True)
 class _Input:
-    """One source with its own decoder."""
+    """One source with its own decoder (or an extension's handler of its batches)."""
 
     source: Source
     decoder: Decoder
+    handler: BatchHandler | None = None
 
 
 class Service:
@@ -90,6 +92,9 @@ class Service:
     clock:
         Wall time (event lag, the future-time guard, checkpoint stamps); the only place it
         is read.
+    extensions:
+        What a role adds (:class:`~streamcount.service.extension.ServiceExtension`); by
+        default the one ``cluster.role`` names (a cluster worker or merger), else none.
     """
 
     def __init__(
@@ -101,6 +106,7 @@ class Service:
         sources: list[Source] | None = None,
         extra_sinks: tuple[Sink, ...] = (),
         clock: Callable[[], float] = time.time,
+        extensions: Sequence[ServiceExtension] | None = None,
     ) -> None:
         self.config = config
         self.clock = clock
@@ -116,15 +122,27 @@ class Service:
         self._counted_at = time.monotonic()  # when the counted panes last changed
         self.turns = 0
 
+        self.extensions = (
+            Extensions(extensions) if extensions is not None else Extensions.for_role(config)
+        )
         self.sinks = SinkFanout((*build_sinks(config.sinks).sinks, *extra_sinks))
-        self.pipeline = Pipeline(config, sinks=self.sinks, clock=clock)
+        # a cluster worker counts one partition: rules and alerts belong to the merged window
+        alerts = config.cluster.role != "worker"
+        self.pipeline = Pipeline(config, sinks=self.sinks, clock=clock, alerts=alerts)
         self.pipeline.on_alerts(self._alerts_raised)
         self.history = HistoryStore(config.history.max_points, config.history.alerted_closes)
         self.pipeline.on_close(self._closed)
         restored = None if fresh else self._restore()
         positions = (restored or {}).get("sources") or {}
-        built = sources if sources is not None else build_sources(config, positions)
+        if sources is not None:
+            built = sources
+        elif config.cluster.role == "merger":
+            built = []  # a merger reads pane summaries (its extension's source), no orders
+        else:
+            built = build_sources(config, positions)
         self.inputs = [_Input(s, self._decoder_for(s.name)) for s in built]
+        for source, handler in self.extensions.inputs(positions):
+            self.inputs.append(_Input(source, self._decoder_for(source.name), handler))
         for item in self.inputs:
             state = ((restored or {}).get("decoders") or {}).get(item.source.name)
             if state:
@@ -151,6 +169,7 @@ class Service:
             clock=clock,
         )
         self.server: Any = None
+        self.extensions.bind(self)
 
     # -- set-up ------------------------------------------------------------------------------
 
@@ -191,6 +210,7 @@ class Service:
                 f"checkpoint in {directory} cannot be restored: {exc}; start with --fresh to "
                 "discard it"
             ) from exc
+        self.extensions.load_state(meta, arrays)
         self._last_checkpoint_unix = float(meta.get("written_at", self.clock()))
         logger.info(
             "checkpoint restored from %s: %d transactions seen, resuming at %s",
@@ -323,13 +343,16 @@ class Service:
         if not seen and len(self.inputs) > 1 and timeout > 0:
             self._stop.wait(timeout)
         now = time.monotonic()
+        caught_up = all(i.source.caught_up for i in self.inputs)
         if seen:
             self._last_input = now
-        elif now - self._last_input >= self.config.input.idle_seconds and all(
-            i.source.caught_up for i in self.inputs
-        ):
+        elif now - self._last_input >= self.config.input.idle_seconds and caught_up:
             accepted += self._idle()
-        if seen or rejected:
+        extra = self.extensions.turn(caught_up=caught_up)
+        accepted += extra
+        if self.extensions.status_changed(self.api.view.status):
+            self._unpublished = True  # e.g. a worker's summaries acknowledged since
+        if seen or rejected or extra:
             self.dead_letter.flush()
             self.metrics.observe_dead_letters(self.dead_letter.failed_writes)
             self.metrics.observe_batch(accepted, rejected, time.perf_counter() - started)
@@ -353,6 +376,8 @@ class Service:
     def _count(self, item: _Input, batch: RecordBatch) -> tuple[int, Counter[str]]:
         """Decode one batch, release the orders it closes, count; dead-letter what is set
         aside; tell the batch's sender (HTTP ingest) what became of it."""
+        if item.handler is not None:  # an extension's own records (e.g. pane summaries)
+            return item.handler(batch)
         decoded = item.decoder.decode(batch)
         if decoded.ts is not None:
             latest = max((t for t in decoded.ts if t is not None), default=None)
@@ -379,7 +404,9 @@ class Service:
                 accepted += intake.accepted
                 for error in intake.rejected:
                     self.dead_letter.write(error, source=item.source.name)
-        if self.pipeline.engine.advance_watermark(self.clock()) or accepted:
+        # the clock, or an extension's own watermark (a merger's: where its workers are)
+        now = self.extensions.idle_watermark(self.clock)
+        if self.pipeline.engine.advance_watermark(now) or accepted:
             self._unpublished = True
         return accepted
 
@@ -417,7 +444,7 @@ class Service:
         """Readiness follows the sources (a bus that is away), and bus sources' totals go to
         the metrics."""
         healths = [(i.source.name, i.source.health()) for i in self.inputs]
-        self.api.set_sources_ready(all(h.connected for _, h in healths))
+        self.api.set_sources_ready(all(h.connected for _, h in healths) and self.extensions.ready())
         for name, health in healths:
             if health.bus is not None:
                 self.metrics.observe_source(name, **dataclasses.asdict(health.bus))
@@ -501,6 +528,7 @@ class Service:
             "history": history.summary(),
             "catalogue": self.pipeline.catalogue_status(),
         }
+        self.extensions.add_status(status)
         return View(
             window,
             stats,
@@ -566,11 +594,21 @@ class Service:
         directory = self.config.checkpoint.checkpoint_dir
         if not directory:
             return True
+        waiting = self.extensions.not_ready_for_checkpoint()
+        if waiting is not None:
+            # e.g. a worker's pane summaries not yet durable on the bus: its input must not be
+            # acknowledged, so no checkpoint now; the next interval tries again
+            logger.warning("checkpoint to %s put off: %s is not ready", directory, waiting)
+            self.metrics.observe_checkpoint(False, self.clock())
+            self._last_checkpoint_mono = time.monotonic()
+            return False
         pipeline_meta, arrays = self.pipeline.state()
         history_meta, history_arrays = self.history.state()
         arrays.update(history_arrays)
         now = self.clock()
         positions = {i.source.name: i.source.position() for i in self.inputs}
+        extension_meta, extension_arrays = self.extensions.state()
+        arrays.update(extension_arrays)
         meta = {
             "state_version": STATE_VERSION,
             "pipeline": pipeline_meta,
@@ -579,6 +617,8 @@ class Service:
             "sources": positions,
             "written_at": now,
         }
+        if self.extensions:
+            meta["extensions"] = extension_meta
         ok = False
         try:
             path = save_checkpoint(
@@ -628,6 +668,7 @@ class Service:
         self.dead_letter.close()
         for item in self.inputs:
             item.source.close()
+        self.extensions.close()
         logger.info("stopped after %d transactions", self.pipeline.engine.transactions_seen)
         return saved
 

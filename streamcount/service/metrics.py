@@ -47,6 +47,8 @@ __all__ = [
     "ALERT_KINDS",
     "CATALOGUE_RELOAD_RESULTS",
     "CHECKPOINT_RESULTS",
+    "CLUSTER_CLOSES",
+    "CLUSTER_RESULTS",
     "HTTP_REFUSALS",
     "ITEM_TEXT_METRICS",
     "METRIC_NAMES",
@@ -68,6 +70,12 @@ SINK_NAMES: tuple[str, ...] = ("file", "log", "stdout", "webhook")
 CHECKPOINT_RESULTS: tuple[str, ...] = ("failed", "ok")
 #: ``result`` label values of ``streamcount_catalogue_reloads_total``
 CATALOGUE_RELOAD_RESULTS: tuple[str, ...] = ("failed", "ok")
+#: ``result`` label values of ``streamcount_cluster_summaries_received_total`` (merger)
+CLUSTER_RESULTS: tuple[str, ...] = ("duplicate", "late", "merged", "refused")
+#: ``how`` label values of ``streamcount_cluster_panes_closed_total`` (merger)
+CLUSTER_CLOSES: tuple[str, ...] = ("complete", "timeout")
+#: Seconds to merge one pane's summaries: from a tenth of a millisecond to seconds.
+_MERGE_BUCKETS = (0.0001, 0.00025, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 1, 5)
 
 #: Seconds to count one batch: from a millisecond (tiny batches) to tens of seconds.
 _BATCH_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1, 2.5, 5, 10, 30)
@@ -154,6 +162,13 @@ METRIC_NAMES: tuple[str, ...] = (
     "streamcount_source_reconnects_total",
     "streamcount_source_gap_messages_total",
     "streamcount_source_terminated_total",
+    "streamcount_cluster_summaries_published_total",
+    "streamcount_cluster_publish_pending",
+    "streamcount_cluster_summaries_received_total",
+    "streamcount_cluster_panes_closed_total",
+    "streamcount_cluster_missing_summaries_total",
+    "streamcount_cluster_last_pane",
+    "streamcount_cluster_merge_seconds",
     *_GAUGES,
     *_RULE_GAUGES,
 )
@@ -436,6 +451,57 @@ class Metrics:
                 registry=registry,
             ),
         }
+        self.cluster_published = Counter(
+            "streamcount_cluster_summaries_published",
+            "Worker: pane summaries (empty ones included) the summaries stream acknowledged.",
+            registry=registry,
+        )
+        self.cluster_pending = Gauge(
+            "streamcount_cluster_publish_pending",
+            "Worker: pane summaries published and not yet acknowledged by the stream.",
+            registry=registry,
+        )
+        self.cluster_received = Counter(
+            "streamcount_cluster_summaries_received",
+            "Merger: pane summaries received, by result (merged; duplicate: that worker's "
+            "summary of that pane was already merged; late: its pane was closed without it; "
+            "refused: damaged or foreign, in the dead-letter file).",
+            ["result"],
+            registry=registry,
+        )
+        self.cluster_closed = Counter(
+            "streamcount_cluster_panes_closed",
+            "Merger: panes closed, by how: complete (every worker reported) or timeout "
+            "(cluster.pane_timeout_seconds passed with some worker missing).",
+            ["how"],
+            registry=registry,
+        )
+        self.cluster_missing = Counter(
+            "streamcount_cluster_missing_summaries",
+            "Merger: panes closed without this worker's summary (its orders there are not in "
+            "the window).",
+            ["worker"],
+            registry=registry,
+        )
+        self.cluster_last_pane = Gauge(
+            "streamcount_cluster_last_pane",
+            "The newest pane index each worker reported (merger) or published (worker); "
+            "pane index times engine.pane_seconds is its start in epoch seconds.",
+            ["worker"],
+            registry=registry,
+        )
+        self.cluster_merge_seconds = Histogram(
+            "streamcount_cluster_merge_seconds",
+            "Merger: seconds to merge one pane's summaries into the window (the rules and "
+            "alerts evaluated at its close not included).",
+            buckets=_MERGE_BUCKETS,
+            registry=registry,
+        )
+        self._cluster_seen: dict[tuple[str, str], int] = {}
+        for result in CLUSTER_RESULTS:
+            self.cluster_received.labels(result=result)
+        for how in CLUSTER_CLOSES:
+            self.cluster_closed.labels(how=how)
         for reason in REJECT_REASONS:
             self.records_rejected.labels(reason=reason)
         for kind in alert_kinds:
@@ -546,5 +612,40 @@ class Metrics:
                 self._source_seen[(kind, source)] = total
             delta = total - before if total >= before else total
             counter = self.source_totals[kind].labels(source=source)
+            if delta:
+                counter.inc(delta)
+
+    def observe_cluster(
+        self,
+        *,
+        published: int | None = None,
+        pending: int | None = None,
+        received: Mapping[str, int] | None = None,
+        closed: Mapping[str, int] | None = None,
+        missing: Mapping[str, int] | None = None,
+        last_pane: Mapping[str, int] | None = None,
+    ) -> None:
+        """Bring the cluster metrics up to a worker's or merger's own running totals
+        (``published``, ``received`` by result, ``closed`` by how, ``missing`` by worker:
+        added as the difference since the previous call, a total that went down counting in
+        full) and current values (``pending``, ``last_pane`` by worker)."""
+        if pending is not None:
+            self.cluster_pending.set(float(pending))
+        for worker, pane in (last_pane or {}).items():
+            self.cluster_last_pane.labels(worker=worker).set(float(pane))
+        totals: list[tuple[str, str, int, Any]] = []
+        if published is not None:
+            totals.append(("published", "", published, self.cluster_published))
+        for result, n in (received or {}).items():
+            totals.append(("received", result, n, self.cluster_received.labels(result=result)))
+        for how, n in (closed or {}).items():
+            totals.append(("closed", how, n, self.cluster_closed.labels(how=how)))
+        for worker, n in (missing or {}).items():
+            totals.append(("missing", worker, n, self.cluster_missing.labels(worker=worker)))
+        for kind, label, total, counter in totals:
+            with self._lock:
+                before = self._cluster_seen.get((kind, label), 0)
+                self._cluster_seen[(kind, label)] = total
+            delta = total - before if total >= before else total
             if delta:
                 counter.inc(delta)

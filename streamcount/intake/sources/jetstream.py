@@ -311,7 +311,14 @@ class PullClient:
             options["user_credentials"] = cfg.creds_file
         if self.token:
             options["token"] = self.token
-        nc = await nats.connect(**options)
+        nc = nats.NATS()
+        try:
+            await nc.connect(**options)
+        except BaseException:
+            # a handshake cut short (a server restarting) leaves nats-py's socket open
+            with contextlib.suppress(Exception):
+                await nc.close()
+            raise
         self._nc, self._lost = nc, lost
         url = nc.connected_url
         self.server = url.netloc if url is not None else ", ".join(cfg.servers)

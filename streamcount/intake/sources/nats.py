@@ -37,7 +37,7 @@ from typing import Any
 
 import numpy as np
 
-from streamcount.config.settings import Config
+from streamcount.config.settings import Config, NatsConfig
 from streamcount.errors import ConfigError, InputError, ParseError
 from streamcount.intake.records import BusStats, RecordBatch, SourceHealth
 from streamcount.intake.sources.jetstream import PullClient, StreamGapError
@@ -75,6 +75,9 @@ class JetStreamSource:
 
     name = "nats"
     ingest = None
+    #: a message of several lines is several records (NDJSON); ``False``: one record each
+    #: (binary payloads, e.g. a cluster merger's pane summaries)
+    split_lines = True
 
     def __init__(
         self,
@@ -97,8 +100,11 @@ class JetStreamSource:
         self.terminated = 0
 
     @classmethod
-    def from_config(cls, config: Config, position: Any) -> JetStreamSource:
-        """The source for ``input.nats``, resumed after ``position`` (from the checkpoint).
+    def from_config(
+        cls, config: Config, position: Any, *, nats: NatsConfig | None = None
+    ) -> JetStreamSource:
+        """The source for ``input.nats`` (or ``nats``, settings of the same shape), resumed
+        after ``position`` (from the checkpoint).
 
         Waits a few seconds for the first connection so that a refused resume (a retention
         gap, a missing stream) stops start-up at once; a server that cannot be reached yet
@@ -112,7 +118,7 @@ class JetStreamSource:
             The checkpoint is for another stream, the token's variable is unset, the creds
             file is missing, the stream is missing or has the wrong retention.
         """
-        nats = config.input.nats
+        nats = nats if nats is not None else config.input.nats
         resume = cls._resume_point(nats.stream, position)
         token = None
         if nats.token_env:
@@ -130,12 +136,13 @@ class JetStreamSource:
             start_at=config.input.start_at,
             ack_wait_seconds=ack_wait_for(config),
             token=token,
+            name=cls.name,
         )
         source = cls(
             client,
             stream=nats.stream,
             position=resume,
-            max_record_bytes=config.input.max_record_bytes,
+            max_record_bytes=config.input.max_record_bytes if cls.split_lines else 1 << 62,
             auto_ack=config.checkpoint.checkpoint_dir is None,
         )
         client.ready.wait(nats.connect_timeout_seconds + _FIRST_CONNECT_GRACE)
@@ -222,7 +229,7 @@ class JetStreamSource:
                 continue
             last = seq
             messages.append((seq, reply))
-            if b"\n" in data:
+            if self.split_lines and b"\n" in data:
                 parts = data.split(b"\n")
                 if not parts[-1]:
                     parts.pop()
