@@ -353,6 +353,8 @@ def test_server_restart_mid_stream_counts_exactly(nats: NatsServer, tmp_path: Pa
         assert status["sources"][0]["name"] == "nats"
         nats.start()
         publish(nats.url, "orders.0", records[3000:6000])
+        # back on the bus before the next cut (else both cuts can fall in one back-off pause)
+        wait_until(lambda: source.bus_stats().reconnects >= 1, "the first reconnection")
         nats.restart()  # once more, mid-stream, with messages waiting
         publish(nats.url, "orders.0", records[6000:])
         wait_until(lambda: service.pipeline.engine.transactions_seen >= 8000, "everything")

@@ -30,6 +30,7 @@ from typing import Any
 
 from streamcount.config.settings import NatsConfig
 from streamcount.engine.wire import chunks
+from streamcount.loops import close_loop
 
 __all__ = ["HEADER_ROOM", "SummaryPublisher", "message_id"]
 
@@ -156,7 +157,7 @@ class SummaryPublisher:
             logger.exception("cluster: the summary publisher failed")
         finally:
             self.connected = False
-            self._loop.close()
+            close_loop(self._loop)
 
     async def _main(self) -> None:
         import nats.errors

@@ -44,6 +44,7 @@ from email.utils import formatdate
 from http import HTTPStatus
 from typing import Protocol
 
+from streamcount.loops import close_loop
 from streamcount.service.access import client_key
 
 __all__ = ["Answer", "HttpServer", "HttpStats", "Limits", "Request"]
@@ -232,9 +233,7 @@ class HttpServer:
             self._failed = exc
             self._ready.set()
         finally:
-            with contextlib.suppress(Exception):
-                self._loop.run_until_complete(self._loop.shutdown_asyncgens())
-            self._loop.close()
+            close_loop(self._loop)
 
     async def _main(self) -> None:
         self._stopped = asyncio.Event()

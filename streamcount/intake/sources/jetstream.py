@@ -44,6 +44,7 @@ from typing import Any
 
 from streamcount.config.settings import NatsConfig
 from streamcount.errors import InputError, StreamcountError
+from streamcount.loops import close_loop
 
 __all__ = ["Entry", "PullClient", "StreamGapError"]
 
@@ -213,7 +214,7 @@ class PullClient:
             self.connected = False
             self.ready.set()
             self.arrived.set()
-            self._loop.close()
+            close_loop(self._loop)
 
     async def _main(self) -> None:
         import nats.errors
