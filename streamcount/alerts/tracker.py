@@ -25,7 +25,7 @@ from typing import Any
 import numpy as np
 
 from streamcount.alerts.cusum import DEFAULT_RATIOS, CusumAlarms, CusumBank
-from streamcount.engine.keys import fits_int64, pack, unpack
+from streamcount.engine.keys import fits_int64, lookup, pack, unpack
 from streamcount.engine.snapshot import WindowSnapshot
 
 __all__ = ["CANDIDATE_SHARE", "ChangeTracker"]
@@ -159,15 +159,16 @@ class ChangeTracker:
         for k in self._sizes():
             bank = self.banks[k]
             level = window.levels[k - 1]
-            keys = self.keys_of(level.items) if len(level) else np.zeros(0, dtype=np.int64)
-            enter = keys[level.upper >= floor_count] if len(level) else keys
-            stay = keys[level.upper >= floor_count / 2] if len(level) else keys
-            kept = np.asarray(keep.get(k, np.zeros(0, dtype=np.int64)), dtype=np.int64)
+            # level rows are in lexicographic order, so their packed keys come out sorted
+            near = level.upper >= floor_count / 2 if len(level) else np.zeros(0, dtype=bool)
+            stay = self.keys_of(level.items[near]) if near.any() else np.zeros(0, dtype=np.int64)
+            enter = stay[level.upper[near] >= floor_count]
+            kept = np.unique(np.asarray(keep.get(k, np.zeros(0, dtype=np.int64)), dtype=np.int64))
             if len(bank):
-                leave = ~np.isin(bank.keys, stay) & ~np.isin(bank.keys, kept)
+                leave = ~(_member(stay, bank.keys) | _member(kept, bank.keys))
                 if leave.any():
                     bank.drop(bank.keys[leave])
-            wanted = np.unique(np.concatenate([enter, kept]))
+            wanted = np.union1d(enter, kept) if kept.size else enter
             new = wanted[~bank.contains(wanted)] if len(bank) else wanted
             if not new.size:
                 continue
@@ -234,3 +235,9 @@ class ChangeTracker:
     def check_invariants(self) -> None:
         for bank in self.banks.values():
             bank.check_invariants()
+
+
+def _member(sorted_keys: np.ndarray, queries: np.ndarray) -> np.ndarray:
+    """Which of ``queries`` are in ``sorted_keys`` (ascending): a binary search each, where
+    ``np.isin`` would sort both again."""
+    return lookup(sorted_keys, queries)[1]
