@@ -211,6 +211,55 @@ def test_surges_off():
     assert all(a["also"] == [] for a in alerts)
 
 
+def popular_feed(panes: int, start: int, *, seed: int) -> list[list[str]]:
+    """The tea room where two items sell three times as well from pane ``start`` on, each
+    still drawn independently of the other: their joint rate rises ninefold, their lift
+    (bought together against chance) stays 1."""
+    rng = random.Random(seed)
+    hot = ("oat loaf", "earl blend")
+    out = []
+    for j in range(panes):
+        for _ in range(PANE):
+            basket = []
+            for name, p in BACKGROUND.items():
+                rate = 3 * p if j >= start and name in hot else p
+                if rng.random() < rate:
+                    basket.append(name)
+            out.append(basket or ["seed bar"])
+    return out
+
+
+def exact_lift(baskets: list[list[str]], a: str, b: str) -> float:
+    """Lift of the pair over ``baskets``, recounted exactly (n * c(ab) / (c(a) * c(b)))."""
+    ca = sum(1 for x in baskets if a in x)
+    cb = sum(1 for x in baskets if b in x)
+    cab = sum(1 for x in baskets if a in x and b in x)
+    return len(baskets) * cab / (ca * cb)
+
+
+def test_items_that_merely_sell_more_raise_no_surge():
+    # the pair's joint rate goes from about 0.013 to 0.12, but the two are bought together
+    # only as often as chance would have it: a popularity change, not a co-purchase one
+    start = 15
+    baskets = (
+        make_feed(15, {}, seed=29)[: start * PANE]
+        + popular_feed(25, start, seed=29)[start * PANE :]
+    )
+    pair = ("earl blend", "oat loaf")
+    after = baskets[start * PANE :]
+    assert exact_lift(after, *pair) < 1.2  # the oracle: an exact recount of the panes since
+    cfg = config()
+    assert cfg.alerts.surge_min_lift == 1.5
+    _, alerts = run(baskets, cfg)
+    assert not mine(alerts, pair), "a popularity change alerted as a co-purchase surge"
+    # with the lift floor off the same rise is a surge: the test above can fail
+    loose = Config(engine=cfg.engine, rules=cfg.rules, alerts=AlertsConfig(surge_min_lift=0.0))
+    _, alerts = run(baskets, loose)
+    surged = mine(alerts, pair, {"surged"})
+    assert surged and surged[0]["pane"] == start
+    assert surged[0]["thresholds"]["surge_min_lift"] == 0.0
+
+
 def test_lossy_counting_finds_the_same_changes():
     start = 15
     plants = {PAIR: lambda j: 0.04 if j >= start else 0.0, OTHER: lambda j: 0.04 if j < 22 else 0}

@@ -302,6 +302,7 @@ KEY_RULES: dict[str, tuple[_Check, ...]] = {
     "alerts.baseline_panes": (_at_least(2),),
     "alerts.recent_panes": (_at_least(1),),
     "alerts.surge_min_count": (_at_least(1),),
+    "alerts.surge_min_lift": (_at_least(0),),
     "alerts.family_lift_tolerance": (_at_least(0),),
     "alerts.history": (_at_least(1),),
     "sinks.file": (_NON_EMPTY,),

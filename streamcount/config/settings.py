@@ -242,6 +242,10 @@ class AlertsConfig:
     recent_panes: int = 1
     #: minimum lower-bound count in the recent panes for a surge
     surge_min_count: int = 20
+    #: least lift of the itemset in the recent panes (its best rule's, counted conservatively)
+    #: for a surge: bought together this many times as often as chance; 0 also alerts on
+    #: itemsets whose joint rate rose only because their items sell more
+    surge_min_lift: float = 1.5
     #: relative lift (or growth-rate) gain a superset rule (or itemset) needs to alert apart
     #: from its family's representative
     family_lift_tolerance: float = 0.1
