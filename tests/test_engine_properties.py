@@ -266,3 +266,42 @@ def test_time_window_rejects_a_late_event_by_reason() -> None:
     assert snap.bounds([engine.vocabulary.get("tea")]) == (3, 3)
     assert snap.bounds([engine.vocabulary.get("jam")]) == (1, 1)
     assert engine.statistics().rejected == {"too_late": 1}
+
+
+@given(
+    baskets=_baskets(8, max_size=60),
+    max_itemset_size=st.integers(1, 3),
+    epsilon=st.sampled_from([0.05, 0.1, 0.25]),
+    cap=st.sampled_from([0, 5, 40, 1 << 22]),
+)
+def test_the_fresh_overlay_keeps_the_bounds_exact_or_not(
+    baskets: list[list[str]], max_itemset_size: int, epsilon: float, cap: int
+) -> None:
+    """The buffered transactions are added to answers as an overlay: exact while they expand
+    to at most ``OVERLAY_EXACT_MAX`` candidates, counted with epsilon past it (a cap of 0
+    forces that). Either way every Lossy Counting bound holds against a brute-force recount
+    of the same transactions (Manku & Motwani 2002, summed over panes), and the buffer is
+    never counted into the state."""
+    import streamcount.engine.pane as pane_module
+
+    saved = pane_module.OVERLAY_EXACT_MAX
+    pane_module.OVERLAY_EXACT_MAX = cap
+    try:
+        engine = Engine(
+            EngineConfig(
+                epsilon=epsilon,
+                max_itemset_size=max_itemset_size,
+                window_size=40,
+                pane_size=20,
+                batch_size=20,
+            )
+        )
+        engine.add(baskets)
+        counted = engine.snapshot().transactions
+        snap = engine.fresh_snapshot()
+        assert engine.snapshot().transactions == counted, "the overlay touched the state"
+    finally:
+        pane_module.OVERLAY_EXACT_MAX = saved
+    exact = exact_window_counts(baskets, snap.first_seq, snap.last_seq, max_itemset_size)
+    assert snap.transactions == sum(1 for b in baskets[snap.first_seq - 1 : snap.last_seq])
+    assert_snapshot_bounds(snap, exact, max_itemset_size, supports=(0.2, 0.5))

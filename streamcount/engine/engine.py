@@ -694,7 +694,7 @@ class Engine:
         )
 
     def fresh_snapshot(self) -> WindowSnapshot:
-        """The window with every buffered transaction added as an exact overlay (what the
+        """The window with every buffered transaction added as an overlay (what the
         API and replay report); see :meth:`SlidingWindow.fresh_snapshot`."""
         return self._tag(self.window.fresh_snapshot(self.vocabulary.names))
 

@@ -208,9 +208,12 @@ class SlidingWindow:
         return out
 
     def fresh_snapshot(self, item_names: Any) -> WindowSnapshot:
-        """:meth:`snapshot` with the transactions still buffered added as exact counts, so a
-        quiet feed's latest orders show at once. ``max_error`` is unchanged (the overlay is
-        exact); the window is exactly the transactions a flush would leave in it."""
+        """:meth:`snapshot` with the transactions still buffered added as an overlay, so a
+        quiet feed's latest orders show at once. The overlay is exact (``max_error``
+        unchanged) unless the buffer expands to more than
+        :data:`~streamcount.engine.pane.OVERLAY_EXACT_MAX` candidates; then it is counted with
+        epsilon and its bound joins ``max_error`` (:meth:`Pane.exact_buffer`). The window is
+        exactly the transactions a flush would leave in it."""
         if not self.buffered:
             return self.snapshot(item_names)
         return sum_panes(self.fresh_parts(), **self._shape(item_names)).snapshot
