@@ -168,7 +168,7 @@ class ChangeTracker:
                 leave = ~(_member(stay, bank.keys) | _member(kept, bank.keys))
                 if leave.any():
                     bank.drop(bank.keys[leave])
-            wanted = np.union1d(enter, kept) if kept.size else enter
+            wanted = _sorted_union(enter, kept) if kept.size else enter
             new = wanted[~bank.contains(wanted)] if len(bank) else wanted
             if not new.size:
                 continue
@@ -241,3 +241,14 @@ def _member(sorted_keys: np.ndarray, queries: np.ndarray) -> np.ndarray:
     """Which of ``queries`` are in ``sorted_keys`` (ascending): a binary search each, where
     ``np.isin`` would sort both again."""
     return lookup(sorted_keys, queries)[1]
+
+
+def _sorted_union(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """The union of two sorted arrays of distinct keys, sorted: ``b``'s keys missing from ``a``
+    inserted in place (``np.union1d`` would sort both again).
+
+    >>> _sorted_union(np.array([2, 5, 9]), np.array([1, 5, 7])).tolist()
+    [1, 2, 5, 7, 9]
+    """
+    extra = b[~_member(a, b)] if a.size else b
+    return np.insert(a, np.searchsorted(a, extra), extra) if extra.size else a
