@@ -392,7 +392,7 @@ class PullClient:
             filter_subject=cfg.subject,
         )
         try:
-            await js.add_consumer(cfg.stream, config=consumer)
+            created = await js.add_consumer(cfg.stream, config=consumer)
         except nats.js.errors.BadRequestError as exc:
             raise _Fatal(
                 InputError(f"stream {cfg.stream!r} refused the consumer {cfg.durable!r}: {exc}")
@@ -418,6 +418,8 @@ class PullClient:
         self._next_subject = f"$JS.API.CONSUMER.MSG.NEXT.{cfg.stream}.{cfg.durable}"
         self._next_dseq = 1
         self._last_reply = None
+        # what the new consumer has to deliver: caught up only once that is read
+        self._info_pending = int(getattr(created, "num_pending", 0) or 0)
         self._outstanding = 0
         self._rewind = False
         self._activity = time.monotonic()

@@ -184,7 +184,8 @@ class JetStreamSource:
 
     @property
     def caught_up(self) -> bool:
-        """The last read left nothing fetched and the server had nothing more for us."""
+        """Connected, and the last read left nothing fetched and the server had nothing more
+        for us (false until the first connection and while the server is away)."""
         return self._caught_up
 
     @property
@@ -241,7 +242,9 @@ class JetStreamSource:
         if messages:
             self._last_seq = last
             client.wake()
-        self._caught_up = not buf and client.server_pending == 0
+        # away from the server nothing is known about what it holds: never caught up then (a
+        # merger's pane timeout and the idle watermark wait for the bus)
+        self._caught_up = client.connected and not buf and client.server_pending == 0
         if not messages:
             return []
         self._ackable.append(messages[-1])
