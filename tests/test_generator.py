@@ -1,4 +1,5 @@
-"""Tests of the synthetic feed generator (streamcount.demo.generator) and the invented catalogue.
+"""Tests of the synthetic feed (streamcount.demo.synthetic), the ``generate`` command
+(streamcount.demo.generator) and the invented catalogue.
 
 Reference values come from outside the generator: exact distributions computed with scipy
 (zero-truncated Poisson, Exponential, Normal, Binomial), brute-force recounts of the generated
@@ -22,7 +23,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-import streamcount.demo.generator
+import streamcount.demo.synthetic
 from streamcount.demo.generator import (
     DEFAULT_DRIFT_RATE,
     DEFAULT_START_TIME,
@@ -171,7 +172,7 @@ def test_corruption_drops_items_geometrically() -> None:
         if len(p) >= 4 and 0.3 < feed.corruption_levels[i] < 0.7
     )
     length, c = len(feed.patterns[k]), float(feed.corruption_levels[k])
-    uniform = streamcount.demo.generator._Uniforms(np.random.default_rng(11))
+    uniform = streamcount.demo.synthetic._Uniforms(np.random.default_rng(11))
     draws = [feed._corrupted(k, uniform) for _ in range(20_000)]
     assert all(set(d) <= set(feed.patterns[k]) for d in draws)
     # survivors = l - d, with P(d) = c^d (1 - c) for d < l and P(d = l) = c^l

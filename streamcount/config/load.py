@@ -38,21 +38,16 @@ from typing import Any
 import yaml
 
 # FINGERPRINT_KEYS, RETIRED_KEYS, describe, fingerprint, fingerprint_settings and parse_listen
-# live in .checks and .describe; they are re-exported here for the modules that import them
-# from this one
-from streamcount.config.checks import (
-    KEY_RULES,
-    NORMALISE,
-    RETIRED_KEYS,
-    cross_checks,
-    parse_listen,
-)
+# live in .checks, .keyrules and .describe; they are re-exported here for the modules that
+# import them from this one
+from streamcount.config.checks import RETIRED_KEYS, cross_checks
 from streamcount.config.describe import (
     FINGERPRINT_KEYS,
     describe,
     fingerprint,
     fingerprint_settings,
 )
+from streamcount.config.keyrules import KEY_RULES, NORMALISE, parse_listen
 from streamcount.config.settings import Config
 from streamcount.errors import ConfigError
 

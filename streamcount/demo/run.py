@@ -1,7 +1,7 @@
 """``streamcount demo``: an invented shop's live order feed, watched by the real service.
 
 The shop is :data:`streamcount.demo.shop.SHOP_NAME`. Its feed comes from the Agrawal & Srikant
-generator (:mod:`streamcount.demo.generator`) with two planted changes the demo then catches:
+generator (:mod:`streamcount.demo.synthetic`) with two planted changes the demo then catches:
 
 * from the start, a bundle (``chai-spice-mix`` with ``stoneware-mug``) sells together; at
   transaction 9,000 the mugs go out of stock and the pattern stops: a ``faded`` alert;

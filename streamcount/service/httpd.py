@@ -25,6 +25,10 @@ Limits (:class:`Limits`):
 After an error answer the connection is closed the lingering way (the write side first, then
 whatever the client still sends is read and dropped for a moment), so the client reads the
 answer instead of a reset.
+
+The message syntax (reading a request's head, encoding an answer, :class:`Request` and
+:class:`Answer`) is :mod:`streamcount.service.http1`; ``Request`` and ``Answer`` are
+re-exported here.
 """
 
 from __future__ import annotations
@@ -41,25 +45,26 @@ from collections.abc import Callable, Mapping
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from email.utils import formatdate
-from http import HTTPStatus
-from typing import Protocol
 
 from streamcount.loops import close_loop
 from streamcount.service.access import client_key
+from streamcount.service.http1 import (
+    MAX_LINE,
+    Answer,
+    Refusal,
+    Request,
+    content_length,
+    encode_answer,
+    keep_alive,
+    read_head,
+)
 
 __all__ = ["Answer", "HttpServer", "HttpStats", "Limits", "Request"]
 
 logger = logging.getLogger(__name__)
 
-#: the longest request line or header line, with its line end, as http.server allows
-_MAX_LINE = 65536
-_MAX_HEADER_BYTES = 65536
-_MAX_HEADERS = 100
 _LINGER_SECONDS = 1.0
 _LINGER_BYTES = 1 << 20
-_TOKEN_CHARS = frozenset(
-    b"!#$%&'*+-.^_`|~0123456789ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz"
-)
 
 
 @dataclass(frozen=True, slots=True)
@@ -81,36 +86,6 @@ class Limits:
     body_budget_bytes: int = 64 << 20
 
 
-@dataclass(frozen=True, slots=True)
-class Request:
-    """One request, read in full. Header names are lower case."""
-
-    method: str
-    target: str
-    version: str
-    headers: dict[str, str]
-    body: bytes
-    #: the peer's address (the proxy's, behind a reverse proxy)
-    client: str
-
-    @property
-    def path(self) -> str:
-        return self.target.split("?", 1)[0]
-
-
-class Answer(Protocol):
-    """What a handler returns (:class:`streamcount.service.server.Response` is one)."""
-
-    @property
-    def status(self) -> int: ...
-
-    @property
-    def headers(self) -> Mapping[str, str]: ...
-
-    @property
-    def body(self) -> bytes: ...
-
-
 @dataclass(slots=True)
 class HttpStats:
     """Running totals of the front end (read at scrape time; plain ints, one writer each)."""
@@ -122,16 +97,6 @@ class HttpStats:
     refused: Counter[str] = field(default_factory=Counter)
     #: requests answered 401 (no token, or a wrong one)
     auth_failures: int = 0
-
-
-class _Refusal(Exception):
-    """A request that is answered with an error and the connection closed."""
-
-    def __init__(self, status: int, code: str, message: str) -> None:
-        super().__init__(message)
-        self.status = status
-        self.code = code
-        self.message = message
 
 
 class _Connection:
@@ -244,7 +209,7 @@ class HttpServer:
                 backlog=self.limits.backlog,
                 # readuntil keeps at most this many bytes before the newline; one byte of the
                 # request line is read apart (the keep-alive wait) and one is the newline
-                limit=_MAX_LINE - 2,
+                limit=MAX_LINE - 2,
             )
         except BaseException as exc:
             self._failed = exc
@@ -430,10 +395,10 @@ class HttpServer:
             except TimeoutError:
                 self.stats_counters.refused["timeout"] += 1
                 await self._fail(
-                    reader, writer, _Refusal(408, "timeout", "the request did not arrive in time")
+                    reader, writer, Refusal(408, "timeout", "the request did not arrive in time")
                 )
                 return
-            except _Refusal as refusal:
+            except Refusal as refusal:
                 if refusal.status == 503:
                     self.stats_counters.refused["busy"] += 1
                 await self._fail(reader, writer, refusal)
@@ -444,7 +409,7 @@ class HttpServer:
             finally:
                 self._body_bytes -= budget
                 conn.busy = False
-            close = self._closing or not _keep_alive(request)
+            close = self._closing or not keep_alive(request)
             data = self._encode(answer, head_only=request.method == "HEAD", close=close)
             writer.write(data)
             try:
@@ -458,7 +423,7 @@ class HttpServer:
                 return
 
     async def _fail(
-        self, reader: asyncio.StreamReader, writer: asyncio.StreamWriter, refusal: _Refusal
+        self, reader: asyncio.StreamReader, writer: asyncio.StreamWriter, refusal: Refusal
     ) -> None:
         answer = self._error(refusal.status, refusal.code, refusal.message, {})
         writer.write(self._encode(answer, head_only=False, close=True))
@@ -473,79 +438,28 @@ class HttpServer:
         start: bytes,
         address: str,
     ) -> tuple[Request, int]:
-        try:
-            line = start + await reader.readuntil(b"\n")
-        except asyncio.LimitOverrunError:
-            raise _Refusal(414, "request_uri_too_long", "the request line is too long") from None
-        except asyncio.IncompleteReadError:
-            raise ConnectionResetError("the client closed mid-request") from None
-        parts = line.rstrip(b"\r\n").split(b" ")
-        if len(parts) != 3 or not parts[0] or not set(parts[0]) <= _TOKEN_CHARS:
-            raise _Refusal(400, "bad_request", "the request line is not 'METHOD /path HTTP/1.1'")
-        method, target, version = (p.decode("latin-1") for p in parts)
-        if not version.startswith("HTTP/1.") or version not in ("HTTP/1.0", "HTTP/1.1"):
-            if version.startswith("HTTP/"):
-                raise _Refusal(505, "http_version_not_supported", f"{version} is not served")
-            raise _Refusal(400, "bad_request", f"{version!r} is not an HTTP version")
-        headers = await self._read_headers(reader)
-        if "transfer-encoding" in headers:
-            # a chunked body's length is unknown before reading it: refuse instead of buffering
-            raise _Refusal(
-                411, "length_required", "send a Content-Length; chunked bodies are refused"
-            )
-        raw_length = headers.get("content-length", "0")
-        if not raw_length.isdigit() or not raw_length.isascii():
-            raise _Refusal(400, "bad_request", f"Content-Length {raw_length!r} is not a number")
-        length = int(raw_length)
+        head = await read_head(reader, start)
+        length = content_length(head.headers)
         limit = self.limits.max_request_bytes
         if length > limit:
-            raise _Refusal(
+            raise Refusal(
                 413,
                 "too_large",
                 f"request body of {length} bytes is over the limit of {limit} "
                 "(server.max_request_bytes)",
             )
         if self._body_bytes + length > self.limits.body_budget_bytes:
-            raise _Refusal(503, "busy", "too many request bodies in flight; try again later")
+            raise Refusal(503, "busy", "too many request bodies in flight; try again later")
         self._body_bytes += length
         try:
-            if length and headers.get("expect", "").lower() == "100-continue":
+            if length and head.headers.get("expect", "").lower() == "100-continue":
                 writer.write(b"HTTP/1.1 100 Continue\r\n\r\n")
             body = await reader.readexactly(length) if length else b""
         except BaseException:
             self._body_bytes -= length
             raise
-        return Request(method, target, version, headers, body, address), length
-
-    async def _read_headers(self, reader: asyncio.StreamReader) -> dict[str, str]:
-        headers: dict[str, str] = {}
-        total = 0
-        while True:
-            try:
-                line = await reader.readuntil(b"\n")
-            except asyncio.LimitOverrunError:
-                raise _Refusal(
-                    431, "request_header_fields_too_large", "a header line is too long"
-                ) from None
-            total += len(line)
-            if line in (b"\r\n", b"\n"):
-                return headers
-            if total > _MAX_HEADER_BYTES or len(headers) >= _MAX_HEADERS:
-                raise _Refusal(
-                    431, "request_header_fields_too_large", "too many or too large headers"
-                )
-            name, sep, value = line.partition(b":")
-            if not sep or not name or not set(name) <= _TOKEN_CHARS:
-                # also refuses folded lines and space before the colon (request smuggling)
-                raise _Refusal(400, "bad_request", "a header line is not 'Name: value'")
-            key = name.decode("latin-1").lower()
-            text = value.strip(b" \t\r\n").decode("latin-1")
-            if key in headers:
-                if key == "content-length" and headers[key] != text:
-                    raise _Refusal(400, "bad_request", "Content-Length given twice, differently")
-                if key not in ("content-length", "host"):
-                    text = f"{headers[key]}, {text}"
-            headers[key] = text
+        request = Request(head.method, head.target, head.version, head.headers, body, address)
+        return request, length
 
     async def _dispatch(self, request: Request) -> Answer:
         pool = self._probe_pool if request.path in self._fast else self._api_pool
@@ -580,34 +494,11 @@ class HttpServer:
         return self._date[0]
 
     def _encode(self, answer: Answer, *, head_only: bool, close: bool) -> bytes:
-        try:
-            phrase = HTTPStatus(answer.status).phrase
-        except ValueError:
-            phrase = "Unknown"
-        lines = [
-            f"HTTP/1.1 {answer.status} {phrase}",
-            f"Server: {self._server_header}",
-            f"Date: {self._http_date()}",
-        ]
-        given = set()
-        for name, value in answer.headers.items():
-            if "\r" in value or "\n" in value:
-                raise ValueError(f"header {name} holds a line break")
-            given.add(name.lower())
-            lines.append(f"{name}: {value}")
-        for name, value in self._defaults.items():
-            if name.lower() not in given:
-                lines.append(f"{name}: {value}")
-        # for HEAD: the length the GET body has, but no body
-        lines.append(f"Content-Length: {len(answer.body)}")
-        if close:
-            lines.append("Connection: close")
-        head = ("\r\n".join(lines) + "\r\n\r\n").encode("latin-1")
-        return head if head_only or not answer.body else head + answer.body
-
-
-def _keep_alive(request: Request) -> bool:
-    tokens = {t.strip().lower() for t in request.headers.get("connection", "").split(",")}
-    if request.version == "HTTP/1.0":
-        return "keep-alive" in tokens
-    return "close" not in tokens
+        return encode_answer(
+            answer,
+            server=self._server_header,
+            date=self._http_date(),
+            defaults=self._defaults,
+            head_only=head_only,
+            close=close,
+        )

@@ -7,9 +7,14 @@ Two kinds of metric live here:
   :meth:`Metrics.observe_checkpoint`, :meth:`Metrics.observe_sinks`,
   :meth:`Metrics.observe_dead_letters` and, for a message-bus source,
   :meth:`Metrics.observe_source`;
-* gauges of engine state produced at scrape time by a custom collector that calls a function
-  returning the latest immutable :class:`~streamcount.snapshot.EngineStatistics` (and a
+* gauges of engine state produced at scrape time by a custom collector
+  (:class:`~streamcount.service.scrape.StateCollector`) that calls a function returning the
+  latest immutable :class:`~streamcount.engine.snapshot.EngineStatistics` (and a
   :class:`ServiceState`), so a scrape never touches the counting loop's mutable state.
+
+:data:`METRIC_NAMES` lists both kinds. The scrape-time families, :class:`ServiceState`,
+:class:`RuleSample` and the label sets of the HTTP front end live in
+:mod:`streamcount.service.scrape` and are re-exported here.
 
 The registry is always passed in; nothing here touches the process-wide default registry.
 
@@ -28,17 +33,24 @@ Examples
 from __future__ import annotations
 
 import threading
-from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
-from dataclasses import dataclass
+from collections.abc import Callable, Iterable, Mapping
 from typing import TYPE_CHECKING, Any
 
 from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram
-from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
-from prometheus_client.registry import Collector
 
 from streamcount.alerts.kinds import ALERT_KINDS
 from streamcount.engine.snapshot import EngineStatistics
 from streamcount.errors import REASONS
+from streamcount.service.scrape import (
+    HTTP_REFUSALS,
+    ITEM_TEXT_METRICS,
+    RULE_GAUGES,
+    STAT_COUNTERS,
+    STATE_GAUGES,
+    RuleSample,
+    ServiceState,
+    StateCollector,
+)
 
 if TYPE_CHECKING:
     from streamcount.service.httpd import HttpStats
@@ -80,67 +92,6 @@ _MERGE_BUCKETS = (0.0001, 0.00025, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.
 #: Seconds to count one batch: from a millisecond (tiny batches) to tens of seconds.
 _BATCH_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1, 2.5, 5, 10, 30)
 
-_GAUGES: dict[str, str] = {
-    "streamcount_window_transactions": "Transactions counted in the current window.",
-    "streamcount_window_max_error": (
-        "Largest possible undercount of any itemset in the window (sum over panes of "
-        "ceil(pane transactions / bucket width)); 0 when counting exactly."
-    ),
-    "streamcount_tracked_itemsets": "Tracked itemset entries summed over live panes, by size.",
-    "streamcount_active_rules": "Association rules currently active (after hysteresis).",
-    "streamcount_last_checkpoint_timestamp_seconds": (
-        "Unix time of the last checkpoint written or restored; 0 when there is none."
-    ),
-    "streamcount_event_lag_seconds": (
-        "Wall-clock time minus the largest event timestamp seen (absent without timestamps)."
-    ),
-    "streamcount_held_bytes": "Bytes held by the panes' count arrays and batch buffers.",
-    "streamcount_live_panes": "Panes held (open ones, and closed ones still in the window).",
-    "streamcount_buffered_transactions": "Transactions received but not yet counted.",
-    "streamcount_vocabulary_items": "Distinct item names interned.",
-}
-#: Counters read from the engine's statistics at scrape time (the catalogue's), by family name
-#: without ``_total``.
-_STAT_COUNTERS: dict[str, str] = {
-    "streamcount_items_ignored": (
-        "Feed items removed before counting by items.ignore / items.allow, by filter (the "
-        "ignore entry as configured, or 'not allowed'); since start."
-    ),
-    "streamcount_catalogue_unknown_items": (
-        "Feed items the catalogue does not know (counted as themselves at every level); "
-        "since start. 0 without a catalogue."
-    ),
-}
-_RULE_GAUGES: dict[str, str] = {
-    "streamcount_rule_lift": "Lift of one of the top rules by lift (point value).",
-    "streamcount_rule_confidence": "Confidence of one of the top rules by lift (point value).",
-    "streamcount_rule_support": "Support of one of the top rules by lift (point value).",
-}
-
-#: Families whose labels hold item text (names from the feed): left out of a /metrics served
-#: without the token (``server.public_metrics``).
-ITEM_TEXT_METRICS: tuple[str, ...] = tuple(_RULE_GAUGES)
-#: ``reason`` label values of ``streamcount_http_refused_total``
-HTTP_REFUSALS: tuple[str, ...] = (
-    "busy",
-    "max_connections",
-    "max_connections_per_client",
-    "rate_limited",
-    "timeout",
-)
-_HTTP_FAMILIES: dict[str, str] = {
-    "streamcount_auth_failures": (
-        "Requests refused for a missing or wrong API token (401); each also counts against "
-        "its address's server.auth_failures_per_minute."
-    ),
-    "streamcount_http_refused": (
-        "Requests or connections the HTTP server refused, by reason: over a connection cap "
-        "(503), not read in time (408), no worker or body budget free (503), too many failed "
-        "authentications from the address (429)."
-    ),
-    "streamcount_http_connections": "HTTP connections open now.",
-}
-
 #: Every metric family name streamcount exposes (counters with their ``_total`` suffix).
 METRIC_NAMES: tuple[str, ...] = (
     "streamcount_transactions_total",
@@ -152,7 +103,7 @@ METRIC_NAMES: tuple[str, ...] = (
     "streamcount_catalogue_reloads_total",
     "streamcount_dead_letters_lost_total",
     "streamcount_batch_seconds",
-    *(f"{name}_total" for name in _STAT_COUNTERS),
+    *(f"{name}_total" for name in STAT_COUNTERS),
     "streamcount_auth_failures_total",
     "streamcount_http_refused_total",
     "streamcount_http_connections",
@@ -169,149 +120,9 @@ METRIC_NAMES: tuple[str, ...] = (
     "streamcount_cluster_missing_summaries_total",
     "streamcount_cluster_last_pane",
     "streamcount_cluster_merge_seconds",
-    *_GAUGES,
-    *_RULE_GAUGES,
+    *STATE_GAUGES,
+    *RULE_GAUGES,
 )
-
-
-@dataclass(frozen=True, slots=True)
-class RuleSample:
-    """Point values of one rule for the per-rule gauges (labels: items joined with ``,``)."""
-
-    antecedent: tuple[str, ...]
-    consequent: tuple[str, ...]
-    support: float
-    confidence: float
-    lift: float
-
-    @classmethod
-    def from_rule(cls, rule: Any) -> RuleSample:
-        """From a :class:`streamcount.rules.Rule` (its measures' point values)."""
-        return cls(
-            tuple(rule.antecedent),
-            tuple(rule.consequent),
-            float(rule.support.value),
-            float(rule.confidence.value),
-            float(rule.lift.value),
-        )
-
-
-@dataclass(frozen=True, slots=True)
-class ServiceState:
-    """Service-level facts read at scrape time next to the engine's statistics."""
-
-    #: rules currently active
-    active_rules: int = 0
-    #: unix time of the last checkpoint written or restored (``None``: none yet)
-    last_checkpoint_unix: float | None = None
-    #: wall-clock time minus the largest event timestamp (``None``: no timestamps)
-    event_lag_seconds: float | None = None
-    #: rules for the per-rule gauges, strongest first; only the first ``top_rules`` are shown
-    top_rules: tuple[RuleSample, ...] = ()
-
-
-class _StateCollector(Collector):
-    """Builds the state gauges from the latest statistics when Prometheus scrapes."""
-
-    def __init__(self, owner: Metrics) -> None:
-        self._owner = owner
-
-    def describe(self) -> Iterable[Metric]:
-        # names only, so the registry can refuse a clash at registration time
-        yield from self._families(None, ServiceState(), describe=True)
-
-    def collect(self) -> Iterable[Metric]:
-        stats = self._owner._statistics()
-        state = self._owner._state() if self._owner._state is not None else ServiceState()
-        yield from self._families(stats, state, describe=False)
-
-    def _families(
-        self, stats: EngineStatistics | None, state: ServiceState, *, describe: bool
-    ) -> Iterator[Metric]:
-        def gauge(name: str, labels: Sequence[str] = ()) -> GaugeMetricFamily:
-            return GaugeMetricFamily(name, _GAUGES.get(name) or _RULE_GAUGES[name], labels=labels)
-
-        if stats is not None or describe:
-            simple = {
-                "streamcount_window_transactions": "window_transactions",
-                "streamcount_window_max_error": "window_max_error",
-                "streamcount_held_bytes": "held_bytes",
-                "streamcount_live_panes": "live_panes",
-                "streamcount_buffered_transactions": "buffered_transactions",
-                "streamcount_vocabulary_items": "vocabulary_items",
-            }
-            for name, attr in simple.items():
-                family = gauge(name)
-                if stats is not None:
-                    family.add_metric([], float(getattr(stats, attr)))
-                yield family
-            tracked = gauge("streamcount_tracked_itemsets", ["size"])
-            if stats is not None:
-                for size, entries in enumerate(stats.tracked_itemsets, start=1):
-                    tracked.add_metric([str(size)], float(entries))
-            yield tracked
-            # the catalogue's counters: label values are the configured filters (bounded)
-            ignored = CounterMetricFamily(
-                "streamcount_items_ignored",
-                _STAT_COUNTERS["streamcount_items_ignored"],
-                labels=["filter"],
-            )
-            unknown = CounterMetricFamily(
-                "streamcount_catalogue_unknown_items",
-                _STAT_COUNTERS["streamcount_catalogue_unknown_items"],
-            )
-            if stats is not None:
-                for label, n in sorted(stats.items_ignored.items()):
-                    ignored.add_metric([label], float(n))
-                unknown.add_metric([], float(stats.items_unknown))
-            yield ignored
-            yield unknown
-
-        active = gauge("streamcount_active_rules")
-        active.add_metric([], float(state.active_rules))
-        yield active
-
-        last = gauge("streamcount_last_checkpoint_timestamp_seconds")
-        last.add_metric([], max(state.last_checkpoint_unix or 0.0, self._owner._last_checkpoint))
-        yield last
-
-        lag = gauge("streamcount_event_lag_seconds")
-        if state.event_lag_seconds is not None:
-            lag.add_metric([], float(state.event_lag_seconds))
-        yield lag
-
-        yield from self._http_families()
-
-        top = self._owner.top_rules
-        if top > 0:
-            families = {name: gauge(name, ["antecedent", "consequent"]) for name in _RULE_GAUGES}
-            for rule in state.top_rules[:top]:
-                labels = [",".join(rule.antecedent), ",".join(rule.consequent)]
-                families["streamcount_rule_lift"].add_metric(labels, rule.lift)
-                families["streamcount_rule_confidence"].add_metric(labels, rule.confidence)
-                families["streamcount_rule_support"].add_metric(labels, rule.support)
-            yield from families.values()
-
-    def _http_families(self) -> Iterator[Metric]:
-        stats = self._owner._server_stats() if self._owner._server_stats is not None else None
-        failures = CounterMetricFamily(
-            "streamcount_auth_failures", _HTTP_FAMILIES["streamcount_auth_failures"]
-        )
-        failures.add_metric([], float(stats.auth_failures if stats is not None else 0))
-        yield failures
-        refused = CounterMetricFamily(
-            "streamcount_http_refused",
-            _HTTP_FAMILIES["streamcount_http_refused"],
-            labels=["reason"],
-        )
-        for reason in HTTP_REFUSALS:
-            refused.add_metric([reason], float(stats.refused[reason] if stats is not None else 0))
-        yield refused
-        connections = GaugeMetricFamily(
-            "streamcount_http_connections", _HTTP_FAMILIES["streamcount_http_connections"]
-        )
-        connections.add_metric([], float(stats.open_connections if stats is not None else 0))
-        yield connections
 
 
 class Metrics:
@@ -348,8 +159,6 @@ class Metrics:
         assert top_rules >= 0, f"top_rules={top_rules!r}"
         self.registry = registry
         self.top_rules = top_rules
-        self._statistics = statistics
-        self._state = state
         self._lock = threading.Lock()
         self._last_checkpoint = 0.0
         self._sink_seen: dict[tuple[str, str], int] = {}
@@ -513,7 +322,21 @@ class Metrics:
             self.checkpoints.labels(result=result)
         for result in CATALOGUE_RELOAD_RESULTS:
             self.catalogue_reloads.labels(result=result)
-        registry.register(_StateCollector(self))
+        registry.register(
+            StateCollector(
+                statistics=statistics,
+                state=state if state is not None else ServiceState,
+                last_checkpoint=self._read_last_checkpoint,
+                server_stats=self._read_server_stats,
+                top_rules=top_rules,
+            )
+        )
+
+    def _read_last_checkpoint(self) -> float:
+        return self._last_checkpoint
+
+    def _read_server_stats(self) -> HttpStats | None:
+        return self._server_stats() if self._server_stats is not None else None
 
     def observe_batch(self, accepted: int, rejected: Mapping[str, int], seconds: float) -> None:
         """Count one batch: accepted transactions, rejections by reason, time spent."""
