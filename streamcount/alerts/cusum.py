@@ -89,11 +89,19 @@ from __future__ import annotations
 import json
 import math
 from collections.abc import Callable, Mapping, Sequence
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
+from streamcount.alerts.cusum_alarms import (
+    DIRS,
+    CusumAlarms,
+    dir_index,
+    join_alarms,
+    keys_array,
+    merged_rows,
+    row_max,
+)
 from streamcount.alerts.cusum_stats import (
     CusumInputError,
     binomial_llr,
@@ -127,62 +135,12 @@ DEFAULT_MARGIN = 1.0
 _FORMAT = "streamcount.cusum/1"
 _P_MIN = 1e-12
 _P_MAX = 1.0 - 1e-9
-_DIRS = ("up", "down")
 _PER_ALT = ("stat", "start", "exc_lo", "exc_hi", "exc_n")
 _PER_KEY = ("ref_c", "ref_n", "ref_n2", "pend_c", "pend_n", "pend_n2", "pend_w")
 
 
 class CusumStateError(StreamcountError):
     """A :class:`CusumBank` invariant does not hold (a bug, or a tampered state)."""
-
-
-@dataclass(frozen=True)
-class CusumAlarms:
-    """Alarms of one pane, one row per (candidate, direction); arrays of equal length.
-
-    ``direction`` is +1 (up) or -1 (down). ``ratio`` is ``p1/p0`` of the alarming alternative
-    (the one with the largest statistic). ``p0`` is the reference bound the test used.
-    ``ref_rate`` / ``recent_rate`` are the conservative point rates (up: reference from the
-    upper counts, recent from the lower counts; down: the reverse) and their ``_low`` /
-    ``_high`` ends are Poisson bounds at ``evidence_z`` on the lower and upper counts.
-    ``recent_*`` covers the panes from ``change_pane`` to this one (``recent_transactions``).
-    """
-
-    pane: int
-    threshold: float
-    keys: np.ndarray
-    direction: np.ndarray
-    statistic: np.ndarray
-    ratio: np.ndarray
-    change_pane: np.ndarray
-    p0: np.ndarray
-    ref_rate: np.ndarray
-    ref_low: np.ndarray
-    ref_high: np.ndarray
-    recent_rate: np.ndarray
-    recent_low: np.ndarray
-    recent_high: np.ndarray
-    recent_transactions: np.ndarray
-
-    def __len__(self) -> int:
-        return int(self.keys.shape[0])
-
-    def of(self, direction: str) -> np.ndarray:
-        """Keys alarming in ``direction`` (``"up"`` or ``"down"``), sorted."""
-        return self.keys[self.direction == (1 if _dir_index(direction) == 0 else -1)]
-
-
-def _dir_index(direction: str) -> int:
-    if direction not in _DIRS:
-        raise CusumInputError(f"direction = {direction!r}: must be 'up' or 'down'")
-    return _DIRS.index(direction)
-
-
-def _keys_array(keys: object, what: str) -> np.ndarray:
-    arr = np.asarray(keys)
-    if arr.ndim != 1 or (arr.size and arr.dtype.kind not in "iu"):
-        raise CusumInputError(f"{what}: must be a 1-d integer array, got {arr.dtype} {arr.shape}")
-    return arr.astype(np.int64, copy=False)
 
 
 class CusumBank:
@@ -250,7 +208,7 @@ class CusumBank:
     def _blank(self, count: int) -> dict[str, np.ndarray]:
         k = self.n_alternatives
         out: dict[str, np.ndarray] = {}
-        for d in _DIRS:
+        for d in DIRS:
             for name in _PER_ALT:
                 dtype = np.int64 if name == "start" else np.float64
                 out[f"{d}.{name}"] = np.zeros((count, k), dtype=dtype)
@@ -267,13 +225,13 @@ class CusumBank:
 
     def contains(self, keys: np.ndarray) -> np.ndarray:
         """Boolean mask: which of ``keys`` are candidates."""
-        q = _keys_array(keys, "keys")
+        q = keys_array(keys, "keys")
         pos = np.searchsorted(self.keys, q)
         pos_c = np.minimum(pos, max(len(self) - 1, 0))
         return (pos < len(self)) & (self.keys[pos_c] == q) if len(self) else np.zeros(q.shape, bool)
 
     def _positions(self, keys: np.ndarray, what: str) -> np.ndarray:
-        q = _keys_array(keys, what)
+        q = keys_array(keys, what)
         found = self.contains(q)
         if not np.all(found):
             raise CusumInputError(f"{what}: {q[~found][:5].tolist()} are not candidates")
@@ -294,7 +252,7 @@ class CusumBank:
         of the window, or the window's upper count), the ``down`` one at ``count_lower``.
         Keys already present, or repeated, are refused.
         """
-        new = _keys_array(keys, "add(keys)")
+        new = keys_array(keys, "add(keys)")
         m = new.shape[0]
         cu = np.broadcast_to(np.asarray(count_upper, dtype=np.float64), (m,))
         cl = np.broadcast_to(np.asarray(count_lower, dtype=np.float64), (m,))
@@ -315,7 +273,7 @@ class CusumBank:
             raise CusumInputError(f"add(keys): {new[self.contains(new)][:5].tolist()} present")
         part = self._blank(m)
         part["up.ref_c"], part["down.ref_c"] = cu.copy(), cl.copy()
-        for d in _DIRS:
+        for d in DIRS:
             part[f"{d}.ref_n"] = tr.copy()
             part[f"{d}.ref_n2"] = tr.copy()
         # both sorted: the new rows go to their slots and the old rows, in order, to the
@@ -324,9 +282,9 @@ class CusumBank:
         fresh = np.zeros(len(self) + m, dtype=bool)
         fresh[slots] = True
         old_slots = np.flatnonzero(~fresh)
-        self.keys = _merged(self.keys, new, old_slots, slots)
+        self.keys = merged_rows(self.keys, new, old_slots, slots)
         for name, arr in self._a.items():
-            self._a[name] = _merged(arr, part[name], old_slots, slots)
+            self._a[name] = merged_rows(arr, part[name], old_slots, slots)
 
     def drop(self, keys: np.ndarray) -> None:
         """Forget candidates (all must be present)."""
@@ -340,7 +298,7 @@ class CusumBank:
     def remap(self, mapping: Callable[[np.ndarray], tuple[np.ndarray, np.ndarray]]) -> None:
         """Renumber keys: ``mapping(keys) -> (new_keys, keep)``; rows with ``keep`` False go."""
         new_keys, keep = mapping(self.keys.copy())
-        new_keys = _keys_array(new_keys, "remap new keys")
+        new_keys = keys_array(new_keys, "remap new keys")
         keep = np.asarray(keep, dtype=bool)
         if new_keys.shape != self.keys.shape or keep.shape != self.keys.shape:
             raise CusumInputError("remap: mapping must return arrays shaped like the keys")
@@ -383,7 +341,7 @@ class CusumBank:
         depends on ``h``), so it may count a few tests that turn out inactive: an overcount,
         on the safe side. This is the ``M`` to charge for the next pane.
         """
-        return sum(int(np.count_nonzero(self._tested(d, 0.0)[2])) for d in _DIRS)
+        return sum(int(np.count_nonzero(self._tested(d, 0.0)[2])) for d in DIRS)
 
     def update(
         self,
@@ -402,7 +360,7 @@ class CusumBank:
         not candidates (ignored); candidates missing from it count as ``[0, absent_bound]``.
         ``pane`` is the pane's index (default: the previous one + 1; must increase).
         """
-        pk = _keys_array(pane_keys, "update(pane_keys)")
+        pk = keys_array(pane_keys, "update(pane_keys)")
         lo = np.asarray(lo, dtype=np.float64)
         hi = np.asarray(hi, dtype=np.float64)
         if lo.shape != pk.shape or hi.shape != pk.shape:
@@ -429,7 +387,7 @@ class CusumBank:
             x_lo[hit] = lo[pos_c[hit]]
             x_hi[hit] = np.minimum(hi[pos_c[hit]], n)
         parts = []
-        for d in _DIRS:
+        for d in DIRS:
             x_test, x_ref = (x_lo, x_hi) if d == "up" else (x_hi, x_lo)
             p0, p1, active = self._tested(d, float(h))
             idx, top = self._step(d, p0, p1, active, x_test, x_lo, x_hi, float(n), t)
@@ -437,7 +395,7 @@ class CusumBank:
             parts.append(self._evidence(d, fire, p0[fire]))
             self._settle(d, idx, x_ref, float(n))
         self.last_pane = t
-        return _join(t, float(h), parts)
+        return join_alarms(t, float(h), parts)
 
     def _step(
         self,
@@ -467,7 +425,7 @@ class CusumBank:
             acc += val
             acc[~pos] = 0.0
         a[f"{d}.stat"] = stat
-        top = _row_max(stat)
+        top = row_max(stat)
         return np.flatnonzero(top <= 0.0), top
 
     def _settle(self, d: str, quiet: np.ndarray, x_ref: np.ndarray, n: float) -> None:
@@ -527,7 +485,7 @@ class CusumBank:
         count end), so a return to the old rate is seen as a change without waiting for the
         old panes to decay out of its reference.
         """
-        d = _DIRS[_dir_index(direction)]
+        d = DIRS[dir_index(direction)]
         pos = self._positions(keys, "rebase(keys)")
         a = self._a
         stat = a[f"{d}.stat"][pos]
@@ -535,7 +493,7 @@ class CusumBank:
         p = pos[stat[np.arange(pos.size), alt] > 0]
         alt = alt[stat[np.arange(pos.size), alt] > 0]
         lo_c, hi_c, en = (a[f"{d}.{k}"][p, alt] for k in ("exc_lo", "exc_hi", "exc_n"))
-        for e in _DIRS if both else (d,):
+        for e in DIRS if both else (d,):
             self._clear(e, pos if e == d else p)
             a[f"{e}.ref_c"][p] = hi_c if e == "up" else lo_c
             a[f"{e}.ref_n"][p] = en
@@ -608,7 +566,7 @@ class CusumBank:
             shape = (n, k) if name.split(".")[1] in _PER_ALT else (n,)
             need(arr.shape == shape, f"{name} shape {arr.shape} != {shape}")
             need(np.all(np.isfinite(arr)), f"{name} finite")
-        for d in _DIRS:
+        for d in DIRS:
             g = {name: self._a[f"{d}.{name}"] for name in (*_PER_ALT, *_PER_KEY)}
             pos = g["stat"] > 0
             need(np.all(g["stat"] >= 0), f"{d}: statistics >= 0")
@@ -624,38 +582,3 @@ class CusumBank:
             need(np.all((g["pend_w"] >= 0) & (g["pend_w"] <= 1)), f"{d}: pending weight")
             quiet = ~pos.any(axis=1)
             need(np.all(g["pend_n"][quiet] == 0) and np.all(g["pend_w"][quiet] == 1), f"{d}: pend")
-
-
-def _merged(
-    old: np.ndarray, new: np.ndarray, old_slots: np.ndarray, new_slots: np.ndarray
-) -> np.ndarray:
-    """``old`` and ``new`` rows interleaved: row ``i`` of ``old`` at ``old_slots[i]``, of ``new``
-    at ``new_slots[i]`` (together, every slot once).
-
-    >>> _merged(np.array([1, 4]), np.array([2, 3]), np.array([0, 3]), np.array([1, 2]))
-    array([1, 2, 3, 4])
-    """
-    out = np.empty((old.shape[0] + new.shape[0], *old.shape[1:]), dtype=old.dtype)
-    out[old_slots] = old
-    out[new_slots] = new
-    return out
-
-
-def _row_max(a: np.ndarray) -> np.ndarray:
-    """Each row's largest value ignoring NaN (0 for no columns), a column at a time: with a
-    handful of columns several times faster than a reduction along the rows.
-
-    >>> _row_max(np.array([[0.5, 2.0], [1.0, 0.0]])).tolist()
-    [2.0, 1.0]
-    """
-    if a.shape[1] == 0:
-        return np.zeros(a.shape[0])
-    out = a[:, 0].copy()
-    for j in range(1, a.shape[1]):
-        np.fmax(out, a[:, j], out=out)
-    return out
-
-
-def _join(pane: int, h: float, parts: list[dict[str, np.ndarray]]) -> CusumAlarms:
-    fields = {name: np.concatenate([p[name] for p in parts]) for name in parts[0]}
-    return CusumAlarms(pane=pane, threshold=h, **fields)
