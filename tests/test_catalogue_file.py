@@ -387,3 +387,24 @@ def test_item_details_and_generalisation_from_a_snapshot(tmp_path: Path) -> None
     # one ancestor stands for one item only: {wool-throw, linens} is no generalisation of
     # {throw-ochre, tea-green} (linens is not an ancestor of tea-green)
     assert not details.generalises(["wool-throw", "linens"], ["throw-ochre", "tea-green"])
+
+
+def test_a_worker_names_the_catalogue_versions_each_pane_was_counted_under(
+    tmp_path: Path,
+) -> None:
+    """What a cluster worker writes into a pane's summary: the version(s) in force for the
+    pane's transactions (the catalogue's own history is the reference), so the merger can
+    tell panes counted under different catalogues."""
+    from streamcount.cluster.worker import catalogue_version
+
+    path = write(tmp_path / "catalogue.csv", GOOD)
+    state = CatalogueState(items_config(path))  # type: ignore[arg-type]
+    first = state.version[:12]
+    write(path, GOOD + "sock-m,,sock,,apparel\n")
+    assert state.reload(next_seq=20).changed
+    second = state.version[:12]
+    assert catalogue_version(state, 1, 19) == first
+    assert catalogue_version(state, 15, 25) == f"{first},{second}"
+    assert catalogue_version(state, 20, 40) == second
+    assert catalogue_version(state, 0, 0) == second  # an empty pane: the version in force
+    assert catalogue_version(None, 1, 40) == "none"

@@ -22,14 +22,16 @@ from streamcount.rules.measures import Measure
 FP = "f" * 64
 
 
-def _summary(worker: str, pane: int, baskets: list[list[str]], *, fp: str = FP) -> bytes:
+def _summary(
+    worker: str, pane: int, baskets: list[list[str]], *, fp: str = FP, catalogue: str = "none"
+) -> bytes:
     """A real pane summary (exact counts of ``baskets``) as a worker would send it."""
     names = sorted({i for b in baskets for i in b})
     ids = {n: i for i, n in enumerate(names)}
     summary = LossySummary(0.0, 2)
     if baskets:
         summary.add_baskets([[ids[i] for i in b] for b in baskets])
-    meta = PaneMeta(pane, len(baskets), 0.0, 2, fp, "none", None, None, worker)
+    meta = PaneMeta(pane, len(baskets), 0.0, 2, fp, catalogue, None, None, worker)
     return encode_pane(summary, names, meta)
 
 
@@ -190,3 +192,25 @@ def test_a_summary_inconsistent_with_its_header_is_refused() -> None:
     c = PaneCollector(("w1",), fingerprint=FP, epsilon=0.0, max_itemset_size=1, timeout=1.0)
     got = c.receive(chunks(encode_pane(summary, ["tea"], meta))[0], 0.0)
     assert (got.result, got.reason) == ("refused", "bad_summary")
+
+
+def test_parts_under_different_catalogue_versions_are_merged_and_reported() -> None:
+    """Workers share one catalogue; a pane whose parts were mapped under different versions
+    keeps every part's bounds (it is merged) but is logged, counted and listed, and the list
+    survives a checkpoint. Parts holding no transaction say nothing about a catalogue."""
+    c = _collector()
+    _send(c, _summary("w1", 100, [["tea", "jam"]], catalogue="aaaa"))
+    _send(c, _summary("w2", 100, [["tea"]], catalogue="aaaa"))
+    _send(c, _summary("w1", 101, [["tea"]], catalogue="aaaa"))
+    _send(c, _summary("w2", 101, [["jam"]], catalogue="aaaa,bbbb"))
+    _send(c, _summary("w1", 102, [["tea"]], catalogue="bbbb"))
+    _send(c, _summary("w2", 102, [], catalogue="aaaa"))  # empty: no catalogue in play
+    closes = c.due(1.0, caught_up=True)
+    assert [cl.index for cl in closes] == [100, 101, 102]
+    assert [len(cl.parts) for cl in closes] == [2, 2, 2]
+    assert c.totals.mixed_catalogue == 1
+    assert c.mixed_catalogue == [(101, {"w1": "aaaa", "w2": "aaaa,bbbb"})]
+    meta, arrays = c.state()
+    again = _collector()
+    again.load_state(json.loads(json.dumps(meta)), arrays)
+    assert again.mixed_catalogue == c.mixed_catalogue

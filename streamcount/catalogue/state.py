@@ -37,6 +37,7 @@ from streamcount.errors import CatalogueError, CheckpointError
 
 __all__ = [
     "HISTORY_LIMIT",
+    "VERSION_SHORT",
     "CatalogueState",
     "ReloadOutcome",
     "catalogue_configured",
@@ -48,6 +49,8 @@ logger = logging.getLogger(__name__)
 #: versions kept in the history (the oldest are dropped; panes that old left the window long ago)
 HISTORY_LIMIT = 50
 _SHORT = 12
+#: characters of a catalogue version shown in logs, the history and cluster summaries
+VERSION_SHORT = _SHORT
 #: the history entry of transactions counted before any catalogue was configured
 _NO_CATALOGUE: dict[str, Any] = {
     "version": "none",

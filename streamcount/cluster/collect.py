@@ -108,6 +108,8 @@ class _Totals:
     closed: Counter[str] = field(default_factory=Counter)
     missing: Counter[str] = field(default_factory=Counter)
     late: Counter[str] = field(default_factory=Counter)
+    #: panes merged from parts counted under different catalogue versions
+    mixed_catalogue: int = 0
 
 
 class PaneCollector:
@@ -147,6 +149,9 @@ class PaneCollector:
         self.reported: dict[str, int] = {}
         #: runs ``(first, last, missing workers)`` of panes closed without some workers
         self.incomplete: list[tuple[int, int, tuple[str, ...]]] = []
+        #: the latest panes whose parts came from different catalogue versions, with the
+        #: version each worker sent (``none``: no catalogue)
+        self.mixed_catalogue: list[tuple[int, dict[str, str]]] = []
         self.totals = _Totals()
         self._merged: dict[int, frozenset[str]] = {}
         self._reassembler = Reassembler()
@@ -303,7 +308,26 @@ class PaneCollector:
                 ", ".join(missing) or "nobody",
             )
         parts = tuple(held[w] for w in sorted(held))  # a worker since removed counts too
+        self._check_catalogue(pane, parts)
         return Close(pane, parts, how, missing, runs)
+
+    def _check_catalogue(self, pane: int, parts: Sequence[Part]) -> None:
+        """Workers share one catalogue version; a pane whose parts name items under different
+        ones (a reload reaching the workers at different moments, or one worker left on an
+        old file) is still merged, since every part keeps its own bounds, but an item may
+        count under different names or levels in it: logged, counted and listed."""
+        versions = {p.worker: p.meta.catalogue for p in parts if p.meta.transactions}
+        if len(set(versions.values())) < 2:
+            return
+        self.totals.mixed_catalogue += 1
+        self.mixed_catalogue.append((pane, versions))
+        del self.mixed_catalogue[:-_INCOMPLETE_RUNS]
+        logger.warning(
+            "pane %d merged from different catalogue versions (%s): make every worker read "
+            "the same items.catalogue file",
+            pane,
+            ", ".join(f"{w}: {v}" for w, v in sorted(versions.items())),
+        )
 
     def _missing_runs(
         self, first: int, last: int, held: Mapping[str, Part]
@@ -413,6 +437,7 @@ class PaneCollector:
             "held": held_meta,
             "merged": [[p, sorted(ws)] for p, ws in sorted(self._merged.items())],
             "incomplete": [[a, b, list(ws)] for a, b, ws in self.incomplete],
+            "mixed_catalogue": [[p, dict(v)] for p, v in self.mixed_catalogue],
         }
         return meta, arrays
 
@@ -442,6 +467,10 @@ class PaneCollector:
             self._held[bytes.fromhex(digest)] = (float(since), chunks)
         self._merged = {int(p): frozenset(ws) for p, ws in meta["merged"]}
         self.incomplete = [(int(a), int(b), tuple(ws)) for a, b, ws in meta["incomplete"]]
+        self.mixed_catalogue = [
+            (int(p), {str(w): str(v) for w, v in versions.items()})
+            for p, versions in meta.get("mixed_catalogue", [])
+        ]
 
 
 def _inconsistent(meta: PaneMeta, levels: Iterable[Level]) -> str | None:

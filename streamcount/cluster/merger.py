@@ -152,6 +152,9 @@ class MergerExtension:
             "summaries": dict(collector.totals.received),
             "late": dict(collector.totals.late),
             "held_chunks": collector.held_chunks,
+            "mixed_catalogue_panes": [
+                {"pane": p, "versions": dict(v)} for p, v in collector.mixed_catalogue[-20:]
+            ],
         }
 
     def ready(self) -> bool:
@@ -256,4 +259,5 @@ class MergerExtension:
             closed=totals.closed,
             missing={w: totals.missing[w] for w in self.collector.workers},
             last_pane=self.collector.reported,
+            mixed_catalogue=totals.mixed_catalogue,
         )

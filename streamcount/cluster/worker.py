@@ -30,6 +30,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from streamcount.catalogue.state import VERSION_SHORT, CatalogueState
 from streamcount.cluster.publisher import SummaryPublisher
 from streamcount.config.describe import fingerprint
 from streamcount.config.settings import Config
@@ -51,9 +52,18 @@ logger = logging.getLogger(__name__)
 CATALOGUE_NONE = "none"
 
 
-def catalogue_version(config: Config) -> str:
-    """The version of the item catalogue the names come from (``none`` without one)."""
-    return CATALOGUE_NONE
+def catalogue_version(catalogue: CatalogueState | None, first_seq: int, last_seq: int) -> str:
+    """The catalogue version(s) transactions ``first_seq..last_seq`` were mapped under,
+    shortened and comma-separated, oldest first (a reload inside a pane gives two); the one in
+    force when the pane holds none; ``none`` without a catalogue.
+
+    >>> catalogue_version(None, 1, 10)
+    'none'
+    """
+    if catalogue is None:
+        return CATALOGUE_NONE
+    versions = catalogue.versions_of(first_seq, last_seq) if first_seq > 0 else []
+    return ",".join(versions) or catalogue.version[:VERSION_SHORT]
 
 
 def nats_token(config: Config) -> str | None:
@@ -87,7 +97,6 @@ class WorkerExtension:
         self.worker = cluster.worker
         self.subject = cluster.subject.replace("{worker}", self.worker)
         self.fingerprint = fingerprint(config)
-        self.catalogue = catalogue_version(config)
         self.publisher = publisher or SummaryPublisher(
             config.input.nats,
             stream=cluster.stream,
@@ -179,7 +188,9 @@ class WorkerExtension:
     # -- publishing ----------------------------------------------------------------------------
 
     def _pane_closed(self, pane: Pane, names: Sequence[str]) -> None:
-        self._submit(pane.index, pane.summary, names, pane.min_ts, pane.max_ts)
+        self._submit(
+            pane.index, pane.summary, names, pane.min_ts, pane.max_ts, pane.first_seq, pane.last_seq
+        )
 
     def _publish_watermark(self) -> None:
         """An empty summary of the newest closed pane when the watermark passed it with
@@ -192,7 +203,7 @@ class WorkerExtension:
         if self.last_published is None or closed > self.last_published:
             engine = self._service.pipeline.engine
             empty = LossySummary(engine.epsilon, engine.max_itemset_size)
-            self._submit(closed, empty, (), None, None)
+            self._submit(closed, empty, (), None, None, 0, 0)
 
     def _submit(
         self,
@@ -201,16 +212,19 @@ class WorkerExtension:
         names: Sequence[str],
         min_ts: float | None,
         max_ts: float | None,
+        first_seq: int,
+        last_seq: int,
     ) -> None:
         assert self._service is not None
-        engine = self._service.pipeline.engine
+        pipeline = self._service.pipeline
+        engine = pipeline.engine
         meta = PaneMeta(
             index,
             int(summary.n),
             engine.epsilon,
             engine.max_itemset_size,
             self.fingerprint,
-            self.catalogue,
+            catalogue_version(pipeline.catalogue, first_seq, last_seq),
             min_ts,
             max_ts,
             self.worker,

@@ -118,6 +118,7 @@ METRIC_NAMES: tuple[str, ...] = (
     "streamcount_cluster_summaries_received_total",
     "streamcount_cluster_panes_closed_total",
     "streamcount_cluster_missing_summaries_total",
+    "streamcount_cluster_mixed_catalogue_panes_total",
     "streamcount_cluster_last_pane",
     "streamcount_cluster_merge_seconds",
     *STATE_GAUGES,
@@ -285,6 +286,12 @@ class Metrics:
             ["how"],
             registry=registry,
         )
+        self.cluster_mixed_catalogue = Counter(
+            "streamcount_cluster_mixed_catalogue_panes",
+            "Merger: panes merged from workers' summaries counted under different catalogue "
+            "versions.",
+            registry=registry,
+        )
         self.cluster_missing = Counter(
             "streamcount_cluster_missing_summaries",
             "Merger: panes closed without this worker's summary (its orders there are not in "
@@ -447,6 +454,7 @@ class Metrics:
         closed: Mapping[str, int] | None = None,
         missing: Mapping[str, int] | None = None,
         last_pane: Mapping[str, int] | None = None,
+        mixed_catalogue: int | None = None,
     ) -> None:
         """Bring the cluster metrics up to a worker's or merger's own running totals
         (``published``, ``received`` by result, ``closed`` by how, ``missing`` by worker:
@@ -465,6 +473,8 @@ class Metrics:
             totals.append(("closed", how, n, self.cluster_closed.labels(how=how)))
         for worker, n in (missing or {}).items():
             totals.append(("missing", worker, n, self.cluster_missing.labels(worker=worker)))
+        if mixed_catalogue is not None:
+            totals.append(("mixed_catalogue", "", mixed_catalogue, self.cluster_mixed_catalogue))
         for kind, label, total, counter in totals:
             with self._lock:
                 before = self._cluster_seen.get((kind, label), 0)
