@@ -54,6 +54,7 @@ from streamcount.alerts.detectors import (
 from streamcount.alerts.listing import RuleListing
 from streamcount.alerts.record import Alert
 from streamcount.alerts.tracker import CANDIDATE_SHARE, ChangeTracker
+from streamcount.catalogue.view import ItemDetails
 from streamcount.config.settings import AlertsConfig, RulesConfig
 from streamcount.engine.pane import Pane
 from streamcount.engine.snapshot import WindowSnapshot
@@ -233,7 +234,7 @@ class RuleMonitor:
         raised: list[Raised] = []
         for det in self.detectors:
             raised.extend(det.fire(close, eligible[det.kind], alarms, self.budget))
-        return self._notify(raised)
+        return self._notify(raised, window)
 
     def _candidates(self, keys: Mapping[int, np.ndarray]) -> dict[int, np.ndarray]:
         """Keep only keys the tracker follows (the others have no test to charge)."""
@@ -261,9 +262,11 @@ class RuleMonitor:
             out[size] = np.concatenate([out.get(size, np.zeros(0, dtype=np.int64)), keys])
         return out
 
-    def _notify(self, raised: list[Raised]) -> list[Alert]:
+    def _notify(self, raised: list[Raised], window: WindowSnapshot) -> list[Alert]:
         """One notification per itemset (an itemset that emerges and surges at once is one
-        ``emerged`` alert that also names ``surged``); restart the tests of what was sent."""
+        ``emerged`` alert that also names ``surged``); restart the tests of what was sent.
+        With a catalogue, each alert carries the level and display name of its items
+        (``item_details``, read from ``window``)."""
         merged: dict[tuple[int, int], Raised] = {}
         for r in raised:
             key = (r.size, r.key)
@@ -279,6 +282,9 @@ class RuleMonitor:
             if r.rebase is not None:
                 self.tracker.rebase(r.size, np.array([r.key]), r.rebase)
         out = [r.alert for r in merged.values()]
+        details = ItemDetails(window)
+        if out and details.configured:
+            out = [replace(a, item_details=details.about(a.items)) for a in out]
         out.sort(key=lambda a: (a.kind, len(a.items), a.items))
         if out:
             logger.debug("pane close at seq %d: %d alerts", out[0].seq, len(out))
