@@ -10,7 +10,6 @@ close, so "the exact window support first crosses min_support" is known pane by 
 
 from __future__ import annotations
 
-import csv
 import dataclasses
 import json
 import math
@@ -22,6 +21,7 @@ from pathlib import Path
 import jsonschema
 import numpy as np
 import pytest
+from generalised_oracle import catalogue_details
 
 from streamcount.alerts.kinds import ALERT_KINDS
 from streamcount.alerts.record import alert_id
@@ -370,26 +370,14 @@ oat loaf,Oat loaf,loaves,
 """
 
 
-def _catalogue_facts(path: Path) -> dict[str, dict[str, str | None]]:
-    """Level and display name of every name in a catalogue file, read with the csv module
-    (the file is the reference)."""
-    facts: dict[str, dict[str, str | None]] = {}
-    with path.open(encoding="utf-8", newline="") as f:
-        for row in csv.DictReader(f):
-            for level in ("sku", "product"):
-                shown = row.get(f"{level}_name") or None
-                entry = facts.setdefault(row[level], {"level": level, "display_name": None})
-                entry["display_name"] = entry["display_name"] or shown
-    return facts
-
-
 def test_records_with_a_catalogue_carry_item_details_and_validate(tmp_path: Path):
     """With a catalogue, every record names the level and display name of its items the
-    catalogue knows (the file, read here with the csv module, is the reference); without one
+    catalogue knows (the file, read with the csv module by tests/generalised_oracle.py, is the
+    reference); without one
     the key is absent (the records above). Both validate against the schema."""
     path = tmp_path / "catalogue.csv"
     path.write_text(TEA_ROOM_CATALOGUE, encoding="utf-8")
-    facts = _catalogue_facts(path)
+    facts = catalogue_details(path, ("sku", "product"))
     assert facts["tarts"]["display_name"] == "<b>Tarts</b> \u05e2\u05d5\u05d2\u05d4"
     assert facts["lavender tea"] == {"level": "sku", "display_name": None}
     cfg = dataclasses.replace(

@@ -61,12 +61,22 @@ ItemDetail = dict[str, str | None]
 class ItemDetails:
     """Levels and display names of the items of one snapshot (a name index built once).
 
-    Cost: O(vocabulary) to build, O(1) per item asked.
+    Parameters
+    ----------
+    snapshot:
+        The snapshot the names are read from.
+    catalogue:
+        Whether a catalogue file is configured (``items.catalogue``). Filters or renames alone
+        also give snapshots a taxonomy, one that knows no item: :attr:`configured` is false
+        then, and :func:`item_details` gives no map.
+
+    Cost: O(vocabulary) to build the name index (on first use), O(1) per item asked.
     """
 
-    def __init__(self, snapshot: WindowSnapshot) -> None:
+    def __init__(self, snapshot: WindowSnapshot, *, catalogue: bool = True) -> None:
         self.snapshot = snapshot
         self.taxonomy = snapshot.taxonomy
+        self.catalogue = bool(catalogue)
         self._index: dict[str, int] | None = None
 
     def _id(self, name: str) -> int:
@@ -87,14 +97,15 @@ class ItemDetails:
 
     @property
     def configured(self) -> bool:
-        """Whether a catalogue is in force (the snapshot carries a taxonomy)."""
-        return self.taxonomy is not None
+        """Whether a catalogue file is in force (configured, and the snapshot carries its
+        taxonomy)."""
+        return self.catalogue and self.taxonomy is not None
 
     def about(self, names: Iterable[str]) -> dict[str, ItemDetail]:
         """The ``item_details`` map of ``names`` (see :func:`item_details`), by name; empty
         without a catalogue."""
         out: dict[str, ItemDetail] = {}
-        if self.taxonomy is None:
+        if not self.configured:
             return out
         for name in sorted(set(names)):
             found = self.detail(name)
@@ -123,8 +134,9 @@ def item_details(
     "display_name": <text or null>}``, sorted by name; ``None`` when no catalogue is in force
     (the caller then leaves the key out).
 
-    ``source`` is the snapshot the names were read from, or an :class:`ItemDetails` of it
-    (reused across calls: building one indexes the vocabulary once). Display names are
+    ``source`` is an :class:`ItemDetails` of the snapshot the names were read from (reused
+    across calls: it indexes the vocabulary once), or the snapshot itself (a catalogue file
+    is then taken to be configured when it carries a taxonomy). Display names are
     untrusted text, checked at load like item names (:mod:`streamcount.catalogue.text`).
     """
     details = source if isinstance(source, ItemDetails) else ItemDetails(source)

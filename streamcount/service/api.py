@@ -99,6 +99,8 @@ class ServiceApi:
         ``engine.max_itemset_size`` (``/v1/history`` refuses larger itemsets).
     clock:
         Wall time, for the event lag in ``/v1/status``.
+    catalogue:
+        A catalogue file is configured (``items.catalogue``): answers carry ``item_details``.
     """
 
     def __init__(
@@ -113,6 +115,7 @@ class ServiceApi:
         page: PageConfig | None = None,
         max_itemset_size: int = 3,
         clock: Callable[[], float] = time.time,
+        catalogue: bool = False,
     ) -> None:
         self._view = view
         self._metrics_payload = metrics_payload
@@ -126,6 +129,7 @@ class ServiceApi:
         self._page = page if page is not None else PageConfig()
         self._max_itemset_size = int(max_itemset_size)
         self._clock = clock
+        self._catalogue = bool(catalogue)
         #: (monotonic time, transactions_seen) at each publish, for orders_per_second
         self._seen: deque[tuple[float, int]] = deque(maxlen=256)
         #: the last full rules answer: (view, arguments, answer); pages open on one service
@@ -161,7 +165,7 @@ class ServiceApi:
         """Put the ``item_details`` of ``names`` into ``answer`` when a catalogue is in force."""
         cached = self._details
         if cached is None or cached[0] is not view.window:
-            cached = (view.window, ItemDetails(view.window))
+            cached = (view.window, ItemDetails(view.window, catalogue=self._catalogue))
             self._details = cached  # one reference swap: safe across threads
         details = item_details(cached[1], names)
         if details is not None:
