@@ -116,6 +116,7 @@ class Pipeline:
                 config.alerts,
                 max_itemset_size=config.engine.max_itemset_size,
                 window_panes=self.engine.window_panes,
+                item_details=config.items.catalogue is not None,
             )
             if alerts
             else None

@@ -11,6 +11,7 @@ that real file.
 
 from __future__ import annotations
 
+import csv
 from collections import Counter
 from collections.abc import Hashable
 from itertools import combinations
@@ -31,6 +32,7 @@ __all__ = [
     "LEVEL_CHOICES",
     "Taxonomy",
     "build_engine",
+    "catalogue_details",
     "oracle_counts",
     "streams",
     "taxonomies",
@@ -140,3 +142,28 @@ def build_engine(
         table, levels, ItemFilter.from_config(["fee:*"], None), RenameRules()
     )
     return Engine(EngineConfig(**engine), items=catalogue)  # type: ignore[arg-type]
+
+
+def catalogue_details(
+    path: Path, columns: tuple[str, ...] = COLUMNS, suffix: str = "_name"
+) -> dict[str, dict[str, str | None]]:
+    """``{name: {"level", "display_name"}}`` of every name in a catalogue file, read with the
+    csv module as the file's layout says (no streamcount): a name's level is the column it is
+    in (a name repeated in the next column of its row is one item, at the first), its display
+    name the non-empty ``<column><suffix>`` cell beside it (the first, for a repeated name)."""
+    out: dict[str, dict[str, str | None]] = {}
+    with path.open(encoding="utf-8-sig", newline="") as f:
+        for row in csv.DictReader(f):
+            previous = None
+            for column in columns:
+                name = (row.get(column) or "").strip()
+                if not name:
+                    continue
+                shown = (row.get(column + suffix) or "").strip() or None
+                if name == previous:  # the same item, at the level before
+                    entry = out[name]
+                else:
+                    entry = out.setdefault(name, {"level": column, "display_name": None})
+                entry["display_name"] = entry["display_name"] or shown
+                previous = name
+    return out

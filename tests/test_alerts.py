@@ -10,19 +10,28 @@ close, so "the exact window support first crosses min_support" is known pane by 
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 import random
 from collections import Counter
 from importlib import resources
+from pathlib import Path
 
 import jsonschema
 import numpy as np
 import pytest
+from generalised_oracle import catalogue_details
 
 from streamcount.alerts.kinds import ALERT_KINDS
 from streamcount.alerts.record import alert_id
-from streamcount.config.settings import AlertsConfig, Config, EngineConfig, RulesConfig
+from streamcount.config.settings import (
+    AlertsConfig,
+    Config,
+    EngineConfig,
+    ItemsConfig,
+    RulesConfig,
+)
 from streamcount.intake.records import Decoded
 from streamcount.pipeline import Pipeline
 
@@ -341,12 +350,60 @@ def test_records_validate_against_the_schema_and_kinds_agree():
     for a in alerts:
         jsonschema.validate(a, schema)
         json.dumps(a, allow_nan=False)
+        assert "item_details" not in a  # no catalogue: records as before
         assert a["id"] == alert_id(
             a["kind"],
             a["antecedent"] if a["kind"] != "surged" else a["items"],
             a["consequent"] if a["kind"] != "surged" else [],
             a["seq"],
         )
+
+
+# The tea room's catalogue: the planted pair's items as SKUs of two products (one with a
+# display name holding markup and right-to-left letters: untrusted text, allowed by the file's
+# rules, escaped where shown), a few background items, the rest unknown to it
+TEA_ROOM_CATALOGUE = """sku,sku_name,product,product_name
+fig tart,"Fig tart, slice",tarts,<b>Tarts</b> \u05e2\u05d5\u05d2\u05d4
+lavender tea,,herbal tea,Herbal tea
+mint sprig tea,Mint sprig tea,herbal tea,Herbal tea
+oat loaf,Oat loaf,loaves,
+"""
+
+
+def test_records_with_a_catalogue_carry_item_details_and_validate(tmp_path: Path):
+    """With a catalogue, every record names the level and display name of its items the
+    catalogue knows (the file, read with the csv module by tests/generalised_oracle.py, is the
+    reference); without one
+    the key is absent (the records above). Both validate against the schema."""
+    path = tmp_path / "catalogue.csv"
+    path.write_text(TEA_ROOM_CATALOGUE, encoding="utf-8")
+    facts = catalogue_details(path, ("sku", "product"))
+    assert facts["tarts"]["display_name"] == "<b>Tarts</b> \u05e2\u05d5\u05d2\u05d4"
+    assert facts["lavender tea"] == {"level": "sku", "display_name": None}
+    cfg = dataclasses.replace(
+        config(), items=ItemsConfig(catalogue=str(path), levels=("sku", "product"))
+    )
+    plants = {PAIR: lambda j: 0.05 if j >= 14 else 0.0, OTHER: lambda j: 0.05 if j < 20 else 0.0}
+    _, alerts = run(make_feed(28, plants, seed=31), cfg)
+    schema = _schema()
+    assert mine(alerts, PAIR)
+    # the planted pair at the product level too: tarts with herbal tea
+    assert [a for a in alerts if set(a["items"]) == {"tarts", "herbal tea"}]
+    # the other pair is unknown to the catalogue: an empty map, not a missing one
+    assert [a["item_details"] for a in mine(alerts, OTHER)] == [{}]
+    described = set()
+    for a in alerts:
+        jsonschema.validate(a, schema)
+        expected = {name: facts[name] for name in a["items"] if name in facts}
+        assert a["item_details"] == expected
+        described.update(expected)
+    assert {"fig tart", "lavender tea", "tarts", "herbal tea"} <= described
+    # the schema refuses an entry without its level
+    record = next(a for a in alerts if a["item_details"])
+    name = next(iter(record["item_details"]))
+    broken = {**record, "item_details": {name: {"display_name": "x"}}}
+    with pytest.raises(jsonschema.ValidationError):
+        jsonschema.validate(broken, schema)
 
 
 def test_schema_refuses_a_record_without_evidence():

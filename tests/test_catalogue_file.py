@@ -76,6 +76,9 @@ def test_a_good_file(tmp_path: Path) -> None:
         ("sku,product\na,p\na,q\n", 3, 1, "listed again"),
         # a right-to-left override in a display name, line 2, column 2
         ("sku,sku_name,product\na,tea\u202emal,p\n", 2, 2, "U+202E"),
+        # a right-to-left isolate and a line separator in display names (as item names: refused)
+        ("sku,product,product_name\na,p,Pots \u2067x\n", 2, 3, "U+2067"),
+        ("sku,sku_name,product\na,two\u2028lines,p\n", 2, 2, "U+2028"),
         # a control character in a name, line 2, column 3
         ("sku,product,category\na,p,c\x07\n", 2, 3, "U+0007"),
         # two display names for product p (line 3, column 4)

@@ -11,10 +11,18 @@ from html.parser import HTMLParser
 from typing import Any
 
 import pytest
+from generalised_oracle import catalogue_details
 
 from streamcount.config.load import fingerprint_settings
 from streamcount.config.settings import CheckpointConfig, PageConfig
-from streamcount.demo.run import PROMOTION, PacedFeedSource, demo_config, demo_feed
+from streamcount.demo.run import (
+    PROMOTION,
+    PacedFeedSource,
+    demo_config,
+    demo_feed,
+    demo_orders,
+)
+from streamcount.demo.skus import write_catalogue
 from streamcount.errors import CheckpointError
 from streamcount.service.checkpoint import load_latest_checkpoint, save_checkpoint
 from streamcount.service.loop import STATE_VERSION, Service
@@ -219,6 +227,61 @@ def test_history_refuses_bad_parameters(service: Service, query: dict, message: 
     res = get(service, "/v1/history", TOKEN, **query)
     assert res.status == 400, res.body
     assert message in res.json()["error"]["message"]
+
+
+# -- item details with a catalogue --------------------------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def shop(tmp_path_factory: pytest.TempPathFactory) -> tuple[Service, dict[str, Any]]:
+    """The demo shop as its log holds it (SKUs, fee lines), counted at the SKU and product
+    levels with the demo's catalogue file; and that file read with the csv module (the
+    reference for every level and display name)."""
+    catalogue = write_catalogue(tmp_path_factory.mktemp("shop") / "catalogue.csv")
+    config = demo_config(None, str(catalogue), ("sku", "product"))
+    svc = Service(config, sources=[PacedFeedSource(demo_orders(7, ORDERS), 0)])
+    svc.run(install_signals=False)
+    return svc, catalogue_details(catalogue)
+
+
+def _expected_details(names: Any, facts: dict[str, Any]) -> dict[str, Any]:
+    return {n: facts[n] for n in sorted(set(names)) if n in facts}
+
+
+def test_answers_carry_the_level_and_display_name_of_their_items(
+    shop: tuple[Service, dict[str, Any]], service: Service
+) -> None:
+    svc, facts = shop
+    rules = get(svc, "/v1/rules", TOKEN, limit=10000).json()
+    names = [n for r in rules["rules"] for n in r["antecedent"] + r["consequent"]]
+    assert names and rules["item_details"] == _expected_details(names, facts)
+    levels = {d["level"] for d in rules["item_details"].values()}
+    # rules between SKUs and between products (a product sold in one SKU is that SKU)
+    assert levels == {"sku", "product"}, levels
+    assert facts["wool-throw/ochre"] == {"level": "sku", "display_name": "Wool throw, ochre"}
+    # every item counted is in the catalogue: each one named is described
+    assert set(rules["item_details"]) == set(names)
+
+    itemsets = get(svc, "/v1/itemsets", TOKEN, min_support=0.01, limit=100000).json()
+    names = [n for s in itemsets["itemsets"] for n in s["items"]]
+    assert itemsets["item_details"] == _expected_details(names, facts)
+    assert {"wool-throw", "wool-throw/ochre"} <= set(itemsets["item_details"])
+
+    history = get(svc, "/v1/history", TOKEN, items=["wool-throw", "no-such-item"]).json()
+    assert history["item_details"] == {"wool-throw": facts["wool-throw"]}
+
+    # alert records carry theirs, from the pane close that raised them
+    alerts = get(svc, "/v1/alerts", TOKEN, limit=1000).json()["alerts"]
+    assert alerts
+    for a in alerts:
+        assert a["item_details"] == _expected_details(a["items"], facts)
+
+    # without a catalogue: no key at all, as before
+    for path in ("/v1/rules", "/v1/itemsets", "/v1/alerts"):
+        body = get(service, path, TOKEN).json()
+        assert "item_details" not in body
+        assert all("item_details" not in a for a in body.get("alerts", []))
+    assert "item_details" not in get(service, "/v1/history", TOKEN, items=["tea"]).json()
 
 
 def test_status_has_what_the_page_shows(service: Service) -> None:

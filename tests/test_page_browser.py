@@ -196,7 +196,7 @@ def feed(runner: ServiceRunner, workdir: Path) -> dict[str, Any]:
     followed = workdir / "orders.jsonl"
     first = FIRST_PART + BIDI_ORDERS
     followed.write_bytes(b"".join(lines[:first]))
-    return {"path": followed, "rest": b"".join(lines[first:])}
+    return {"path": followed, "rest": b"".join(lines[first:]), "all": b"".join(lines)}
 
 
 @pytest.fixture(scope="module")
@@ -507,6 +507,129 @@ def test_a_planted_change_shows_within_one_refresh(
     # the caution is on the page
     assert "signal for a person to review" in page.text_content("#caution")
     service.wait_counted(FIRST_PART + SECOND_PART)
+    watch.check()
+
+
+# The planted pair's products in a catalogue file whose display names hold markup and
+# right-to-left letters: untrusted text the file's rules allow (bidi controls are refused when
+# the file is read; tests/test_catalogue_file.py), which the page must show as text
+SCRIPT_DISPLAY = '<img src=x onerror="window.__pwned = 3">Heather comb honey \u0639\u0633\u0644'
+MARKUP_DISPLAY = "Quince <b>paste</b> <script>window.__pwned = 4</script> \u05e8\u05e4\u05d4"
+CATALOGUE_ROWS = [
+    ("sku", "sku_name", "product", "product_name"),
+    (PLANTED[0], SCRIPT_DISPLAY, "comb-honey", "Comb honey"),
+    (PLANTED[1], "", "fruit-paste", MARKUP_DISPLAY),
+]
+
+
+def _shortened(text: str | None) -> str | None:
+    """A name as the page writes it: its first 60 characters (NAME_SHOWN) and an ellipsis."""
+    if text is None or len(text) <= 60:
+        return text
+    return text[:60] + "…"
+
+
+def test_display_names_and_levels_show_as_text_beside_the_id(
+    runner: ServiceRunner,
+    feed: dict[str, Any],
+    context: BrowserContext,
+    watch: Watch,
+    workdir: Path,
+) -> None:
+    """With a catalogue: the rules table, the alert stream and the alert record show each
+    item's display name beside its id and its level as a tag, as the catalogue file (the
+    reference, written here) gives them; markup in a display name stays text."""
+    catalogue = workdir / "catalogue.csv"
+    with catalogue.open("w", encoding="utf-8", newline="") as f:
+        csv.writer(f).writerows(CATALOGUE_ROWS)
+    expected = {
+        PLANTED[0]: {"level": "sku", "display_name": SCRIPT_DISPLAY},
+        PLANTED[1]: {"level": "sku", "display_name": None},
+        "comb-honey": {"level": "product", "display_name": "Comb honey"},
+        "fruit-paste": {"level": "product", "display_name": MARKUP_DISPLAY},
+    }
+    orders = workdir / "orders-catalogue.jsonl"
+    orders.write_bytes(feed["all"])
+    svc = runner.start(
+        {
+            **CONFIG,
+            "input": {**CONFIG["input"], "path": str(orders)},
+            "items": {"catalogue": str(catalogue), "levels": ["sku", "product"]},
+        }
+    )
+    svc.wait_counted(FIRST_PART + SECOND_PART)
+    closes = (FIRST_PART + SECOND_PART) // PANE
+    rules = _api(svc, "/v1/rules?limit=10000")
+    assert rules["as_of"]["pane_close"] == closes
+    named = {n for r in rules["rules"] for n in r["antecedent"] + r["consequent"]}
+    assert rules["item_details"] == {n: expected[n] for n in sorted(named & set(expected))}
+    assert "fruit-paste" in rules["item_details"], "no rule with the planted product"
+
+    page = _open(context, watch, f"http://127.0.0.1:{svc.port}/")
+    _wait_close(page, closes)
+    # the rules table: filtered by a display name's words, every row names the product
+    page.fill("#filter", "quince paste")
+    assert page.locator("#rule-rows tr").count() == 0  # the markup sits between the words
+    page.fill("#filter", "<b>paste</b>")
+    rows = page.locator("#rule-rows tr")
+    assert rows.count() >= 1
+    entries = page.eval_on_selector_all(
+        "#rule-rows .item-entry",
+        """es => es.map(e => ({
+            id: e.querySelector("bdi.item").textContent,
+            shown: e.querySelector(".display-name bdi.display")?.textContent ?? null,
+            level: e.querySelector(".level-tag")?.textContent ?? null,
+        }))""",
+    )
+    assert entries
+    for entry in entries:
+        want = expected[entry["id"]]
+        assert entry["level"] == want["level"]
+        assert entry["shown"] == _shortened(want["display_name"])
+    assert {e["id"] for e in entries} >= {"fruit-paste"}
+    # nothing ran and no element came from a display name
+    assert page.evaluate("typeof window.__pwned") == "undefined"
+    assert page.evaluate("document.scripts.length") == 1
+    assert (
+        page.evaluate("document.querySelectorAll('#board img, #board script, #board b').length")
+        == 0
+    )
+
+    # the alert stream and the record: the planted change, its items described
+    alerts = _api(svc, "/v1/alerts?limit=10000")["alerts"]
+    mine = [a for a in alerts if set(a["items"]) & set(expected)]
+    assert mine, "no alert about the planted items"
+    alert = mine[-1]
+    assert alert["item_details"] == {
+        n: expected[n] for n in sorted(set(alert["items"]) & set(expected))
+    }
+    page.fill("#filter", "")
+    summary = page.text_content(f"#alert-{alert['id']} > summary")
+    for name, d in alert["item_details"].items():
+        assert name in summary and d["level"] in summary
+        if d["display_name"] is not None:
+            assert str(_shortened(d["display_name"])) in summary
+    page.click(f"#alert-{alert['id']} > summary")
+    listed = page.eval_on_selector_all(
+        f"#alert-{alert['id']} .record ul.item-details li",
+        """ls => ls.map(l => ({
+            id: l.dataset.item,
+            shown: l.querySelector("bdi.display")?.textContent ?? null,
+            level: l.querySelector(".level-tag").textContent,
+        }))""",
+    )
+    assert {e["id"]: {"level": e["level"], "display_name": e["shown"]} for e in listed} == {
+        n: {**d, "display_name": _shortened(d["display_name"])}
+        for n, d in alert["item_details"].items()
+    }
+    assert page.evaluate("typeof window.__pwned") == "undefined"
+    assert (
+        page.evaluate("document.querySelectorAll('#board img, #board script, #board b').length")
+        == 0
+    )
+    page.locator("#board").screenshot(path=str(workdir / "page-catalogue.png"))
+    page.close()
+    assert svc.stop() == 0
     watch.check()
 
 

@@ -54,6 +54,7 @@ from streamcount.alerts.detectors import (
 from streamcount.alerts.listing import RuleListing
 from streamcount.alerts.record import Alert
 from streamcount.alerts.tracker import CANDIDATE_SHARE, ChangeTracker
+from streamcount.catalogue.view import ItemDetails, item_details
 from streamcount.config.settings import AlertsConfig, RulesConfig
 from streamcount.engine.pane import Pane
 from streamcount.engine.snapshot import WindowSnapshot
@@ -101,6 +102,9 @@ class RuleMonitor:
         Largest itemset size counted (change tests run on sizes 2 and up).
     window_panes:
         Panes in a full window (a followed surge is let go after one window).
+    item_details:
+        A catalogue file is configured (``items.catalogue``): each alert carries the level and
+        display name of its items (:func:`~streamcount.catalogue.view.item_details`).
     """
 
     def __init__(
@@ -110,6 +114,7 @@ class RuleMonitor:
         *,
         max_itemset_size: int = 3,
         window_panes: int = 10,
+        item_details: bool = False,
     ) -> None:
         self.rules_config = rules
         self.alerts_config = alerts
@@ -120,6 +125,7 @@ class RuleMonitor:
         if alerts.surge:
             self.detectors.insert(1, self.surged)
         self.window_panes = int(window_panes)
+        self.item_details = bool(item_details)
         self._evaluations = 0
         self._warm_done = False
         #: first sequence number and start time of recent panes (for change points)
@@ -233,7 +239,7 @@ class RuleMonitor:
         raised: list[Raised] = []
         for det in self.detectors:
             raised.extend(det.fire(close, eligible[det.kind], alarms, self.budget))
-        return self._notify(raised)
+        return self._notify(raised, window)
 
     def _candidates(self, keys: Mapping[int, np.ndarray]) -> dict[int, np.ndarray]:
         """Keep only keys the tracker follows (the others have no test to charge)."""
@@ -261,9 +267,11 @@ class RuleMonitor:
             out[size] = np.concatenate([out.get(size, np.zeros(0, dtype=np.int64)), keys])
         return out
 
-    def _notify(self, raised: list[Raised]) -> list[Alert]:
+    def _notify(self, raised: list[Raised], window: WindowSnapshot) -> list[Alert]:
         """One notification per itemset (an itemset that emerges and surges at once is one
-        ``emerged`` alert that also names ``surged``); restart the tests of what was sent."""
+        ``emerged`` alert that also names ``surged``); restart the tests of what was sent.
+        With a catalogue, each alert carries the level and display name of its items
+        (``item_details``, read from ``window``)."""
         merged: dict[tuple[int, int], Raised] = {}
         for r in raised:
             key = (r.size, r.key)
@@ -279,6 +287,9 @@ class RuleMonitor:
             if r.rebase is not None:
                 self.tracker.rebase(r.size, np.array([r.key]), r.rebase)
         out = [r.alert for r in merged.values()]
+        if out and self.item_details:
+            details = ItemDetails(window, catalogue=True)
+            out = [replace(a, item_details=item_details(details, a.items)) for a in out]
         out.sort(key=lambda a: (a.kind, len(a.items), a.items))
         if out:
             logger.debug("pane close at seq %d: %d alerts", out[0].seq, len(out))

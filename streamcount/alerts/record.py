@@ -150,6 +150,11 @@ class Alert:
         The window of the pane close.
     thresholds:
         The rule thresholds (the practical floor) in force.
+    item_details:
+        With a catalogue (``items.catalogue`` / ``items.levels``): the level and display name
+        of the record's items that the catalogue knows, by name
+        (:func:`streamcount.catalogue.view.item_details`); ``None`` without a catalogue, and
+        then left out of the record.
     """
 
     id: str
@@ -166,10 +171,11 @@ class Alert:
     window: Mapping[str, int]
     thresholds: Mapping[str, object]
     also: tuple[str, ...] = field(default=())
+    item_details: Mapping[str, Mapping[str, str | None]] | None = None
 
     def as_dict(self) -> dict[str, object]:
         """The JSON record (``alert.schema.json``)."""
-        return {
+        out: dict[str, object] = {
             "id": self.id,
             "kind": self.kind,
             "seq": self.seq,
@@ -185,3 +191,6 @@ class Alert:
             "window": dict(self.window),
             "thresholds": dict(self.thresholds),
         }
+        if self.item_details is not None:
+            out["item_details"] = {name: dict(d) for name, d in self.item_details.items()}
+        return out

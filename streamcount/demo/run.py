@@ -354,18 +354,17 @@ def _summary(service: Any, console: ConsoleSink, elapsed: float, say: Any) -> No
         f"{w['max_error']} orders."
     )
     say("Alerts: " + ", ".join(f"{kinds.get(k, 0)} {k}" for k in ("emerged", "surged", "faded")))
-    rules = service.api.rules("lift", 5, None, None, None)["rules"]
+    answer = service.api.rules("lift", 5, None, None, None)
+    rules = answer["rules"]
     if rules:
         say("Active rules now (top 5 by lift):")
-        taxonomy = service.api.view.window.taxonomy
-        names = service.api.view.window.item_names
-        index = {name: i for i, name in enumerate(names)}
+        details = answer.get("item_details", {})
 
         def shown(items: list[str]) -> str:
             # a product or category is marked with its level; SKUs are shown as they are
             out = []
             for item in items:
-                level = None if taxonomy is None else taxonomy.level_of(index.get(item, -1))
+                level = details.get(item, {}).get("level")
                 out.append(f"{item} [{level}]" if level not in (None, "sku") else item)
             return " + ".join(out)
 

@@ -6,19 +6,26 @@ to the ``http`` source's queue, so a request never blocks counting and never see
 state. Every answer that describes counts names the window it was computed on, and every
 answer the page uses carries ``as_of``: the pane-close number and the window's last sequence
 number of the view it was read from, so a reader combines only answers of one view.
+
+With a catalogue (``items.catalogue`` / ``items.levels``), the answers that name items
+(``/v1/rules``, ``/v1/itemsets``, ``/v1/history``) carry one top-level ``item_details`` map for
+the items they name (:func:`streamcount.catalogue.view.item_details`: level and display name,
+only for items the catalogue knows), so a name that appears in many rules is described once;
+without a catalogue the key is left out. Alert records carry their own (made when raised).
 """
 
 from __future__ import annotations
 
 import time
 from collections import deque
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from concurrent.futures import Future
 from concurrent.futures import TimeoutError as FutureTimeout
 from dataclasses import dataclass, field
 from typing import Any
 
 from streamcount.alerts.listing import ListedRule, RuleKey
+from streamcount.catalogue.view import ItemDetails, item_details
 from streamcount.config.settings import PageConfig
 from streamcount.engine.snapshot import EngineStatistics, WindowSnapshot
 from streamcount.errors import InputError
@@ -92,6 +99,8 @@ class ServiceApi:
         ``engine.max_itemset_size`` (``/v1/history`` refuses larger itemsets).
     clock:
         Wall time, for the event lag in ``/v1/status``.
+    catalogue:
+        A catalogue file is configured (``items.catalogue``): answers carry ``item_details``.
     """
 
     def __init__(
@@ -106,6 +115,7 @@ class ServiceApi:
         page: PageConfig | None = None,
         max_itemset_size: int = 3,
         clock: Callable[[], float] = time.time,
+        catalogue: bool = False,
     ) -> None:
         self._view = view
         self._metrics_payload = metrics_payload
@@ -119,11 +129,14 @@ class ServiceApi:
         self._page = page if page is not None else PageConfig()
         self._max_itemset_size = int(max_itemset_size)
         self._clock = clock
+        self._catalogue = bool(catalogue)
         #: (monotonic time, transactions_seen) at each publish, for orders_per_second
         self._seen: deque[tuple[float, int]] = deque(maxlen=256)
         #: the last full rules answer: (view, arguments, answer); pages open on one service
         #: ask the same question of the same view, so it is built once per view
         self._rules_cache: tuple[View, tuple[Any, ...], dict[str, Any]] | None = None
+        #: the item details of the last view's window (its name index is built once)
+        self._details: tuple[WindowSnapshot, ItemDetails] | None = None
 
     # -- called by the loop -------------------------------------------------------------------
 
@@ -147,6 +160,16 @@ class ServiceApi:
     def beat(self) -> None:
         """The loop is alive (one turn done)."""
         self._last_turn = time.monotonic()
+
+    def _add_details(self, view: View, answer: dict[str, Any], names: Iterable[str]) -> None:
+        """Put the ``item_details`` of ``names`` into ``answer`` when a catalogue is in force."""
+        cached = self._details
+        if cached is None or cached[0] is not view.window:
+            cached = (view.window, ItemDetails(view.window, catalogue=self._catalogue))
+            self._details = cached  # one reference swap: safe across threads
+        details = item_details(cached[1], names)
+        if details is not None:
+            answer["item_details"] = details
 
     # -- ApiBackend ---------------------------------------------------------------------------
 
@@ -195,16 +218,20 @@ class ServiceApi:
         view = self._view
         support = self._min_support if min_support is None else min_support
         out = []
+        names: set[str] = set()
         for s in view.window.frequent(support, sizes=None if size is None else [size]):
             out.append(s.as_dict())
+            names.update(s.items)
             if len(out) >= limit:
                 break
-        return {
+        answer = {
             "as_of": dict(view.as_of),
             "window": view.window.window_dict(),
             "min_support": support,
             "itemsets": out,
         }
+        self._add_details(view, answer, names)
+        return answer
 
     def rules(
         self,
@@ -249,6 +276,7 @@ class ServiceApi:
             "window": window,
             "rules": [{**r.as_dict(), **notes.get(r.key, blank)} for r in chosen[:limit]],
         }
+        self._add_details(view, answer, (name for r in chosen[:limit] for name in r.items))
         self._rules_cache = (view, args, answer)  # one reference swap: safe across threads
         return answer
 
@@ -284,7 +312,7 @@ class ServiceApi:
             if tuple(sorted(a["items"])) == key and (since_seq is None or int(a["seq"]) > since_seq)
         ]
         summary = history.summary() if history is not None else {}
-        return {
+        answer = {
             "as_of": dict(view.as_of),
             "items": names,
             "since": since,
@@ -295,6 +323,8 @@ class ServiceApi:
             "points": [] if history is None else history.points_of(names, since),
             "alerts": alerts,
         }
+        self._add_details(view, answer, names)
+        return answer
 
     def ingest(self, body: bytes, content_type: str) -> dict[str, Any]:
         """Queue a body for the loop, wait until it is counted, answer what became of it."""

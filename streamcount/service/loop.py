@@ -167,6 +167,7 @@ class Service:
             page=config.page,
             max_itemset_size=config.engine.max_itemset_size,
             clock=clock,
+            catalogue=config.items.catalogue is not None,
         )
         self.server: Any = None
         self.extensions.bind(self)

@@ -2,8 +2,8 @@
 //
 // Rules kept here:
 // - every value from the service is written as text (textContent, SVG text nodes), never as
-//   HTML; item names come from the feed and are untrusted (the CSP also refuses inline script
-//   and Trusted Types make HTML sinks throw);
+//   HTML; item names come from the feed and display names from the catalogue file: both are
+//   untrusted (the CSP also refuses inline script and Trusted Types make HTML sinks throw);
 // - the token, when the service asks for one, lives in this tab's sessionStorage and is sent
 //   only as an Authorization header; never a cookie, never in a URL;
 // - answers are combined only when they carry the same as_of (pane close and last sequence
@@ -25,6 +25,7 @@ const state = {
   rules: [],
   rulesVersion: null,
   rulesWindow: null,
+  ruleDetails: new Map(), // item_details of the rules answer: name -> {level, display_name}
   alerts: [], // oldest first, deduplicated by id
   alertSeq: null,
   selected: null, // {items: [...], rule: [ante, cons] | null}
@@ -120,34 +121,58 @@ function visibleName(name) {
   );
 }
 
-function nameNode(name) {
+function nameNode(name, cls = "item") {
   const shown = visibleName(name);
   const chars = [...shown];
-  if (chars.length <= NAME_SHOWN) return el("bdi", { class: "item" }, shown);
+  if (chars.length <= NAME_SHOWN) return el("bdi", { class: cls }, shown);
   return el(
     "span",
     {},
-    el("bdi", { class: "item", title: shown.slice(0, 2000) }, chars.slice(0, NAME_SHOWN).join("") + "…"),
+    el("bdi", { class: cls, title: shown.slice(0, 2000) }, chars.slice(0, NAME_SHOWN).join("") + "…"),
     el("span", { class: "item-more" }, ` (${int([...String(name)].length)} characters)`),
   );
 }
 
-function namesNode(names) {
+// an answer's item_details (name -> {level, display_name}, only with a catalogue) as a Map: a
+// name is any text, "__proto__" included, so never an object's own keys
+function detailsMap(answer) {
+  const out = new Map();
+  const d = answer && answer.item_details;
+  if (d && typeof d === "object") for (const [name, v] of Object.entries(d)) if (v && typeof v === "object") out.set(name, v);
+  return out;
+}
+
+// an item: its id, then (with a catalogue) its display name and its level as a small tag;
+// the display name is untrusted text like the id, shown the same way
+function itemNode(name, details) {
+  const d = details ? details.get(name) : undefined;
+  const id = nameNode(name);
+  if (!d || (!d.display_name && !d.level)) return id;
+  return el(
+    "span",
+    { class: "item-entry" },
+    id,
+    d.display_name ? el("span", { class: "display-name" }, nameNode(d.display_name, "display")) : null,
+    d.level ? el("span", { class: "level-tag", "data-level": String(d.level) }, visibleName(d.level)) : null,
+  );
+}
+
+function namesNode(names, details) {
   const out = [];
   names.forEach((n, i) => {
     if (i) out.push(el("span", { class: "sep", "aria-label": "and" }, "+"));
-    out.push(nameNode(n));
+    out.push(itemNode(n, details));
   });
   return out;
 }
 
-function ruleNode(ante, cons) {
+function ruleNode(ante, cons, details) {
   return el(
     "span",
     { class: "rule-text" },
-    namesNode(ante),
+    namesNode(ante, details),
     el("span", { class: "arrow", "aria-label": "then" }, "→"),
-    namesNode(cons),
+    namesNode(cons, details),
   );
 }
 
@@ -295,6 +320,7 @@ function apply({ status, rules, alerts, history, key, hist }) {
     state.rules = rules.rules;
     state.rulesVersion = rules.version;
     state.rulesWindow = rules.window;
+    state.ruleDetails = detailsMap(rules);
     renderRules();
   }
   // alerts: the new ones since the last sequence number we hold
@@ -313,7 +339,7 @@ function apply({ status, rules, alerts, history, key, hist }) {
     const seen = new Set(base.alerts.map((a) => a.id));
     const marks = base.alerts.concat(history.alerts.filter((a) => !seen.has(a.id)));
     const last = points.length ? points[points.length - 1].pane_close : base.lastClose;
-    state.hist = { key, points, alerts: marks, followed: history.followed, lastClose: last };
+    state.hist = { key, points, alerts: marks, followed: history.followed, lastClose: last, details: detailsMap(history) };
   }
   if (!state.selected && state.rules.length) {
     const top = state.rules[0];
@@ -470,9 +496,13 @@ function sortValue(r, key) {
 
 function visibleRules() {
   const f = state.filter.trim().toLowerCase();
-  const rows = state.rules.filter(
-    (r) => !f || r.antecedent.some((n) => n.toLowerCase().includes(f)) || r.consequent.some((n) => n.toLowerCase().includes(f)),
-  );
+  // a name matches by its id or its display name
+  const hit = (n) => {
+    if (n.toLowerCase().includes(f)) return true;
+    const d = state.ruleDetails.get(n);
+    return Boolean(d && d.display_name && String(d.display_name).toLowerCase().includes(f));
+  };
+  const rows = state.rules.filter((r) => !f || r.antecedent.some(hit) || r.consequent.some(hit));
   const { key, dir } = state.sort;
   rows.sort((a, b) => {
     const x = sortValue(a, key);
@@ -532,7 +562,7 @@ function renderRules() {
     const tr = el(
       "tr",
       { class: isChosen ? "chosen" : null, "aria-current": isChosen ? "true" : null, "data-rule": JSON.stringify([r.antecedent, r.consequent]) },
-      el("td", { "data-label": "rule", class: "rule-cell" }, ruleNode(r.antecedent, r.consequent), isChosen ? el("span", { class: "chosen-tag" }, "◀ traced below") : null),
+      el("td", { "data-label": "rule", class: "rule-cell" }, ruleNode(r.antecedent, r.consequent, state.ruleDetails), isChosen ? el("span", { class: "chosen-tag" }, "◀ traced below") : null),
       MEASURES.map((m) => measureCell(r, m, scale[m])),
       el("td", { "data-label": "active since", class: "num" }, r.since_seq === null ? "–" : `order ${int(r.since_seq)}`),
       changeCell(r),
@@ -616,9 +646,32 @@ function measureText(m, f) {
   return m ? `${f(m.value)} [${f(m.low)} – ${f(m.high)}]` : "–";
 }
 
+// the record's items with what the catalogue says of each (only with a catalogue)
+function catalogueList(items, details) {
+  const known = items.filter((n) => details.has(n));
+  if (!known.length) return null;
+  return el(
+    "ul",
+    { class: "item-details" },
+    known.map((n) => {
+      const d = details.get(n);
+      return el(
+        "li",
+        { "data-item": n },
+        nameNode(n),
+        " — ",
+        d.display_name ? nameNode(d.display_name, "display") : el("span", { class: "empty" }, "no display name"),
+        " ",
+        d.level ? el("span", { class: "level-tag", "data-level": String(d.level) }, visibleName(d.level)) : el("span", { class: "empty" }, "no level"),
+      );
+    }),
+  );
+}
+
 function alertItem(a) {
   const ev = a.evidence || {};
-  const head = a.antecedent ? ruleNode(a.antecedent, a.consequent) : el("span", {}, namesNode(a.items));
+  const described = detailsMap(a);
+  const head = a.antecedent ? ruleNode(a.antecedent, a.consequent, described) : el("span", {}, namesNode(a.items, described));
   const fields = [
     ...pair("id", a.id),
     ...pair("kind", [kindNode(a.kind), a.also && a.also.length ? ` (also ${a.also.join(", ")})` : ""]),
@@ -629,6 +682,8 @@ function alertItem(a) {
     ...pair("test", `CUSUM ${Number(ev.statistic).toFixed(2)} reached ${Number(ev.threshold).toFixed(2)} (alternative ×${ev.ratio}, direction ${ev.direction})`),
     ...pair("budget", `${ev.budget_per_million} per million orders over ${int(ev.tests)} tests (level ${Number(ev.level).toExponential(2)})`),
   ];
+  const catalogue = catalogueList(a.items || [], described);
+  if (catalogue) fields.push(...pair("catalogue", catalogue));
   for (const [name, m] of Object.entries(a.measures || {})) fields.push(...pair(name, measureText(m, FORMAT[name] || dec)));
   const p = a.p_value;
   fields.push(...pair("p-value", p === null ? "–" : p === 0 ? "below 1e-300" : Number(p).toExponential(2)));
@@ -709,8 +764,9 @@ function renderTrace() {
     title.append("Choose a rule or a change to trace its support over the pane closes in memory.");
     return;
   }
-  title.append("Support of ", el("span", {}, namesNode([...sel.items].sort())), " bought together, at each pane close");
   const hist = state.hist && state.hist.key === itemsKey(sel.items) ? state.hist : null;
+  const details = hist && hist.details ? hist.details : state.ruleDetails;
+  title.append("Support of ", el("span", {}, namesNode([...sel.items].sort(), details)), " bought together, at each pane close");
   const points = hist ? hist.points : [];
   box.append(drawChart(points, hist ? hist.alerts : [], state.status ? state.status.min_support : null));
   const follow = hist && hist.followed ? "followed: a point is added at every pane close" : "not followed now (no active rule, no recent change): no new points";
