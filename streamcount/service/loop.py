@@ -20,7 +20,7 @@ import threading
 import time
 from collections import Counter
 from collections.abc import Callable, Mapping, Sequence
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 from typing import Any
 
 from prometheus_client import (
@@ -41,12 +41,12 @@ from streamcount.intake.formats import Decoder, make_decoder
 from streamcount.intake.records import Decoded, RecordBatch
 from streamcount.intake.sources import SOURCES, Source, build_sources
 from streamcount.pipeline import Pipeline
-from streamcount.rules.derive import Rule, measure_rules
-from streamcount.service.api import ServiceApi, View, rule_notes
+from streamcount.service.api import ServiceApi
 from streamcount.service.checkpoint import load_latest_checkpoint, save_checkpoint
 from streamcount.service.extension import BatchHandler, Extensions, ServiceExtension
 from streamcount.service.history import HistoryStore
 from streamcount.service.metrics import Metrics, RuleSample, ServiceState
+from streamcount.service.published import OVERLAY_SECONDS, ViewBuilder
 
 __all__ = ["STATE_VERSION", "Service"]
 
@@ -59,10 +59,6 @@ STATE_VERSION = 3
 
 _READ_RECORDS = 20000  # records taken from the sources per turn
 _PUBLISH_SECONDS = 0.5  # the HTTP view is refreshed at most this often (and at pane close)
-#: a buffer left uncounted this long is shown as an exact overlay (a quiet feed's latest
-#: orders appear within this delay plus one publish); while batches keep being counted the
-#: overlay is skipped, it would cost an exact count per publish for little news
-_OVERLAY_SECONDS = 1.0
 
 
 @dataclass(slots=True)
@@ -118,8 +114,6 @@ class Service:
         self._last_publish = 0.0
         self._unpublished = False  # counted since the view was last built
         self._last_input = time.monotonic()  # when a record was last read
-        self._counted_key: tuple[tuple[int, int], ...] = ()
-        self._counted_at = time.monotonic()  # when the counted panes last changed
         self.turns = 0
 
         self.extensions = (
@@ -156,9 +150,18 @@ class Service:
             state=self._service_state,
             top_rules=config.metrics.top_rules,
         )
+        self._views = ViewBuilder(
+            config,
+            self.pipeline,
+            self.history,
+            self.sinks,
+            self.extensions,
+            sources=lambda: [i.source for i in self.inputs],
+            last_checkpoint=lambda: self._last_checkpoint_unix,
+        )
         ingest = next((i.source.ingest for i in self.inputs if i.source.ingest), None)
         self.api = ServiceApi(
-            self._build_view(None),
+            self._views.build(None),
             metrics_payload=lambda: (generate_latest(self.registry), CONTENT_TYPE_LATEST),
             min_support=config.rules.min_support,
             ingest=ingest,
@@ -362,7 +365,7 @@ class Service:
         if (
             not self.api.view.status.get("overlay")
             and self.pipeline.engine.window.buffered
-            and now - self._counted_at >= _OVERLAY_SECONDS
+            and now - self._views.counted_at >= OVERLAY_SECONDS
         ):
             self._unpublished = True  # a buffer left uncounted: time to show the overlay
         if self._unpublished and now - self._last_publish >= _PUBLISH_SECONDS:
@@ -459,115 +462,8 @@ class Service:
 
     # -- published view ----------------------------------------------------------------------
 
-    def _build_view(self, previous: View | None, window: WindowSnapshot | None = None) -> View:
-        engine = self.pipeline.engine
-        counted = self._window_key()
-        now = time.monotonic()
-        if counted != self._counted_key:
-            self._counted_key, self._counted_at = counted, now
-        # a buffer left uncounted for a while is shown as an exact overlay
-        stale = engine.window.buffered > 0 and now - self._counted_at >= _OVERLAY_SECONDS
-        key = (*counted, (-1, engine.window.buffered if stale else 0))
-        fresh = stale
-        if window is None:
-            # the window changes only when a batch is counted (or the overlay changes);
-            # statistics change with every transaction buffered, so a view is rebuilt without
-            # re-summing unchanged panes
-            if previous is not None and previous.window_key == key:
-                window, fresh = previous.window, previous.status.get("overlay", False)
-            else:
-                window = engine.fresh_snapshot() if stale else engine.snapshot()
-        else:
-            fresh = False
-        stats = replace(
-            engine.statistics(),
-            window_transactions=window.transactions,
-            window_max_error=window.max_error,
-        )
-        monitor = self.pipeline.monitor
-        listed = monitor.listing.active() if monitor is not None else []
-        rules: tuple[Rule, ...] = tuple(s.rule for s in listed)
-        rules_window = self.pipeline.rules_window
-        budget = monitor.budget if monitor is not None else None
-        if fresh and rules:
-            # the active rules re-measured with the overlay (the list changes at pane closes)
-            rules = tuple(measure_rules(window, [r.key for r in rules], config=self.config.rules))
-            rules_window = window.window_dict()
-        alerts = tuple(self.pipeline.alert_history)
-        closes = self.pipeline.closes
-        as_of = {"pane_close": closes, "last_seq": int(window.last_seq)}
-        rules_seq = window.last_seq if rules_window is None else rules_window["last_seq"]
-        history = self.history.view
-        status = {
-            "version": __version__,
-            "window": window.window_dict(),
-            "transactions_seen": stats.transactions_seen,
-            "rejected": dict(self.pipeline.rejected_counts),
-            "buffered_transactions": stats.buffered_transactions,
-            "tracked_itemsets": {str(k + 1): n for k, n in enumerate(stats.tracked_itemsets)},
-            "held_bytes": stats.held_bytes,
-            "live_panes": stats.live_panes,
-            "window_panes": stats.window_panes,
-            "warm": engine.window_full,
-            "active_rules": len(rules),
-            "alerts": dict(self.pipeline.alert_counts),
-            "vocabulary_items": stats.vocabulary_items,
-            "last_checkpoint_unix": self._last_checkpoint_unix,
-            "max_event_ts": stats.max_event_ts,
-            "rules_window": rules_window,
-            "overlay": fresh,
-            "sources": [self._source_status(i.source) for i in self.inputs],
-            "alerts_budget": None if budget is None else budget.as_dict(),
-            "as_of": as_of,
-            "fill": self._fill(window, stats.live_panes, stats.window_panes),
-            "min_support": self.config.rules.min_support,
-            "checkpoints": bool(self.config.checkpoint.checkpoint_dir),
-            "sinks": {
-                name: {"sent": st.sent, "failed": st.failed, "dropped": st.dropped}
-                for name, st in self.sinks.stats_by_sink().items()
-            },
-            "history": history.summary(),
-            "catalogue": self.pipeline.catalogue_status(),
-        }
-        self.extensions.add_status(status)
-        return View(
-            window,
-            stats,
-            rules,
-            alerts,
-            status,
-            rules_window,
-            key,
-            as_of=as_of,
-            history=history,
-            rule_notes=rule_notes(listed, alerts),
-            rules_version=f"{closes}.{rules_seq}",
-        )
-
-    def _fill(self, window: WindowSnapshot, live_panes: int, window_panes: int) -> float:
-        """How full the window is: transactions over ``engine.window_size`` (count-based), or
-        live panes over the panes of a full window (time-based); at most 1."""
-        engine = self.config.engine
-        if engine.window_seconds is None:
-            return min(1.0, window.transactions / engine.window_size)
-        return min(1.0, live_panes / max(1, window_panes))
-
-    @staticmethod
-    def _source_status(source: Source) -> dict[str, Any]:
-        health = source.health()
-        out: dict[str, Any] = {"name": source.name, "connected": health.connected}
-        if health.bus is not None:
-            out["lag_messages"] = health.bus.lag_messages
-        if health.gap is not None:
-            out["gap"] = health.gap
-        return out
-
-    def _window_key(self) -> tuple[tuple[int, int], ...]:
-        """What the window's counts depend on: each live pane and how much of it is counted."""
-        return tuple((p.index, p.counted) for p in self.pipeline.engine.window.panes.values())
-
     def _publish(self, window: WindowSnapshot | None = None) -> None:
-        self.api.publish(self._build_view(self.api.view, window))
+        self.api.publish(self._views.build(self.api.view, window))
         self._last_publish = time.monotonic()
         self._unpublished = False
 
