@@ -21,7 +21,7 @@ from pathlib import Path
 
 import pytest
 from data_files import data_path
-from hypothesis import given, settings
+from hypothesis import assume, given, settings
 from hypothesis import strategies as st
 
 from streamcount import replay_workers
@@ -97,6 +97,9 @@ def test_parts_read_exactly_as_the_whole_file(
     in order: a part starts just after the last newline of a block of the reading grid."""
     path = tmp_path_factory.mktemp("parts") / "f.txt"
     data = b"\n".join(lines) + (b"\n" if final_newline and lines else b"")
+    # a file starting with the gzip magic bytes is read as gzip (open_input), which is never
+    # read in parts: not what this test is about
+    assume(not data.startswith(b"\x1f\x8b"))
     path.write_bytes(data)
 
     def batches(**kw: int) -> list[tuple[object, ...]]:
