@@ -26,19 +26,18 @@ import dataclasses
 import math
 from collections import Counter
 from collections.abc import Callable, Iterable, Mapping, Sequence
-from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 
 from streamcount.config.load import config_from_mapping
 from streamcount.config.settings import EngineConfig
-from streamcount.engine.counters import Level, LossySummary, bucket_width
-from streamcount.engine.guards import Rejection, size_guards, time_guards
-from streamcount.engine.merged import MergedSummary
+from streamcount.engine.counters import bucket_width
+from streamcount.engine.external import ExternalPanes
+from streamcount.engine.guards import AddResult, Rejection, size_guards, time_guards
 from streamcount.engine.pane import Pane
-from streamcount.engine.rows import renumber, select_rows, sort_dedupe, take_rows
-from streamcount.engine.snapshot import EngineStatistics, WindowSnapshot
+from streamcount.engine.reads import EngineReads
+from streamcount.engine.rows import select_rows, sort_dedupe, take_rows
 from streamcount.engine.taxonomy import ItemResolver, ItemTables
 from streamcount.engine.vocab import ItemVocabulary
 from streamcount.engine.window import SlidingWindow
@@ -51,17 +50,7 @@ STATE_VERSION = 1
 COMPACT_MIN_RELEASED = 4096
 
 
-@dataclass(frozen=True, slots=True)
-class AddResult:
-    accepted: int
-    rejections: tuple[Rejection, ...] = ()
-    panes_closed: int = 0
-    #: sequence number of the last accepted transaction after this call
-    last_seq: int = 0
-    rejected_by_reason: dict[str, int] = field(default_factory=dict)
-
-
-class Engine:
+class Engine(ExternalPanes, EngineReads):
     """Itemset counts over a sliding window with a guaranteed error bound.
 
     Parameters
@@ -262,71 +251,6 @@ class Engine:
             flat, distinct = select_rows(flat, distinct, ok)
         return self._admit(flat, distinct, keep, ts, pane_idx, rejections)
 
-    def start_at(self, seq: int) -> None:
-        """Number the next accepted transaction ``seq`` (a fresh engine counting a later part
-        of a feed whose first ``seq - 1`` transactions are counted elsewhere)."""
-        if self.transactions_seen or self.next_seq != 1:
-            raise ValueError("start_at: only a fresh engine can start at another sequence number")
-        if seq < 1:
-            raise ValueError(f"start_at: seq = {seq}; sequence numbers start at 1")
-        self.next_seq = int(seq)
-
-    def add_counted_pane(
-        self,
-        levels: Sequence[Level],
-        names: Sequence[str],
-        transactions: int,
-        *,
-        min_ts: float | None = None,
-        max_ts: float | None = None,
-    ) -> AddResult:
-        """Take a whole pane counted elsewhere: the next ``pane_size`` transactions, as the
-        Lossy Counting summary of exactly those transactions (``levels``: one per itemset
-        size, item ids indexing ``names``), then close it as :meth:`add` would.
-
-        Gives the same window as counting those transactions here (a worker that counted
-        them with this engine's settings produced the same summary): the names are interned
-        in the given order, rows are renumbered to this engine's ids, and ``on_pane_closed``
-        runs. Count-based windows only; the pane must start at the next pane boundary.
-
-        Raises
-        ------
-        ValueError
-            A time-based window, a pane that is not whole or not next, or levels that do not
-            fit the settings.
-        """
-        size = self.pane_size
-        if size is None:
-            raise ValueError("add_counted_pane: count-based windows only")
-        if transactions != size or (self.next_seq - 1) % size:
-            raise ValueError(
-                f"add_counted_pane: a pane of {transactions} transactions at sequence number "
-                f"{self.next_seq}; a counted pane must hold pane_size={size} transactions "
-                "and start at a pane boundary"
-            )
-        if len(levels) != self.max_itemset_size:
-            raise ValueError(
-                f"add_counted_pane: {len(levels)} levels for max_itemset_size="
-                f"{self.max_itemset_size}"
-            )
-        index = (self.next_seq - 1) // size
-        if index in self.window.panes:
-            raise ValueError(f"add_counted_pane: pane {index} already holds transactions")
-        ids = self.vocabulary.encode_flat(names, len(names))
-        pane = self.window.pane(index)
-        pane.summary = LossySummary.from_levels(
-            self.epsilon, self.max_itemset_size, size, renumber(levels, ids)
-        )
-        pane.first_seq, pane.last_seq = self.next_seq, self.next_seq + size - 1
-        pane.min_ts, pane.max_ts = min_ts, max_ts
-        self.next_seq += size
-        self.transactions_seen += size
-        self.window.close_counted(pane)
-        self.last_closed = pane
-        if self.on_pane_closed is not None:
-            self.on_pane_closed(self)
-        return AddResult(size, (), 1, self.next_seq - 1, {})
-
     def _time_guards(
         self,
         t: int,
@@ -427,81 +351,6 @@ class Engine:
             raise ValueError("this engine was built without a catalogue (items=None)")
         self.items.reset(items)
         self.items.sync(self.vocabulary)
-
-    def add_merged_pane(
-        self,
-        index: int,
-        levels: Sequence[Level],
-        names: Sequence[str],
-        transactions: int,
-        *,
-        absent_bound: int,
-        parts: int = 1,
-        min_ts: float | None = None,
-        max_ts: float | None = None,
-    ) -> AddResult:
-        """Take pane ``index`` of a time-based window, merged from the summaries of ``parts``
-        parts of a feed counted elsewhere (:func:`streamcount.engine.merged.merge_parts`:
-        ``levels``, one per itemset size, item ids indexing ``names``), and close it as
-        :meth:`add` closes a pane: ``on_pane_closed`` runs, then the vocabulary may be
-        compacted. The names are interned in the given order and rows renumbered to this
-        engine's ids.
-
-        The pane keeps the parts' summed ``absent_bound`` (:class:`MergedSummary`), so the
-        window's ``max_error`` is the sum of every part's bound. Its transactions get the next
-        sequence numbers, in one run. A pane of no transactions (every part empty) creates
-        nothing and is not evaluated, as in one engine, where an index without transactions
-        never becomes a pane: the panes up to ``index`` count as closed, and the window's end
-        stays at the newest pane with transactions until :meth:`advance_watermark` moves it (a
-        quiet feed).
-        ``min_ts`` and ``max_ts`` are the earliest and latest event times the parts counted.
-        Panes must come in index order.
-
-        Raises
-        ------
-        ValueError
-            A count-based window, a pane at or below the last closed one, or levels that do
-            not fit the settings.
-        """
-        if not self.time_based:
-            raise ValueError("add_merged_pane: time-based windows only (count-based: see add)")
-        if index <= self.window.closed_through:
-            raise ValueError(
-                f"add_merged_pane: pane {index} is at or below the last closed pane "
-                f"({self.window.closed_through}); merged panes come in index order"
-            )
-        if len(levels) != self.max_itemset_size:
-            raise ValueError(
-                f"add_merged_pane: {len(levels)} levels for max_itemset_size="
-                f"{self.max_itemset_size}"
-            )
-        n = int(transactions)
-        if n == 0:
-            self.window.closed_through = index
-            return AddResult(0, last_seq=self.next_seq - 1)
-        ids = self.vocabulary.encode_flat(names, len(names)).astype(np.int64)
-        pane = self.window.pane(index)
-        pane.summary = MergedSummary(
-            self.epsilon,
-            self.max_itemset_size,
-            n,
-            renumber(levels, ids),
-            absent=absent_bound,
-            parts=parts,
-        )
-        pane.first_seq, pane.last_seq = self.next_seq, self.next_seq + n - 1
-        pane.min_ts, pane.max_ts = min_ts, max_ts
-        self.next_seq += n
-        self.transactions_seen += n
-        if max_ts is not None:
-            prev = self.max_event_ts
-            self.max_event_ts = max_ts if prev is None else max(prev, max_ts)
-        if index > self.window.newest_index:
-            self.window.advance_to(index)
-        self._close(pane)
-        if self.auto_compact:
-            self.compact_vocabulary()
-        return AddResult(n, (), 1, self.next_seq - 1, {})
 
     def _route_count(
         self, flat: np.ndarray, lengths: np.ndarray, seq: np.ndarray, ts: np.ndarray
@@ -679,74 +528,6 @@ class Engine:
         such a pane becomes ``ceil(n/w)`` instead of ``n/w``.
         """
         self.window.flush()
-
-    # -- queries ------------------------------------------------------------------------------
-
-    def snapshot(self, *, newest: int | None = None, skip_newest: int = 0) -> WindowSnapshot:
-        """Frozen counts over the window (counted transactions only).
-
-        ``newest=r`` restricts to the ``r`` most recent panes (a recent window);
-        ``skip_newest=r`` leaves them out (a baseline that excludes the recent window).
-        Cost: one sort over the panes' tracked entries per itemset size.
-        """
-        return self._tag(
-            self.window.snapshot(self.vocabulary.names, newest=newest, skip_newest=skip_newest)
-        )
-
-    def fresh_snapshot(self) -> WindowSnapshot:
-        """The window with every buffered transaction added as an overlay (what the
-        API and replay report); see :meth:`SlidingWindow.fresh_snapshot`."""
-        return self._tag(self.window.fresh_snapshot(self.vocabulary.names))
-
-    def split_snapshot(
-        self, recent_panes: int
-    ) -> tuple[WindowSnapshot, WindowSnapshot, WindowSnapshot]:
-        """``(window, recent, baseline)``; see :meth:`SlidingWindow.split_snapshot`."""
-        window, recent, baseline = self.window.split_snapshot(self.vocabulary.names, recent_panes)
-        return self._tag(window), self._tag(recent), self._tag(baseline)
-
-    @property
-    def window_full(self) -> bool:
-        """True once a whole window of panes has closed (the end of warm-up)."""
-        return self.window.window_full
-
-    def pane_snapshot(self, pane: Pane) -> WindowSnapshot:
-        """Frozen counts of one pane's counted transactions."""
-        return self._tag(self.window.pane_snapshot(self.vocabulary.names, pane))
-
-    def _tag(self, snapshot: WindowSnapshot) -> WindowSnapshot:
-        """The snapshot with the catalogue in force attached (levels, ancestors, names)."""
-        if self.items is None:
-            return snapshot
-        return dataclasses.replace(snapshot, taxonomy=self.items.view())
-
-    def pane_start_time(self, pane: Pane) -> float | None:
-        """When a pane starts: its time span's start (time-based), or its first event time."""
-        if self.time_based:
-            return pane.index * self.pane_seconds
-        return pane.min_ts
-
-    def statistics(self) -> EngineStatistics:
-        """The engine's counters as a frozen :class:`EngineStatistics` (cheap: no summing of
-        itemsets, one pass over the panes)."""
-        win = self.window
-        live = win.live()
-        return EngineStatistics(
-            transactions_seen=self.transactions_seen,
-            rejected=dict(self.rejected),
-            window_transactions=sum(p.counted for p in live),
-            window_max_error=sum(p.absent_bound for p in live),
-            tracked_itemsets=win.tracked_itemsets(),
-            held_bytes=win.nbytes,
-            live_panes=len(win.panes),
-            window_panes=self.window_panes,
-            buffered_transactions=win.buffered,
-            max_event_ts=self.max_event_ts,
-            vocabulary_items=len(self.vocabulary),
-            items_ignored={} if self.items is None else self.items.ignored_by_label(),
-            items_unknown=0 if self.items is None else self.items.unknown,
-            items_unknown_distinct=0 if self.items is None else self.items.unknown_distinct,
-        )
 
     def check_invariants(self) -> None:
         """Assert the engine's invariants (panes, sequence numbers, window span)."""

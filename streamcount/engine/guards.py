@@ -8,13 +8,13 @@ what it would accept without changing anything (:meth:`~streamcount.engine.Engin
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
 from streamcount.config.settings import MAX_TIMESTAMP
 
-__all__ = ["Rejection", "size_guards", "time_guards"]
+__all__ = ["AddResult", "Rejection", "size_guards", "time_guards"]
 
 
 @dataclass(frozen=True, slots=True)
@@ -24,6 +24,18 @@ class Rejection:
     index: int
     reason: str
     detail: str
+
+
+@dataclass(frozen=True, slots=True)
+class AddResult:
+    """What one call that adds transactions (or a counted pane) to the engine did."""
+
+    accepted: int
+    rejections: tuple[Rejection, ...] = ()
+    panes_closed: int = 0
+    #: sequence number of the last accepted transaction after this call
+    last_seq: int = 0
+    rejected_by_reason: dict[str, int] = field(default_factory=dict)
 
 
 def size_guards(
