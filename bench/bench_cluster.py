@@ -38,7 +38,6 @@ import argparse
 import gzip
 import json
 import shutil
-import socket
 import subprocess
 import sys
 import tempfile
@@ -49,6 +48,7 @@ from typing import Any
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 import machine  # bench/ is not a package: the scripts import their neighbour by path
+import natsbench
 
 SCRIPT = Path(__file__).resolve()
 TARGET_SPEEDUP = 1.3
@@ -174,12 +174,6 @@ def _cpu_seconds() -> float:
 # -- the parent ---------------------------------------------------------------------------------
 
 
-def _free_port() -> int:
-    with socket.socket() as sock:
-        sock.bind(("127.0.0.1", 0))
-        return int(sock.getsockname()[1])
-
-
 def _orders(size: int | None) -> list[tuple[float, tuple[str, ...]]]:
     out = []
     with gzip.open(machine.data_path("T10I4D100K.dat.gz"), "rt", encoding="utf-8") as fh:
@@ -278,7 +272,7 @@ def _quantile(values: list[float], q: float) -> float:
 def run_parent(args: argparse.Namespace) -> int:
     from streamcount.demo.publish import publish_feed
 
-    binary = shutil.which("nats-server") or shutil.which("nats-server", path="/usr/sbin:/sbin")
+    binary = natsbench.nats_binary()
     if binary is None:
         print("nats-server not found (Debian package nats-server; `make tools`)", file=sys.stderr)
         return 2
@@ -286,14 +280,10 @@ def run_parent(args: argparse.Namespace) -> int:
     print(f"# streamcount cluster benchmark, {info['date']}")
     print(machine.format_machine(info))
     tmpdir = Path(tempfile.mkdtemp(prefix="streamcount-bench-cluster-"))
-    port = _free_port()
-    url = f"nats://127.0.0.1:{port}"
-    cmd = [binary, "-js", "-sd", str(tmpdir / "store"), "-a", "127.0.0.1", "-p", str(port)]
-    server = subprocess.Popen(cmd, stderr=subprocess.DEVNULL, stdout=subprocess.DEVNULL)
+    server, url = natsbench.start_server(binary, tmpdir / "store")
     lines: list[str] = []
     raw: dict[str, Any] = {"machine": info, "settings": vars(args).copy()}
     try:
-        _wait_ready(url, server)
         orders, last = _with_closing(_orders(args.size), float(_ENGINE["pane_seconds"]))
         report = publish_feed(
             orders,
@@ -423,36 +413,6 @@ def _live(args: argparse.Namespace, url: str, raw: dict[str, Any]) -> list[str]:
             f"{_quantile(delays, 0.99) * 1e3:,.0f} ms ({len(delays)} panes)"
         )
     return out
-
-
-def _wait_ready(url: str, proc: subprocess.Popen[bytes]) -> None:
-    import asyncio
-
-    import nats
-
-    async def quiet(exc: Exception) -> None:
-        pass
-
-    async def ping() -> None:
-        nc = await nats.connect(
-            url, max_reconnect_attempts=1, reconnect_time_wait=0.05, error_cb=quiet
-        )
-        try:
-            await nc.jetstream().account_info()
-        finally:
-            await nc.close()
-
-    deadline = time.monotonic() + 20
-    while True:
-        if proc.poll() is not None:
-            raise RuntimeError(f"nats-server exited with {proc.returncode}")
-        try:
-            asyncio.run(ping())
-            return
-        except Exception:
-            if time.monotonic() > deadline:
-                raise
-            time.sleep(0.1)
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -37,7 +37,6 @@ import gc
 import gzip
 import json
 import shutil
-import socket
 import subprocess
 import sys
 import tempfile
@@ -48,6 +47,7 @@ from typing import Any
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 import machine  # bench/ is not a package: the scripts import their neighbour by path
+import natsbench
 
 SCRIPT = Path(__file__).resolve()
 TARGET_ONE = 50_000
@@ -152,16 +152,6 @@ def run_child(case: dict[str, Any]) -> dict[str, Any]:
 # -- the parent: server, data, cases ----------------------------------------------------------
 
 
-def _nats_server() -> str | None:
-    return shutil.which("nats-server") or shutil.which("nats-server", path="/usr/sbin:/sbin")
-
-
-def _free_port() -> int:
-    with socket.socket() as sock:
-        sock.bind(("127.0.0.1", 0))
-        return int(sock.getsockname()[1])
-
-
 def _orders(size: int | None) -> list[tuple[float, tuple[str, ...]]]:
     out = []
     with gzip.open(machine.data_path("T10I4D100K.dat.gz"), "rt", encoding="utf-8") as fh:
@@ -174,36 +164,6 @@ def _orders(size: int | None) -> list[tuple[float, tuple[str, ...]]]:
     return out
 
 
-def _wait_ready(url: str, proc: subprocess.Popen[bytes]) -> None:
-    import asyncio
-
-    import nats
-
-    async def quiet(exc: Exception) -> None:
-        pass
-
-    async def ping() -> None:
-        nc = await nats.connect(
-            url, max_reconnect_attempts=1, reconnect_time_wait=0.05, error_cb=quiet
-        )
-        try:
-            await nc.jetstream().account_info()
-        finally:
-            await nc.close()
-
-    deadline = time.monotonic() + 20
-    while True:
-        if proc.poll() is not None:
-            raise RuntimeError(f"nats-server exited with {proc.returncode}")
-        try:
-            asyncio.run(ping())
-            return
-        except Exception:
-            if time.monotonic() > deadline:
-                raise
-            time.sleep(0.1)
-
-
 def _fmt(s: dict[str, float]) -> str:
     return f"{s['median']:,.0f} [{s['min']:,.0f}..{s['max']:,.0f}]"
 
@@ -212,7 +172,7 @@ def run_parent(args: argparse.Namespace) -> int:
     from streamcount.demo.generator import order_id
     from streamcount.demo.publish import format_order, publish_feed
 
-    binary = _nats_server()
+    binary = natsbench.nats_binary()
     if binary is None:
         print("nats-server not found (Debian package nats-server; `make tools`)", file=sys.stderr)
         return 2
@@ -220,13 +180,9 @@ def run_parent(args: argparse.Namespace) -> int:
     print(f"# streamcount NATS benchmark, {info['date']}")
     print(machine.format_machine(info))
     tmpdir = Path(tempfile.mkdtemp(prefix="streamcount-bench-nats-"))
-    port = _free_port()
-    url = f"nats://127.0.0.1:{port}"
-    cmd = [binary, "-js", "-sd", str(tmpdir / "store"), "-a", "127.0.0.1", "-p", str(port)]
-    server = subprocess.Popen(cmd, stderr=subprocess.DEVNULL, stdout=subprocess.DEVNULL)
+    server, url = natsbench.start_server(binary, tmpdir / "store")
     results: dict[str, Any] = {}
     try:
-        _wait_ready(url, server)
         orders = _orders(args.size)
         path = tmpdir / f"orders.{args.format}"
         with path.open("wb") as fh:
