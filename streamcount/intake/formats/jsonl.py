@@ -2,16 +2,28 @@
 
 See :class:`JsonlDecoder` for the rules. The same decoder serves a followed file, HTTP ingest
 bodies (one object or NDJSON lines) and ``streamcount replay``.
+
+:meth:`JsonlDecoder.decode` parses a batch with msgspec (chosen by measurement over orjson and
+the standard library: bench/bench_parse.py, README) into a record type holding only the
+configured fields, so the others are skipped, never built. What it cannot take as it is (a
+record msgspec refuses, dotted paths, item objects, names that are not plain ASCII strings,
+anything to set aside) goes record by record through :meth:`JsonlDecoder.feed`, which parses
+with the standard library as before, so the transactions and the rejections are the same.
 """
 
 from __future__ import annotations
 
+import codecs
 import json
+import math
 from typing import Any
 
-from streamcount.config.settings import JsonlConfig
+import msgspec
+
+from streamcount.config.settings import MAX_TIMESTAMP, JsonlConfig
 from streamcount.errors import ParseError
 from streamcount.intake.formats.text import (
+    CONTROL_CHARS,
     LineDecoder,
     check_control,
     decode_text,
@@ -21,7 +33,7 @@ from streamcount.intake.formats.text import (
     show,
     too_many_items_error,
 )
-from streamcount.intake.records import Transaction
+from streamcount.intake.records import Decoded, RecordBatch, Transaction
 
 __all__ = ["JsonlDecoder"]
 
@@ -52,6 +64,27 @@ def _lookup(obj: dict[str, Any], path: str, what: str, offset: int | None, raw: 
     return node
 
 
+def _record_decoder(config: JsonlConfig) -> msgspec.json.Decoder[Any] | None:
+    """A msgspec decoder of records holding only the configured fields (top-level names; the
+    others are skipped), or ``None`` when the configuration needs the general path (dotted
+    paths, item objects, one name for two fields)."""
+    fields = (config.items_field, config.ts_field, config.id_field)
+    if config.item_name_field is not None or len(set(fields)) < 3:
+        return None
+    if any("." in f for f in fields):
+        return None
+    record = msgspec.defstruct(
+        "Record",
+        [("items", Any, msgspec.UNSET), ("ts", Any, None), ("id", Any, None)],
+        rename=dict(zip(("items", "ts", "id"), fields, strict=True)),
+    )
+    return msgspec.json.Decoder(record)
+
+
+#: JSON values msgspec gives that the batch path takes as they are (bool is not an int here)
+_PLAIN_TS = (int, float)
+
+
 class JsonlDecoder(LineDecoder):
     """One JSON object per line.
 
@@ -78,6 +111,7 @@ class JsonlDecoder(LineDecoder):
     """
 
     __slots__ = (
+        "_records",
         "config",
         "encoding",
         "max_basket_items",
@@ -102,6 +136,143 @@ class JsonlDecoder(LineDecoder):
         self.max_record_bytes = max_record_bytes
         self.encoding = encoding
         self.require_ts = require_ts
+        #: the batch path's parser (UTF-8 feeds only: msgspec reads UTF-8)
+        self._records = (
+            _record_decoder(self.config) if codecs.lookup(encoding).name == "utf-8" else None
+        )
+
+    def decode(self, batch: RecordBatch) -> Decoded:
+        """The whole batch through msgspec; each record it cannot take as it is through
+        :meth:`feed` (same transactions, same rejections, in order)."""
+        parser = self._records
+        lines = batch.lines
+        if parser is None or batch.too_long is not None or not lines:
+            return LineDecoder.decode(self, batch)
+        if max(map(len, lines)) > self.max_record_bytes:
+            return LineDecoder.decode(self, batch)
+        parse = parser.decode
+        cap = self.max_basket_items
+        require_ts = self.require_ts
+        baskets: list[list[str]] = []
+        ts: list[float | None] = []
+        texts: list[str] = []  # per transaction: its names and id, joined
+        rows: list[int] = []  # the record of each transaction
+        slow: list[int] = []  # records for feed
+        for i, line in enumerate(lines):
+            try:
+                rec = parse(line)
+            except msgspec.DecodeError:  # ValidationError too
+                slow.append(i)
+                continue
+            names = rec.items
+            if type(names) is not list or not names:
+                slow.append(i)
+                continue
+            try:
+                text = "".join(names)  # a TypeError unless every element is a string
+            except TypeError:
+                if set(map(type, names)) != {int}:
+                    slow.append(i)
+                    continue
+                names = list(map(str, names))
+                text = "".join(names)
+            if "" in names:
+                slow.append(i)
+                continue
+            if len(set(names)) != len(names):
+                names = list(dict.fromkeys(names))
+            value = rec.ts
+            if value is None:
+                if require_ts:
+                    slow.append(i)
+                    continue
+            elif type(value) in _PLAIN_TS and math.isfinite(value) and abs(value) < MAX_TIMESTAMP:
+                value = float(value)
+            else:
+                slow.append(i)
+                continue
+            record_id = rec.id
+            if record_id is not None:
+                if type(record_id) is int:
+                    record_id = str(record_id)
+                elif type(record_id) is not str:
+                    slow.append(i)
+                    continue
+            if len(names) > cap:
+                slow.append(i)
+                continue
+            baskets.append(names)
+            ts.append(value)
+            texts.append(text if record_id is None else text + record_id)
+            rows.append(i)
+        # names and ids must be plain ASCII without control characters: one search over the
+        # batch, then record by record only if it finds something
+        text = "".join(texts)
+        if not text.isascii() or CONTROL_CHARS.search(text) is not None:
+            keep = []
+            for j, one in enumerate(texts):
+                if one.isascii() and CONTROL_CHARS.search(one) is None:
+                    keep.append(j)
+                else:
+                    slow.append(rows[j])
+            baskets = [baskets[j] for j in keep]
+            ts = [ts[j] for j in keep]
+            rows = [rows[j] for j in keep]
+        if not slow:
+            offsets = batch.offsets
+            return Decoded(
+                baskets,
+                ts,
+                None if offsets is None else offsets[rows].tolist(),
+                [],
+                batch.source,
+                [lines[i] for i in rows],
+            )
+        return self._merge(batch, baskets, ts, rows, sorted(slow))
+
+    def _merge(
+        self,
+        batch: RecordBatch,
+        baskets: list[list[str]],
+        ts: list[float | None],
+        rows: list[int],
+        slow: list[int],
+    ) -> Decoded:
+        """The batch's transactions in record order: ``rows`` decoded by the batch path,
+        ``slow`` through :meth:`feed`."""
+        out = Decoded(source=batch.source, ts=[], offsets=[], raws=[])
+        assert out.ts is not None and out.offsets is not None and out.raws is not None
+        fast = iter(zip(rows, baskets, ts, strict=True))
+        pending = next(fast, None)
+        for i in slow:
+            while pending is not None and pending[0] < i:
+                self._append(out, batch, *pending)
+                pending = next(fast, None)
+            start = batch.offset(i)
+            try:
+                got = self.feed(batch.lines[i], start, batch.end_of(i))
+            except ParseError as exc:
+                out.errors.append(exc.with_traceback(None))
+                continue
+            for t in got:
+                out.baskets.append(list(t.items))
+                out.ts.append(t.ts)
+                out.offsets.append(t.offset)
+                out.raws.append(batch.lines[i])
+        while pending is not None:
+            self._append(out, batch, *pending)
+            pending = next(fast, None)
+        return out
+
+    @staticmethod
+    def _append(
+        out: Decoded, batch: RecordBatch, i: int, basket: list[str], ts: float | None
+    ) -> None:
+        assert out.ts is not None and out.offsets is not None and out.raws is not None
+        out.baskets.append(basket)
+        out.ts.append(ts)
+        out.offsets.append(batch.offset(i))
+        out.raws.append(batch.lines[i])
 
     def feed(self, record: bytes, offset: int | None, end_offset: int | None) -> list[Transaction]:
         text = decode_text(record, offset, self.encoding, self.max_record_bytes)
