@@ -214,10 +214,10 @@ class Pipeline:
         """
         tokens = decoded.tokens
         engine = self.engine
-        if tokens is None or decoded.ts is not None or engine.time_based:
+        if tokens is None or engine.time_based:
             return engine.add(decoded.baskets, decoded.ts)
         table = engine.vocabulary.encode_table(tokens.names, tokens.codes)
-        return engine.add_ids(table[tokens.codes], tokens.lengths)
+        return engine.add_ids(table[tokens.codes], tokens.lengths, decoded.ts)
 
     def _drop_future(self, decoded: Decoded, limit: float, rejected: list[ParseError]) -> Decoded:
         """Set aside transactions stamped more than ``limit`` seconds ahead of the clock."""
@@ -244,6 +244,16 @@ class Pipeline:
         def pick(values: list[Any] | None) -> list[Any] | None:
             return None if values is None else [values[i] for i in keep]
 
+        if decoded.tokens is not None:
+            return Decoded(
+                None,
+                pick(decoded.ts),
+                pick(decoded.offsets),
+                [],
+                decoded.source,
+                pick(decoded.raws),
+                tokens=decoded.tokens.select(~ahead),
+            )
         return Decoded(
             [decoded.baskets[i] for i in keep],
             pick(decoded.ts),

@@ -133,6 +133,67 @@ def _byte_codes(
     return [t.decode("ascii") for t in seen], codes
 
 
+def code_tokens(
+    joined: bytes,
+    buf: np.ndarray,
+    in_token: np.ndarray,
+    starts: np.ndarray,
+    ends: np.ndarray,
+    bounds: np.ndarray,
+) -> tuple[list[str], np.ndarray, np.ndarray]:
+    """Tokens ``joined[starts[i]:ends[i]]`` (ASCII, ``buf`` its bytes, ``in_token`` marking
+    the bytes inside some token) of rows ``bounds[r]..bounds[r+1]-1`` as ``(names, codes,
+    counts)``: the distinct tokens, each built once; int32 codes of each row's distinct
+    tokens in the order read (a repeat in a row dropped); how many per row.
+
+    A token of digits without a leading zero (at most :data:`_MAX_DIGITS`) is told apart by
+    its value, any other by its bytes (``007`` and ``7`` are two names).
+
+    >>> text = b"7 007 7 tea"
+    >>> buf = np.frombuffer(text, dtype=np.uint8)
+    >>> names, codes, counts = code_tokens(
+    ...     text, buf, buf != 32, np.array([0, 2, 6, 8]), np.array([1, 5, 7, 11]),
+    ...     np.array([0, 4]))
+    >>> [names[c] for c in codes.tolist()], counts.tolist()
+    (['7', '007', 'tea'], [3])
+    """
+    n_rows = bounds.shape[0] - 1
+    lens = ends - starts
+    counts = np.diff(bounds)
+    nondigit = (buf - _ZERO) > 9  # uint8 wraps: below '0' is large too
+    if not (nondigit & in_token).any():  # every item is a string of digits
+        numeric = lens <= _MAX_DIGITS
+    else:
+        before = np.zeros(buf.shape[0] + 1, dtype=np.int32)
+        np.cumsum(nondigit & in_token, out=before[1:])
+        numeric = (before[ends] == before[starts]) & (lens <= _MAX_DIGITS)
+    numeric &= (buf[starts] != _ZERO) | (lens == 1)  # "007" is not the number 7's text
+    codes = np.empty(starts.shape[0], dtype=np.int32)
+    if numeric.all():
+        names, codes = _number_codes(_numbers(buf, ends, lens))
+    else:
+        names, codes[numeric] = _number_codes(_numbers(buf, ends[numeric], lens[numeric]))
+        other = ~numeric
+        more, other_codes = _byte_codes(joined, buf, starts[other], lens[other])
+        codes[other] = other_codes + len(names)
+        names = names + more
+    # a repeated item counts once: keep each (line, name)'s first occurrence; within a
+    # line, codes that only ever rise hold no repeat (names are coded in sorted order)
+    if codes.shape[0] > 1:
+        falls = np.flatnonzero(codes[1:] <= codes[:-1]) + 1
+        first_of_line = np.zeros(codes.shape[0] + 1, dtype=bool)
+        first_of_line[bounds[:-1]] = True
+        if not first_of_line[falls].all():
+            line_of = np.repeat(np.arange(n_rows, dtype=np.int64), counts)
+            key = line_of * len(names) + codes
+            _, first = np.unique(key, return_index=True)
+            if first.shape[0] != key.shape[0]:
+                first.sort()
+                codes = codes[first]
+                counts = np.bincount(line_of[first], minlength=n_rows)
+    return names, codes, counts
+
+
 @contextlib.contextmanager
 def _gc_paused() -> Iterator[None]:
     """Pause the cyclic collector while building many small acyclic lists.
@@ -286,45 +347,13 @@ class BasketDecoder(LineDecoder):
         sep[1:-1] |= buf == _COMMA
         starts = np.flatnonzero(sep[:-2] & ~sep[1:-1])  # a separator (or the start), then not
         ends = np.flatnonzero(~sep[1:-1] & sep[2:]) + 1
-        lens = ends - starts
         newlines = np.flatnonzero(buf == _NEWLINE)
         # tokens before each line's end: a line's tokens are consecutive
         bounds = np.empty(n_lines + 1, dtype=np.int64)
         bounds[0] = 0
         bounds[1:-1] = np.searchsorted(starts, newlines)
         bounds[-1] = starts.shape[0]
-        counts = np.diff(bounds)
-        nondigit = (buf - _ZERO) > 9  # uint8 wraps: below '0' is large too
-        if not (nondigit & ~sep[1:-1]).any():  # every item is a string of digits
-            numeric = lens <= _MAX_DIGITS
-        else:
-            before = np.zeros(size + 1, dtype=np.int32)
-            np.cumsum(nondigit & ~sep[1:-1], out=before[1:])
-            numeric = (before[ends] == before[starts]) & (lens <= _MAX_DIGITS)
-        numeric &= (buf[starts] != _ZERO) | (lens == 1)  # "007" is not the number 7's text
-        codes = np.empty(starts.shape[0], dtype=np.int32)
-        if numeric.all():
-            names, codes = _number_codes(_numbers(buf, ends, lens))
-        else:
-            names, codes[numeric] = _number_codes(_numbers(buf, ends[numeric], lens[numeric]))
-            other = ~numeric
-            more, other_codes = _byte_codes(joined, buf, starts[other], lens[other])
-            codes[other] = other_codes + len(names)
-            names = names + more
-        # a repeated item counts once: keep each (line, name)'s first occurrence; within a
-        # line, codes that only ever rise hold no repeat (names are coded in sorted order)
-        if codes.shape[0] > 1:
-            falls = np.flatnonzero(codes[1:] <= codes[:-1]) + 1
-            first_of_line = np.zeros(codes.shape[0] + 1, dtype=bool)
-            first_of_line[bounds[:-1]] = True
-            if not first_of_line[falls].all():
-                line_of = np.repeat(np.arange(n_lines, dtype=np.int64), counts)
-                key = line_of * len(names) + codes
-                _, first = np.unique(key, return_index=True)
-                if first.shape[0] != key.shape[0]:
-                    first.sort()
-                    codes = codes[first]
-                    counts = np.bincount(line_of[first], minlength=n_lines)
+        names, codes, counts = code_tokens(joined, buf, ~sep[1:-1], starts, ends, bounds)
         if int(counts.max(initial=0)) > self.max_basket_items:
             return None
         offsets = batch.offsets
