@@ -5,7 +5,10 @@ bodies (one object or NDJSON lines) and ``streamcount replay``.
 
 :meth:`JsonlDecoder.decode` parses a batch with msgspec (chosen by measurement over orjson and
 the standard library: bench/bench_parse.py, README) into a record type holding only the
-configured fields, so the others are skipped, never built. What it cannot take as it is (a
+configured fields, so the others are skipped, never built. When every items list of the batch
+is a flat list of plain ASCII strings (no escapes), the lists are kept as their JSON text and
+coded with numpy as basket lines are (:class:`~streamcount.intake.records.Tokens`, no Python
+string per item); otherwise the names are built as strings. What it cannot take as it is (a
 record msgspec refuses, dotted paths, item objects, names that are not plain ASCII strings,
 anything to set aside) goes record by record through :meth:`JsonlDecoder.feed`, which parses
 with the standard library as before, so the transactions and the rejections are the same.
