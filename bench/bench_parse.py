@@ -83,7 +83,8 @@ def _old_paths(on: bool) -> None:
 
     if on:
         _SAVED["codecs"], basket._ASCII_CODECS = basket._ASCII_CODECS, frozenset()
-        _SAVED["records"], jsonl._record_decoder = jsonl._record_decoder, lambda config, raw=False: None
+        _SAVED["records"] = jsonl._record_decoder
+        jsonl._record_decoder = lambda config, raw=False: None
     else:
         basket._ASCII_CODECS = _SAVED["codecs"]
         jsonl._record_decoder = _SAVED["records"]

@@ -116,9 +116,11 @@ def _string_arrays(joined: bytes, n: int) -> Tokens | None:
     opens, closes = quotes[0::2], quotes[1::2]
     if (closes - opens < 2).any():  # an empty name: feed skips it
         return None
-    in_string = np.logical_xor.accumulate(quote)  # an opening quote and what follows it
-    outside = ~in_string & ~quote
-    if not _ARRAY_BYTES[buf[outside]].all():  # a number, object, true, null...
+    # an opening quote and what follows it up to the closing one: odd parity of the quotes
+    # so far (a running count in uint8 wraps, which keeps its parity)
+    in_string = np.cumsum(quote, dtype=np.uint8) & np.uint8(1) > 0
+    outside = ~(in_string | quote)
+    if (outside & ~_ARRAY_BYTES[buf]).any():  # a number, object, true, null...
         return None
     newlines = np.flatnonzero(buf == _NEWLINE)
     brackets = np.flatnonzero((buf == _OPEN) & outside)
