@@ -156,3 +156,14 @@ def test_coded_orders_count_what_lists_of_names_count() -> None:
     assert [(s.items, s.count) for s in snap_a.frequent(0.01)] == [
         (s.items, s.count) for s in snap_b.frequent(0.01)
     ]
+
+
+def test_an_integer_time_past_any_float_is_wrong_type_not_a_crash() -> None:
+    # found by the property test above: float(10**400) raises OverflowError
+    record = b'{"items": ["tea"], "ts": 1' + b"0" * 400 + b"}"
+    decoder = JsonlDecoder(JsonlConfig())
+    batch = RecordBatch.from_lines([record, b'{"items": ["jam"], "ts": 5}'])
+    for out in (decoder.decode(batch), LineDecoder.decode(decoder, batch)):
+        assert out.baskets == [["jam"]]
+        assert [e.reason for e in out.errors] == ["wrong_type"]
+        assert "finite number" in out.errors[0].detail

@@ -18,7 +18,6 @@ from __future__ import annotations
 
 import codecs
 import json
-import math
 from operator import attrgetter
 from typing import Any
 
@@ -301,7 +300,7 @@ class JsonlDecoder(LineDecoder):
                 if require_ts:
                     slow.append(i)
                     continue
-            elif type(value) in _PLAIN_TS and math.isfinite(value) and abs(value) < MAX_TIMESTAMP:
+            elif type(value) in _PLAIN_TS and abs(value) < MAX_TIMESTAMP:  # not NaN, inf, huge
                 value = float(value)
             else:
                 slow.append(i)
@@ -416,7 +415,7 @@ class JsonlDecoder(LineDecoder):
                 if require_ts:
                     slow.append(i)
                     continue
-            elif type(value) in _PLAIN_TS and math.isfinite(value) and abs(value) < MAX_TIMESTAMP:
+            elif type(value) in _PLAIN_TS and abs(value) < MAX_TIMESTAMP:  # not NaN, inf, huge
                 value = float(value)
             else:
                 slow.append(i)
