@@ -80,7 +80,7 @@ def _live_once(path: str) -> tuple[float, int]:
     start = time.perf_counter()
     service = Service(cfg, fresh=True)
     service.run(install_signals=False)
-    return time.perf_counter() - start, int(service.engine.transactions_seen)
+    return time.perf_counter() - start, int(service.pipeline.engine.transactions_seen)
 
 
 def run_child(case: dict[str, Any]) -> dict[str, Any]:

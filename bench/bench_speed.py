@@ -126,7 +126,12 @@ def _parse(path: Path, cfg: Any) -> tuple[Any, list[tuple[Any, Any]]]:
     vocab = ItemVocabulary()
     chunks = []
     for decoded in decode_file(str(path), cfg):
-        flat, lengths = vocab.encode_baskets(decoded.baskets)
+        tokens = decoded.tokens
+        if tokens is not None:  # interned in bulk, as the pipeline does
+            flat = vocab.encode_table(tokens.names, tokens.codes)[tokens.codes]
+            lengths = tokens.lengths
+        else:
+            flat, lengths = vocab.encode_baskets(decoded.baskets)
         chunks.append(sort_dedupe(flat, lengths, len(vocab)))
     return vocab, chunks
 

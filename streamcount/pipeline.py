@@ -31,7 +31,7 @@ from streamcount.catalogue.state import (
     check_saved_levels,
 )
 from streamcount.config.settings import Config
-from streamcount.engine.engine import Engine
+from streamcount.engine.engine import AddResult, Engine
 from streamcount.engine.pane import Pane
 from streamcount.engine.snapshot import WindowSnapshot
 from streamcount.errors import ParseError
@@ -186,10 +186,10 @@ class Pipeline:
         """Count decoded transactions; returns what was accepted and everything set aside."""
         out = Intake(rejected=list(decoded.errors))
         limit = self.config.input.max_future_seconds
-        if decoded.baskets and decoded.ts is not None and limit is not None and self.clock:
+        if decoded.ts is not None and len(decoded) and limit is not None and self.clock:
             decoded = self._drop_future(decoded, limit, out.rejected)
-        if decoded.baskets:
-            result = self.engine.add(decoded.baskets, decoded.ts)
+        if len(decoded):
+            result = self._count(decoded)
             out.accepted = result.accepted
             out.panes_closed = result.panes_closed
             offsets = decoded.offsets
@@ -204,6 +204,21 @@ class Pipeline:
                 )
         self.rejected_counts.update(out.by_reason())
         return out
+
+    def _count(self, decoded: Decoded) -> AddResult:
+        """Hand the transactions to the engine: interned in bulk when the decoder gave
+        :class:`~streamcount.intake.records.Tokens` (one vocabulary lookup per distinct name,
+        :meth:`Engine.add_ids`), as lists of names otherwise.
+
+        A time-based window takes the names (:meth:`Engine.add` interns only the items of the
+        transactions its time guards accept, and the ids must follow that).
+        """
+        tokens = decoded.tokens
+        engine = self.engine
+        if tokens is None or engine.time_based:
+            return engine.add(decoded.baskets, decoded.ts)
+        table = engine.vocabulary.encode_table(tokens.names, tokens.codes)
+        return engine.add_ids(table[tokens.codes], tokens.lengths, decoded.ts)
 
     def _drop_future(self, decoded: Decoded, limit: float, rejected: list[ParseError]) -> Decoded:
         """Set aside transactions stamped more than ``limit`` seconds ahead of the clock."""
@@ -230,6 +245,16 @@ class Pipeline:
         def pick(values: list[Any] | None) -> list[Any] | None:
             return None if values is None else [values[i] for i in keep]
 
+        if decoded.tokens is not None:
+            return Decoded(
+                None,
+                pick(decoded.ts),
+                pick(decoded.offsets),
+                [],
+                decoded.source,
+                pick(decoded.raws),
+                tokens=decoded.tokens.select(~ahead),
+            )
         return Decoded(
             [decoded.baskets[i] for i in keep],
             pick(decoded.ts),

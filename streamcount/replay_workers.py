@@ -182,15 +182,27 @@ def _decode_part(
     for batch in batches:
         decoded = decoder.decode(batch)
         decoded_reasons.update(e.reason for e in decoded.errors)
-        if not decoded.baskets:
+        if not len(decoded):
             continue
-        keep, rejections = guard.screen(decoded.baskets, decoded.ts)
+        tokens = decoded.tokens
+        if tokens is not None:  # interned in bulk, as the one-process pipeline does
+            keep, rejections = guard.screen_distinct(tokens.lengths, decoded.ts)
+        else:
+            keep, rejections = guard.screen(decoded.baskets, decoded.ts)
         engine_reasons.update(r.reason for r in rejections)
         if not keep.shape[0]:
             continue
-        baskets = decoded.baskets
-        kept = baskets if keep.shape[0] == len(baskets) else [baskets[i] for i in keep.tolist()]
-        raw, lengths = vocab.encode_baskets(kept)
+        if tokens is not None:
+            if keep.shape[0] != len(tokens):
+                mask = np.zeros(len(tokens), dtype=bool)
+                mask[keep] = True
+                tokens = tokens.select(mask)
+            raw = vocab.encode_table(tokens.names, tokens.codes)[tokens.codes]
+            lengths = tokens.lengths
+        else:
+            baskets = decoded.baskets
+            kept = baskets if keep.shape[0] == len(baskets) else [baskets[i] for i in keep.tolist()]
+            raw, lengths = vocab.encode_baskets(kept)
         seen.append(_first_appearance(raw, len(vocab)))
         flat, lengths = sort_dedupe(raw, lengths, len(vocab))
         ts = np.full(keep.shape[0], np.nan)

@@ -192,6 +192,26 @@ class Engine(ExternalPanes, EngineReads):
         rejections.sort(key=lambda r: r.index)
         return np.flatnonzero(ok), rejections
 
+    def screen_distinct(
+        self,
+        lengths: np.ndarray,
+        timestamps: Sequence[float | None] | np.ndarray | None = None,
+    ) -> tuple[np.ndarray, list[Rejection]]:
+        """:meth:`screen` for transactions given by their numbers of items, each
+        transaction's items distinct (e.g. decoded :class:`~streamcount.intake.records.Tokens`).
+        """
+        if self.items is not None:
+            raise ValueError("screen: an engine with a catalogue maps items as it counts them")
+        lengths = np.asarray(lengths, dtype=np.int64)
+        t = int(lengths.shape[0])
+        if not t:
+            return np.zeros(0, dtype=np.int64), []
+        rejections: list[Rejection] = []
+        ok = size_guards(lengths, lengths, int(self.config.max_basket_items), rejections)
+        self._time_guards(t, timestamps, ok, rejections)
+        rejections.sort(key=lambda r: r.index)
+        return np.flatnonzero(ok), rejections
+
     def _guards(
         self,
         baskets: Sequence[Sequence[str]],

@@ -8,7 +8,7 @@ checkpoint round trip unchanged.
 from __future__ import annotations
 
 from collections.abc import Iterable, Sequence
-from itertools import chain
+from itertools import chain, repeat
 
 import numpy as np
 
@@ -71,6 +71,34 @@ class ItemVocabulary:
     def encode_flat(self, names: Iterable[str], count: int = -1) -> np.ndarray:
         """Intern a flat sequence of names; int32 ids in the same order."""
         return np.fromiter(map(self._interner.__getitem__, names), dtype=np.int32, count=count)
+
+    def encode_table(self, names: Sequence[str], codes: np.ndarray) -> np.ndarray:
+        """Intern a table of distinct ``names`` that ``codes`` index; returns the int32 id of
+        each name (``table[codes]`` are the ids of the occurrences).
+
+        One dict lookup per distinct name, none per occurrence. Names not seen before get
+        their ids in order of first appearance in ``codes`` (what :meth:`encode_flat` of the
+        occurrences would give); names that ``codes`` never use are not interned (their
+        entry is ``-1``).
+
+        >>> vocab = ItemVocabulary(["tea"])
+        >>> vocab.encode_table(["jam", "tea", "honey", "scone"], np.array([2, 1, 0, 2])).tolist()
+        [2, 0, 1, -1]
+        >>> list(vocab.names)
+        ['tea', 'honey', 'jam']
+        """
+        interner = self._interner
+        table = np.fromiter(map(interner.get, names, repeat(-1)), dtype=np.int32, count=len(names))
+        missing = np.flatnonzero(table < 0)
+        if missing.shape[0]:
+            first = np.full(len(names), np.iinfo(np.int64).max, dtype=np.int64)
+            used, at = np.unique(np.asarray(codes, dtype=np.int64), return_index=True)
+            first[used] = at
+            missing = missing[np.argsort(first[missing], kind="stable")]
+            missing = missing[first[missing] < np.iinfo(np.int64).max]
+            for i in missing.tolist():
+                table[i] = interner[names[i]]
+        return table
 
     def encode_baskets(self, baskets: Sequence[Sequence[str]]) -> tuple[np.ndarray, np.ndarray]:
         """Intern a list of baskets: ``(flat ids, lengths)`` with no per-item Python object."""

@@ -63,7 +63,12 @@ def _batch(lines: list[bytes], base: int, end: int, limit: int, cut: list[int]) 
     """A batch of ``lines`` starting at ``base``; ``cut`` lists records already cut short."""
     offsets = line_offsets(lines, base)
     too_long = None
-    long_lines = [i for i, line in enumerate(lines) if len(line) > limit]
+    # lengths from the offsets (each line and its newline), the last one from the end
+    longest = np.empty(len(lines), dtype=np.int64)
+    if len(lines):
+        np.subtract(offsets[1:], offsets[:-1] + 1, out=longest[:-1])
+        longest[-1] = len(lines[-1])
+    long_lines = np.flatnonzero(longest > limit).tolist()
     if long_lines or cut:
         too_long = np.zeros(len(lines), dtype=bool)
         for i in long_lines:

@@ -25,6 +25,7 @@ __all__ = [
     "Decoded",
     "RecordBatch",
     "SourceHealth",
+    "Tokens",
     "Transaction",
     "line_offsets",
 ]
@@ -143,13 +144,79 @@ class Transaction:
 
 
 @dataclass(slots=True)
+class Tokens:
+    """Transactions as codes into a table of distinct names: what a decoder that avoids one
+    Python object per item hands over (basket lines).
+
+    Attributes
+    ----------
+    names:
+        The distinct names the codes index (one Python string per distinct name, not per
+        occurrence; in no particular order).
+    codes:
+        int32 codes into ``names`` of every transaction one after another, each
+        transaction's codes distinct and in the order its items were read.
+    lengths:
+        int64, how many codes belong to each transaction.
+
+    Examples
+    --------
+    >>> t = Tokens(["jam", "tea"], np.array([1, 0, 0], dtype=np.int32), np.array([2, 1]))
+    >>> t.baskets()
+    [['tea', 'jam'], ['jam']]
+    >>> t.select(np.array([False, True])).baskets()
+    [['jam']]
+    """
+
+    names: list[str]
+    codes: np.ndarray
+    lengths: np.ndarray
+
+    def __len__(self) -> int:
+        return int(self.lengths.shape[0])
+
+    def baskets(self) -> list[list[str]]:
+        """One list of names per transaction (one Python object per item: for views and
+        for paths that need names, not for counting)."""
+        names = self.names
+        flat = [names[c] for c in self.codes.tolist()]
+        ends = np.cumsum(self.lengths).tolist()
+        starts = [0, *ends[:-1]] if ends else []
+        return [flat[a:b] for a, b in zip(starts, ends, strict=True)]
+
+    def select(self, keep: np.ndarray) -> Tokens:
+        """The transactions whose ``keep`` flag is set (the name table is kept as it is)."""
+        keep = np.asarray(keep, dtype=bool)
+        rows = np.repeat(keep, self.lengths)
+        return Tokens(self.names, self.codes[rows], self.lengths[keep])
+
+    def concat(self, other: Tokens) -> Tokens:
+        """These transactions, then ``other``'s (one name table: one dict operation per
+        distinct name of ``other``)."""
+        index = {name: i for i, name in enumerate(self.names)}
+        names = list(self.names)
+        table = np.empty(len(other.names), dtype=np.int32)
+        for j, name in enumerate(other.names):
+            code = index.get(name)
+            if code is None:
+                code = index[name] = len(names)
+                names.append(name)
+            table[j] = code
+        return Tokens(
+            names,
+            np.concatenate((self.codes, table[other.codes])).astype(np.int32, copy=False),
+            np.concatenate((self.lengths, other.lengths)).astype(np.int64, copy=False),
+        )
+
+
 class Decoded:
     """Transactions decoded from one or more batches, in order, and the records set aside.
 
     Attributes
     ----------
     baskets:
-        One list of distinct item names per transaction.
+        One list of distinct item names per transaction. A decoder may hand over
+        :attr:`tokens` instead; the lists are then built from them when first asked for.
     ts:
         Per transaction event time, or ``None`` for a format without times (basket lines).
     offsets:
@@ -162,17 +229,56 @@ class Decoded:
     raws:
         Per transaction, the record it came from (``None`` where a transaction spans records,
         e.g. a CSV order); what the dead-letter file shows when the engine sets it aside.
+    tokens:
+        The same transactions as codes into a table of distinct names (:class:`Tokens`), or
+        ``None``; the counting pipeline interns them in bulk (no Python object per item).
     """
 
-    baskets: list[list[str]] = field(default_factory=list)
-    ts: list[float | None] | None = None
-    offsets: list[int | None] | None = None
-    errors: list[ParseError] = field(default_factory=list)
-    source: str = "memory"
-    raws: list[bytes | None] | None = None
+    __slots__ = ("_baskets", "errors", "offsets", "raws", "source", "tokens", "ts")
+
+    def __init__(
+        self,
+        baskets: list[list[str]] | None = None,
+        ts: list[float | None] | None = None,
+        offsets: list[int | None] | None = None,
+        errors: list[ParseError] | None = None,
+        source: str = "memory",
+        raws: list[bytes | None] | None = None,
+        *,
+        tokens: Tokens | None = None,
+    ) -> None:
+        if baskets is None and tokens is None:
+            baskets = []
+        self._baskets = baskets
+        self.ts = ts
+        self.offsets = offsets
+        self.errors: list[ParseError] = [] if errors is None else errors
+        self.source = source
+        self.raws = raws
+        self.tokens = tokens
+
+    @property
+    def baskets(self) -> list[list[str]]:
+        if self._baskets is None:
+            assert self.tokens is not None
+            self._baskets = self.tokens.baskets()
+        return self._baskets
+
+    @baskets.setter
+    def baskets(self, value: list[list[str]]) -> None:
+        self._baskets = value
+        self.tokens = None
 
     def __len__(self) -> int:
+        if self._baskets is None and self.tokens is not None:
+            return len(self.tokens)
         return len(self.baskets)
+
+    def __repr__(self) -> str:
+        return (
+            f"Decoded(baskets={self.baskets!r}, ts={self.ts!r}, offsets={self.offsets!r}, "
+            f"errors={self.errors!r}, source={self.source!r}, raws={self.raws!r})"
+        )
 
     @classmethod
     def from_transactions(
@@ -189,16 +295,19 @@ class Decoded:
 
     def extend(self, other: Decoded) -> None:
         """Append ``other`` (which must agree on having times) in place."""
-        n = len(self.baskets)
-        self.baskets.extend(other.baskets)
+        n = len(self)
+        m = len(other)
+        if self._baskets is None and other._baskets is None:
+            assert self.tokens is not None and other.tokens is not None
+            self.tokens = self.tokens.concat(other.tokens)
+        else:
+            self.baskets = self.baskets + other.baskets
         if other.ts is not None or self.ts is not None:
-            self.ts = (self.ts or [None] * n) + (other.ts or [None] * len(other.baskets))
+            self.ts = (self.ts or [None] * n) + (other.ts or [None] * m)
         if other.offsets is not None or self.offsets is not None:
-            self.offsets = (self.offsets or [None] * n) + (
-                other.offsets or [None] * len(other.baskets)
-            )
+            self.offsets = (self.offsets or [None] * n) + (other.offsets or [None] * m)
         if other.raws is not None or self.raws is not None:
-            self.raws = (self.raws or [None] * n) + (other.raws or [None] * len(other.baskets))
+            self.raws = (self.raws or [None] * n) + (other.raws or [None] * m)
         self.errors.extend(other.errors)
 
     def raw(self, i: int) -> bytes:
@@ -208,7 +317,7 @@ class Decoded:
 
     def transactions(self) -> list[Transaction]:
         """The decoded transactions as :class:`Transaction` objects."""
-        n = len(self.baskets)
+        n = len(self)
         ts = self.ts if self.ts is not None else [None] * n
         offsets = self.offsets if self.offsets is not None else [None] * n
         return [

@@ -7,14 +7,19 @@ as ``empty``. Repeated items count once (a basket is a set). A line holding a ch
 its end, as in CRLF files) is set aside as ``control_chars``; names are NFC-normalised unless
 ``input.normalize: none``.
 
-:meth:`BasketDecoder.decode` takes a whole batch in a few C-level passes (one decode, one
-search for control characters, one normal-form test, one split per line) and falls back to one
-record at a time only for a batch with something to set aside or a repeated item, so both paths
-give the same transactions and the same rejections.
+:meth:`BasketDecoder.decode` takes a whole batch at once and falls back to one record at a
+time only for a batch with something to set aside (other than a line of separators only), so
+both paths give the same transactions and the same rejections. An ASCII batch is split with
+numpy on its bytes and handed over as :class:`~streamcount.intake.records.Tokens` (codes into
+a table of the batch's distinct names: no Python object per item); a name of digits without a
+leading zero (``7``, not ``007``, whose text is not the number's canonical form) is told apart
+by its value, any other by its bytes. Other text is decoded in a few C-level passes (one
+decode, one search for control characters, one normal-form test, one split per line).
 """
 
 from __future__ import annotations
 
+import codecs
 import contextlib
 import gc
 import re
@@ -31,7 +36,7 @@ from streamcount.intake.formats.text import (
     dedupe,
     too_many_items_error,
 )
-from streamcount.intake.records import Decoded, RecordBatch, Transaction
+from streamcount.intake.records import Decoded, RecordBatch, Tokens, Transaction
 
 __all__ = ["BasketDecoder"]
 
@@ -60,6 +65,133 @@ def _block_has_control(joined: bytes, text: str) -> bool:
     if "\r" in text:  # CRLF files: a carriage return is fine right before a newline or at the end
         return text.count("\r") != text.count("\r\n") + text.endswith("\r")
     return False
+
+
+#: On a line of ASCII text that passed the control check, the bytes up to 0x20 are space, tab,
+#: carriage return (of a CRLF end) and the newlines joining the lines: with the comma, what
+#: ends an item (the other ASCII whitespace ``str.split`` knows are refused control characters)
+_SPACE, _COMMA, _NEWLINE, _ZERO = 0x20, 0x2C, 0x0A, 0x30
+#: codecs under which ASCII bytes read as themselves (the numpy path works on bytes)
+_ASCII_CODECS = frozenset({"utf-8", "ascii", "latin-1", "iso8859-1", "cp1252"})
+#: a number of more digits than this is told apart by its bytes (int64 holds 18 digits)
+_MAX_DIGITS = 18
+#: names longer than this are told apart by Python bytes objects, not a byte matrix
+_MATRIX_BYTES = 1 << 24
+
+
+def _numbers(buf: np.ndarray, ends: np.ndarray, lens: np.ndarray) -> np.ndarray:
+    """The value of each all-digit token (at most :data:`_MAX_DIGITS` digits), read digit
+    column by digit column from the right (one pass per digit of the longest)."""
+    width = int(lens.max(initial=0))
+    dtype = np.int32 if width <= 9 else np.int64
+    pos = ends - 1
+    values = buf[pos].astype(dtype) - _ZERO
+    scale = 1
+    for k in range(2, width + 1):
+        pos -= 1  # -1 wraps to the last byte; such a token is shorter, its digit masked
+        digit = buf[pos].astype(dtype) - _ZERO
+        digit *= lens >= k
+        scale *= 10
+        values += digit * dtype(scale)
+    return values.astype(np.int64, copy=False)
+
+
+def _number_codes(values: np.ndarray) -> tuple[list[str], np.ndarray]:
+    """Distinct numbers as names (``str`` of each, their canonical text) and each value's
+    code; a presence table when the values are small, a sort otherwise."""
+    top = int(values.max(initial=0))
+    if top < max(1 << 16, 8 * values.shape[0]):
+        present = np.zeros(top + 1, dtype=bool)
+        present[values] = True
+        distinct = np.flatnonzero(present)
+        rank = np.cumsum(present, dtype=np.int32) - 1
+        codes = rank[values]
+    else:
+        distinct, codes = np.unique(values, return_inverse=True)
+    return list(map(str, distinct.tolist())), codes.astype(np.int32, copy=False)
+
+
+def _byte_codes(
+    joined: bytes, buf: np.ndarray, starts: np.ndarray, lens: np.ndarray
+) -> tuple[list[str], np.ndarray]:
+    """Distinct tokens by their bytes, decoded once each, and each token's code."""
+    width = int(lens.max(initial=0))
+    if starts.shape[0] * width <= _MATRIX_BYTES:
+        cols = np.arange(width)
+        idx = np.minimum(starts[:, None] + cols, buf.shape[0] - 1)
+        matrix = np.where(cols < lens[:, None], buf[idx], 0).astype(np.uint8)
+        keys = np.ascontiguousarray(matrix).view(f"S{width}").ravel()
+        distinct, codes = np.unique(keys, return_inverse=True)
+        names = [b.decode("ascii") for b in distinct.tolist()]
+        return names, codes.astype(np.int32, copy=False)
+    seen: dict[bytes, int] = {}
+    ends = (starts + lens).tolist()
+    tokens = [joined[a:b] for a, b in zip(starts.tolist(), ends, strict=True)]
+    codes = np.fromiter(
+        (seen.setdefault(t, len(seen)) for t in tokens), dtype=np.int32, count=len(tokens)
+    )
+    return [t.decode("ascii") for t in seen], codes
+
+
+def code_tokens(
+    joined: bytes,
+    buf: np.ndarray,
+    in_token: np.ndarray,
+    starts: np.ndarray,
+    ends: np.ndarray,
+    bounds: np.ndarray,
+) -> tuple[list[str], np.ndarray, np.ndarray]:
+    """Tokens ``joined[starts[i]:ends[i]]`` (ASCII, ``buf`` its bytes, ``in_token`` marking
+    the bytes inside some token) of rows ``bounds[r]..bounds[r+1]-1`` as ``(names, codes,
+    counts)``: the distinct tokens, each built once; int32 codes of each row's distinct
+    tokens in the order read (a repeat in a row dropped); how many per row.
+
+    A token of digits without a leading zero (at most :data:`_MAX_DIGITS`) is told apart by
+    its value, any other by its bytes (``007`` and ``7`` are two names).
+
+    >>> text = b"7 007 7 tea"
+    >>> buf = np.frombuffer(text, dtype=np.uint8)
+    >>> names, codes, counts = code_tokens(
+    ...     text, buf, buf != 32, np.array([0, 2, 6, 8]), np.array([1, 5, 7, 11]),
+    ...     np.array([0, 4]))
+    >>> [names[c] for c in codes.tolist()], counts.tolist()
+    (['7', '007', 'tea'], [3])
+    """
+    n_rows = bounds.shape[0] - 1
+    lens = ends - starts
+    counts = np.diff(bounds)
+    nondigit = (buf - _ZERO) > 9  # uint8 wraps: below '0' is large too
+    if not (nondigit & in_token).any():  # every item is a string of digits
+        numeric = lens <= _MAX_DIGITS
+    else:
+        before = np.zeros(buf.shape[0] + 1, dtype=np.int32)
+        np.cumsum(nondigit & in_token, out=before[1:])
+        numeric = (before[ends] == before[starts]) & (lens <= _MAX_DIGITS)
+    numeric &= (buf[starts] != _ZERO) | (lens == 1)  # "007" is not the number 7's text
+    codes = np.empty(starts.shape[0], dtype=np.int32)
+    if numeric.all():
+        names, codes = _number_codes(_numbers(buf, ends, lens))
+    else:
+        names, codes[numeric] = _number_codes(_numbers(buf, ends[numeric], lens[numeric]))
+        other = ~numeric
+        more, other_codes = _byte_codes(joined, buf, starts[other], lens[other])
+        codes[other] = other_codes + len(names)
+        names = names + more
+    # a repeated item counts once: keep each (line, name)'s first occurrence; within a
+    # line, codes that only ever rise hold no repeat (names are coded in sorted order)
+    if codes.shape[0] > 1:
+        falls = np.flatnonzero(codes[1:] <= codes[:-1]) + 1
+        first_of_line = np.zeros(codes.shape[0] + 1, dtype=bool)
+        first_of_line[bounds[:-1]] = True
+        if not first_of_line[falls].all():
+            line_of = np.repeat(np.arange(n_rows, dtype=np.int64), counts)
+            key = line_of * len(names) + codes
+            _, first = np.unique(key, return_index=True)
+            if first.shape[0] != key.shape[0]:
+                first.sort()
+                codes = codes[first]
+                counts = np.bincount(line_of[first], minlength=n_rows)
+    return names, codes, counts
 
 
 @contextlib.contextmanager
@@ -107,7 +239,7 @@ class BasketDecoder(LineDecoder):
     ([['tea', 'jam'], ['scone', 'tea']], [0, 9])
     """
 
-    __slots__ = ("encoding", "max_basket_items", "max_record_bytes", "nfc")
+    __slots__ = ("ascii_bytes", "encoding", "max_basket_items", "max_record_bytes", "nfc")
 
     def __init__(
         self,
@@ -120,6 +252,8 @@ class BasketDecoder(LineDecoder):
         self.max_record_bytes = max_record_bytes
         self.encoding = encoding
         self.nfc = normalize == "nfc"  # input.normalize, checked with the settings
+        #: split ASCII batches on their bytes (the encoding reads ASCII as itself)
+        self.ascii_bytes = codecs.lookup(encoding).name in _ASCII_CODECS
 
     def feed(self, record: bytes, offset: int | None, end_offset: int | None) -> list[Transaction]:
         text = decode_text(record, offset, self.encoding, self.max_record_bytes)
@@ -144,6 +278,13 @@ class BasketDecoder(LineDecoder):
             return Decoded(source=batch.source, offsets=[])
         if batch.too_long is None and max(map(len, lines)) <= self.max_record_bytes:
             joined = b"\n".join(lines)
+            if self.ascii_bytes and joined.isascii():
+                if _block_has_control(joined, joined.decode("ascii")):
+                    return LineDecoder.decode(self, batch)
+                out = self._ascii(batch, joined)
+                if out is not None:
+                    return out
+                return LineDecoder.decode(self, batch)
             try:
                 text = joined.decode(self.encoding)
             except UnicodeDecodeError:
@@ -193,3 +334,49 @@ class BasketDecoder(LineDecoder):
         kept = None if offsets is None else offsets[keep].tolist()
         raws: list[bytes | None] = [line for line, k in zip(batch.lines, keep, strict=True) if k]
         return Decoded(baskets, None, kept, errors, batch.source, raws)
+
+    def _ascii(self, batch: RecordBatch, joined: bytes) -> Decoded | None:
+        """A batch of ASCII lines free of control characters (``joined`` by newlines) as
+        :class:`~streamcount.intake.records.Tokens`, with numpy on its bytes; ``None`` when
+        some line has too many items (the record-by-record path words that rejection)."""
+        n_lines = len(batch.lines)
+        buf = np.frombuffer(joined, dtype=np.uint8)
+        size = buf.shape[0]
+        sep = np.ones(size + 2, dtype=bool)
+        np.less_equal(buf, _SPACE, out=sep[1:-1])
+        sep[1:-1] |= buf == _COMMA
+        starts = np.flatnonzero(sep[:-2] & ~sep[1:-1])  # a separator (or the start), then not
+        ends = np.flatnonzero(~sep[1:-1] & sep[2:]) + 1
+        newlines = np.flatnonzero(buf == _NEWLINE)
+        # tokens before each line's end: a line's tokens are consecutive
+        bounds = np.empty(n_lines + 1, dtype=np.int64)
+        bounds[0] = 0
+        bounds[1:-1] = np.searchsorted(starts, newlines)
+        bounds[-1] = starts.shape[0]
+        names, codes, counts = code_tokens(joined, buf, ~sep[1:-1], starts, ends, bounds)
+        if int(counts.max(initial=0)) > self.max_basket_items:
+            return None
+        offsets = batch.offsets
+        keep = counts > 0
+        if keep.all():
+            kept = None if offsets is None else offsets.tolist()
+            raws: list[bytes | None] = list(batch.lines)
+            errors: list[ParseError] = []
+        else:
+            commas = np.bincount(
+                np.searchsorted(newlines, np.flatnonzero(buf == _COMMA)), minlength=n_lines
+            )
+            errors = [
+                ParseError(
+                    "empty",
+                    "the line holds separators but no item",
+                    offset=batch.offset(i),
+                    raw=batch.lines[i],
+                )
+                for i in np.flatnonzero(~keep & (commas > 0)).tolist()
+            ]
+            kept = None if offsets is None else offsets[keep].tolist()
+            raws = [batch.lines[i] for i in np.flatnonzero(keep).tolist()]
+            counts = counts[keep]
+        tokens = Tokens(names, codes, counts.astype(np.int64, copy=False))
+        return Decoded(None, None, kept, errors, batch.source, raws, tokens=tokens)

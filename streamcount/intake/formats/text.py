@@ -154,7 +154,10 @@ def parse_ts(value: object, where: str, offset: int | None, raw: bytes) -> float
         if moment.tzinfo is None:
             moment = moment.replace(tzinfo=UTC)
         return moment.timestamp()
-    ts = float(value)
+    try:
+        ts = float(value)
+    except OverflowError:  # an integer past any float
+        ts = math.inf
     if not math.isfinite(ts) or abs(ts) >= MAX_TIMESTAMP:
         raise ParseError(
             "wrong_type",
