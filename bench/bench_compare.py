@@ -101,9 +101,8 @@ def main(argv: list[str] | None = None) -> int:
                 flush=True,
             )
     if args.record:
-        info = machine.machine_info()
-        info["load_average_at_start"] = info_start["load_average"]
-        info["load_average_at_end"] = info["load_average"]
+        info = dict(info_start)
+        info["load_average_at_end"] = machine.load_average()
         lines = [
             f"This checkout against `{args.base}` (round 1's main), {args.runs} interleaved "
             "runs each after one warm-up; `streamcount replay` of each dataset, epsilon 0.001, "
