@@ -125,11 +125,21 @@ def test_clean_ascii_batch_is_coded_on_its_bytes_and_007_is_not_7() -> None:
     assert len({codes["7"], codes["007"], codes["0"], codes["00"], codes["07"]}) == 5
 
 
-def test_too_many_items_and_controls_take_the_record_path() -> None:
+def test_too_many_items_stays_on_the_fast_path_and_controls_take_the_record_path() -> None:
+    """A line of too many distinct items is set aside as the record path sets it aside (same
+    reason, detail, offset and raw bytes) while the batch's other lines stay tokens, so one
+    long basket does not send a whole batch record by record."""
     decoder = BasketDecoder(max_basket_items=2)
-    out = decoder.decode(RecordBatch.from_lines(["1 2", "1 2 3", "4"]))
-    assert out.tokens is None and [e.reason for e in out.errors] == ["too_many_items"]
+    batch = RecordBatch.from_lines(["1 2", "1 2 3", ", ,", "4"])
+    out = decoder.decode(batch)
+    assert out.tokens is not None and out.tokens.baskets() == [["1", "2"], ["4"]]
+    assert [e.reason for e in out.errors] == ["too_many_items", "empty"]
     assert "3 distinct items" in out.errors[0].detail
+    slow = LineDecoder.decode(decoder, batch)
+    assert [(e.reason, e.detail, e.offset, e.raw) for e in out.errors] == [
+        (e.reason, e.detail, e.offset, e.raw) for e in slow.errors
+    ]
+    assert out.offsets == slow.offsets
     out = decoder.decode(RecordBatch.from_lines(["1 2", "1\x0b2"]))
     assert out.tokens is None and [e.reason for e in out.errors] == ["control_chars"]
 

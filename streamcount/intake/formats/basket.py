@@ -281,10 +281,7 @@ class BasketDecoder(LineDecoder):
             if self.ascii_bytes and joined.isascii():
                 if _block_has_control(joined, joined.decode("ascii")):
                     return LineDecoder.decode(self, batch)
-                out = self._ascii(batch, joined)
-                if out is not None:
-                    return out
-                return LineDecoder.decode(self, batch)
+                return self._ascii(batch, joined)
             try:
                 text = joined.decode(self.encoding)
             except UnicodeDecodeError:
@@ -335,10 +332,11 @@ class BasketDecoder(LineDecoder):
         raws: list[bytes | None] = [line for line, k in zip(batch.lines, keep, strict=True) if k]
         return Decoded(baskets, None, kept, errors, batch.source, raws)
 
-    def _ascii(self, batch: RecordBatch, joined: bytes) -> Decoded | None:
+    def _ascii(self, batch: RecordBatch, joined: bytes) -> Decoded:
         """A batch of ASCII lines free of control characters (``joined`` by newlines) as
-        :class:`~streamcount.intake.records.Tokens`, with numpy on its bytes; ``None`` when
-        some line has too many items (the record-by-record path words that rejection)."""
+        :class:`~streamcount.intake.records.Tokens`, with numpy on its bytes; lines of
+        separators only and lines of too many distinct items are set aside as the record
+        path sets them aside."""
         n_lines = len(batch.lines)
         buf = np.frombuffer(joined, dtype=np.uint8)
         size = buf.shape[0]
@@ -354,29 +352,40 @@ class BasketDecoder(LineDecoder):
         bounds[1:-1] = np.searchsorted(starts, newlines)
         bounds[-1] = starts.shape[0]
         names, codes, counts = code_tokens(joined, buf, ~sep[1:-1], starts, ends, bounds)
-        if int(counts.max(initial=0)) > self.max_basket_items:
-            return None
+        tokens = Tokens(names, codes, counts.astype(np.int64, copy=False))
         offsets = batch.offsets
-        keep = counts > 0
+        over = counts > self.max_basket_items
+        keep = (counts > 0) & ~over
         if keep.all():
             kept = None if offsets is None else offsets.tolist()
             raws: list[bytes | None] = list(batch.lines)
-            errors: list[ParseError] = []
-        else:
-            commas = np.bincount(
-                np.searchsorted(newlines, np.flatnonzero(buf == _COMMA)), minlength=n_lines
-            )
-            errors = [
-                ParseError(
-                    "empty",
-                    "the line holds separators but no item",
-                    offset=batch.offset(i),
-                    raw=batch.lines[i],
+            return Decoded(None, None, kept, [], batch.source, raws, tokens=tokens)
+        # lines set aside (separators only, too many items), in line order, as the record
+        # path words them; the rest stay tokens
+        commas = np.bincount(
+            np.searchsorted(newlines, np.flatnonzero(buf == _COMMA)), minlength=n_lines
+        )
+        errors: list[ParseError] = []
+        for i in np.flatnonzero(~keep & ((commas > 0) | over)).tolist():
+            if over[i]:
+                errors.append(
+                    too_many_items_error(
+                        int(counts[i]),
+                        self.max_basket_items,
+                        batch.offset(i),
+                        batch.lines[i],
+                        "line",
+                    )
                 )
-                for i in np.flatnonzero(~keep & (commas > 0)).tolist()
-            ]
-            kept = None if offsets is None else offsets[keep].tolist()
-            raws = [batch.lines[i] for i in np.flatnonzero(keep).tolist()]
-            counts = counts[keep]
-        tokens = Tokens(names, codes, counts.astype(np.int64, copy=False))
-        return Decoded(None, None, kept, errors, batch.source, raws, tokens=tokens)
+            else:
+                errors.append(
+                    ParseError(
+                        "empty",
+                        "the line holds separators but no item",
+                        offset=batch.offset(i),
+                        raw=batch.lines[i],
+                    )
+                )
+        kept = None if offsets is None else offsets[keep].tolist()
+        raws = [batch.lines[i] for i in np.flatnonzero(keep).tolist()]
+        return Decoded(None, None, kept, errors, batch.source, raws, tokens=tokens.select(keep))
