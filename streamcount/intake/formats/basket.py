@@ -212,6 +212,11 @@ def _gc_paused() -> Iterator[None]:
             gc.enable()
 
 
+def _empty_line(offset: int | None, raw: bytes) -> ParseError:
+    """The rejection of a line of separators without an item (every path words it so)."""
+    return ParseError("empty", "the line holds separators but no item", offset=offset, raw=raw)
+
+
 class BasketDecoder(LineDecoder):
     """One transaction per line, items separated by whitespace and/or commas.
 
@@ -264,9 +269,7 @@ class BasketDecoder(LineDecoder):
             text = unicodedata.normalize("NFC", text)
         items = dedupe(text.replace(",", " ").split())
         if not items:
-            raise ParseError(
-                "empty", "the line holds separators but no item", offset=offset, raw=record
-            )
+            raise _empty_line(offset, record)
         if len(items) > self.max_basket_items:
             raise too_many_items_error(len(items), self.max_basket_items, offset, record, "line")
         return [Transaction(tuple(items), offset=offset, end_offset=end_offset)]
@@ -319,14 +322,7 @@ class BasketDecoder(LineDecoder):
         text_lines = text.split("\n")
         for i in np.flatnonzero(~keep).tolist():
             if text_lines[i].strip():  # not a blank line: separators only
-                errors.append(
-                    ParseError(
-                        "empty",
-                        "the line holds separators but no item",
-                        offset=batch.offset(i),
-                        raw=batch.lines[i],
-                    )
-                )
+                errors.append(_empty_line(batch.offset(i), batch.lines[i]))
         baskets = [p for p in parsed if p]
         kept = None if offsets is None else offsets[keep].tolist()
         raws: list[bytes | None] = [line for line, k in zip(batch.lines, keep, strict=True) if k]
@@ -378,14 +374,7 @@ class BasketDecoder(LineDecoder):
                     )
                 )
             else:
-                errors.append(
-                    ParseError(
-                        "empty",
-                        "the line holds separators but no item",
-                        offset=batch.offset(i),
-                        raw=batch.lines[i],
-                    )
-                )
+                errors.append(_empty_line(batch.offset(i), batch.lines[i]))
         kept = None if offsets is None else offsets[keep].tolist()
         raws = [batch.lines[i] for i in np.flatnonzero(keep).tolist()]
         return Decoded(None, None, kept, errors, batch.source, raws, tokens=tokens.select(keep))

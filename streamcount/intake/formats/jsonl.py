@@ -19,7 +19,7 @@ from __future__ import annotations
 import codecs
 import json
 from operator import attrgetter
-from typing import Any
+from typing import Any, cast
 
 import msgspec
 import numpy as np
@@ -186,6 +186,23 @@ _QUOTE, _OPEN, _NEWLINE = ord('"'), ord("["), ord("\n")
 _PLAIN_TS = (int, float)
 
 
+def _plain_time(value: object, require_ts: bool) -> tuple[bool, float | None]:
+    """``(True, seconds)`` for a time the batch path takes as it is (an int or float within
+    range, or none where none is needed), ``(False, None)`` for one the record path must
+    judge (and word).
+
+    >>> _plain_time(3, True), _plain_time(None, False), _plain_time(float("nan"), False)
+    ((True, 3.0), (True, None), (False, None))
+    """
+    if value is None:
+        return not require_ts, None
+    if type(value) in _PLAIN_TS:
+        number = cast("int | float", value)
+        if abs(number) < MAX_TIMESTAMP:  # not NaN, inf, huge
+            return True, float(number)
+    return False, None
+
+
 class JsonlDecoder(LineDecoder):
     """One JSON object per line.
 
@@ -295,14 +312,8 @@ class JsonlDecoder(LineDecoder):
                 continue
             if len(set(names)) != len(names):
                 names = list(dict.fromkeys(names))
-            value = rec.ts
-            if value is None:
-                if require_ts:
-                    slow.append(i)
-                    continue
-            elif type(value) in _PLAIN_TS and abs(value) < MAX_TIMESTAMP:  # not NaN, inf, huge
-                value = float(value)
-            else:
+            plain, value = _plain_time(rec.ts, require_ts)
+            if not plain:
                 slow.append(i)
                 continue
             record_id = rec.id
@@ -410,14 +421,8 @@ class JsonlDecoder(LineDecoder):
             if items is unset:
                 slow.append(i)
                 continue
-            value = rec.ts
-            if value is None:
-                if require_ts:
-                    slow.append(i)
-                    continue
-            elif type(value) in _PLAIN_TS and abs(value) < MAX_TIMESTAMP:  # not NaN, inf, huge
-                value = float(value)
-            else:
+            plain, value = _plain_time(rec.ts, require_ts)
+            if not plain:
                 slow.append(i)
                 continue
             record_id = rec.id
