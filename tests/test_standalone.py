@@ -8,7 +8,8 @@ decodes as UTF-8, so the gzip datasets are not read:
 1. **Home and workspace roots.** A path that *starts* at the filesystem root with one of the
    folders ``work``, ``root``, ``home`` or ``Users`` (slash, folder name, slash). "Starts"
    means the leading slash does not follow a letter, digit, ``_``, ``.``, ``~`` or ``-``, so
-   relative paths that merely contain such a folder (``bench/work/x``, ``./home/``) and URLs
+   relative paths that merely contain such a folder (``bench/work/x``, or the same after a
+   dot and a slash) and URLs
    (``https://example.org/home/``) are not flagged.
 2. **Windows drives.** A drive letter, a colon and one or two backslashes followed by a name
    (``X:`` + backslash + ``Users``), the letter not following a word character.

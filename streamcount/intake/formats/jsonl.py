@@ -186,6 +186,23 @@ _QUOTE, _OPEN, _NEWLINE = ord('"'), ord("["), ord("\n")
 _PLAIN_TS = (int, float)
 
 
+def _all_plain(
+    batch: RecordBatch,
+    rows: list[int],
+    ts: list[float | None],
+    *,
+    baskets: list[list[str]] | None = None,
+    tokens: Tokens | None = None,
+) -> Decoded:
+    """A batch none of whose records needs the record path: lines ``rows`` hold its
+    transactions (the other lines hold no record), as ``baskets`` or ``tokens``, with their
+    times."""
+    offsets = batch.offsets
+    kept = None if offsets is None else offsets[rows].tolist()
+    raws: list[bytes | None] = [batch.lines[i] for i in rows]
+    return Decoded(baskets, ts, kept, [], batch.source, raws, tokens=tokens)
+
+
 def _plain_time(value: object, require_ts: bool) -> tuple[bool, float | None]:
     """``(True, seconds)`` for a time the batch path takes as it is (an int or float within
     range, or none where none is needed), ``(False, None)`` for one the record path must
@@ -344,15 +361,7 @@ class JsonlDecoder(LineDecoder):
             ts = [ts[j] for j in keep]
             rows = [rows[j] for j in keep]
         if not slow:
-            offsets = batch.offsets
-            return Decoded(
-                baskets,
-                ts,
-                None if offsets is None else offsets[rows].tolist(),
-                [],
-                batch.source,
-                [lines[i] for i in rows],
-            )
+            return _all_plain(batch, rows, ts, baskets=baskets)
         return self._merge(batch, baskets, ts, rows, sorted(slow))
 
     def _decode_raw(self, batch: RecordBatch) -> Decoded | None:
@@ -387,16 +396,7 @@ class JsonlDecoder(LineDecoder):
             rows = [rows[j] for j in keep]
         if slow:
             return self._merge(batch, tokens.baskets(), ts, rows, sorted(slow))
-        offsets = batch.offsets
-        return Decoded(
-            None,
-            ts,
-            None if offsets is None else offsets[rows].tolist(),
-            [],
-            batch.source,
-            [lines[i] for i in rows],
-            tokens=tokens,
-        )
+        return _all_plain(batch, rows, ts, tokens=tokens)
 
     def _record_by_record(
         self, parser: msgspec.json.Decoder[Any], lines: list[bytes]
