@@ -97,6 +97,9 @@ class Summary(Protocol):
     the kernel in use; a replacement must keep every invariant :meth:`check_invariants` states.
     """
 
+    #: the error parameter the summary counts with (0: exact)
+    epsilon: float
+
     @property
     def n(self) -> int:
         """Transactions counted."""

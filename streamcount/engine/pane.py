@@ -150,7 +150,7 @@ class Pane:
             k = len(self.summary.levels)
             epsilon = 0.0
             if candidate_itemsets(lengths, k) > OVERLAY_EXACT_MAX:
-                epsilon = float(getattr(self.summary, "epsilon", 0.0))
+                epsilon = self.summary.epsilon
             exact = Pane(self.index, epsilon, k, self.excluded_pairs)
             exact.append(
                 np.concatenate(self._buf_flat),
